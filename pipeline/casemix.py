@@ -1,0 +1,130 @@
+"""Case-mix fit: how likely each patient's outcome was, given their risk factors alone.
+
+Binary measures use logistic regression (statsmodels GLM, binomial family, logit link).
+The risk coefficients are estimated *within units* (unit indicators in the model), so a
+unit that both treats sicker patients and has worse care cannot make sickness look
+more dangerous than it is; this is the fixed-effects ("within") estimator of
+econometrics, and it is what the methods page explains. Units whose patients all had the
+same outcome carry no information about the coefficients under the conditional
+likelihood (Chamberlain 1980) and are left out of this step only.
+
+Each patient's expected risk then uses those coefficients with one network intercept
+chosen so that expected events equal observed events across the network
+(calibration-in-the-large).
+"""
+
+from __future__ import annotations
+
+import warnings
+from dataclasses import dataclass
+
+import numpy as np
+import pandas as pd
+import patsy
+import statsmodels.api as sm
+from scipy.optimize import brentq
+from scipy.special import expit
+from scipy.stats import rankdata
+
+from .config import MeasureSection
+from .errors import FitError
+
+
+@dataclass(frozen=True)
+class CaseMixFit:
+    """A measure's case-mix fit: coefficients, per-patient linear risk and expected risk."""
+
+    measure: str
+    formula: str
+    patients: int
+    events: int
+    coefficients: pd.DataFrame  # index term; estimate, std_error, odds_ratio, or_lower, or_upper
+    linear: np.ndarray  # b'x per patient, no intercept (the shrinkage fit's offset)
+    intercept: float  # network intercept after calibration-in-the-large
+    expected: np.ndarray  # expected risk per patient
+    c_statistic: float
+    units_in_fit: int  # units with both outcomes present (used to estimate the coefficients)
+
+
+def c_statistic(outcome: np.ndarray, score: np.ndarray) -> float:
+    """Area under the ROC curve by the Mann-Whitney rank formula (ties count one half).
+
+    Hanley & McNeil (1982, Radiology 143:29) show this equals the ROC area.
+    """
+    outcome = np.asarray(outcome).astype(bool)
+    n1 = int(outcome.sum())
+    n0 = len(outcome) - n1
+    if n1 == 0 or n0 == 0:
+        return float("nan")
+    ranks = rankdata(score)
+    return float((ranks[outcome].sum() - n1 * (n1 + 1) / 2) / (n1 * n0))
+
+
+def calibrate_intercept(linear: np.ndarray, observed_events: float) -> float:
+    """The intercept c with sum(expit(c + linear)) equal to the observed event count."""
+    n = len(linear)
+    if not 0 < observed_events < n:
+        raise ValueError("calibration needs at least one event and one non-event")
+    target = lambda c: float(expit(c + linear).sum()) - observed_events  # noqa: E731
+    lo, hi = -30.0 - linear.max(), 30.0 - linear.min()
+    return float(brentq(target, lo, hi, xtol=1e-12))
+
+
+def design(measure: MeasureSection, rows: pd.DataFrame) -> pd.DataFrame:
+    """The case-mix design matrix without its intercept column (may have no columns)."""
+    try:
+        matrix = patsy.dmatrix(measure.casemix, rows, return_type="dataframe", NA_action="raise")
+    except patsy.PatsyError as exc:
+        raise FitError(f"measure '{measure.key}': the case-mix formula '{measure.casemix}' cannot be built: {exc.message}") from None
+    return matrix.drop(columns=[c for c in matrix.columns if c == "Intercept"])
+
+
+def fit_casemix(measure: MeasureSection, rows: pd.DataFrame, unit_codes: np.ndarray) -> CaseMixFit:
+    """Fit the logistic case-mix model of a binary measure (within-unit coefficients)."""
+    y = rows[measure.outcome].to_numpy(dtype=float)
+    events = int(y.sum())
+    if events == 0 or events == len(y):
+        word = "no patient had" if events == 0 else "every patient had"
+        raise FitError(f"measure '{measure.key}': {word} the outcome '{measure.outcome}', so risks cannot be compared between units.")
+    x = design(measure, rows)
+    sums = np.bincount(unit_codes, weights=y)
+    counts = np.bincount(unit_codes)
+    informative = (sums > 0) & (sums < counts)
+    keep = informative[unit_codes]
+    kept_units = np.flatnonzero(informative)
+    dummies = (unit_codes[keep, None] == kept_units[None, 1:]).astype(float)  # first kept unit is the reference
+    exog = np.column_stack([np.ones(keep.sum()), x.to_numpy()[keep], dummies])
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")  # convergence problems are checked below, in words
+        try:
+            result = sm.GLM(y[keep], exog, family=sm.families.Binomial()).fit()
+        except (np.linalg.LinAlgError, ValueError) as exc:
+            raise FitError(f"measure '{measure.key}': the case-mix fit failed ({exc}). Check for risk factors that never vary or that copy each other.") from None
+    k = x.shape[1]
+    b = np.asarray(result.params[1 : 1 + k])
+    se = np.asarray(result.bse[1 : 1 + k])
+    if not (np.all(np.isfinite(b)) and np.all(np.isfinite(se))) or np.any(np.abs(b) > 15):
+        bad = [name for name, v, s in zip(x.columns, b, se) if not np.isfinite(v) or not np.isfinite(s) or abs(v) > 15]
+        raise FitError(
+            f"measure '{measure.key}': the case-mix coefficients for {', '.join(bad)} could not be estimated "
+            "(a risk factor that almost perfectly predicts the outcome, or that is constant). Remove or group it."
+        )
+    linear = x.to_numpy() @ b if k else np.zeros(len(y))
+    intercept = calibrate_intercept(linear, events)
+    coefficients = pd.DataFrame(
+        {"estimate": b, "std_error": se, "odds_ratio": np.exp(b), "or_lower": np.exp(b - 1.959964 * se), "or_upper": np.exp(b + 1.959964 * se)},
+        index=pd.Index(x.columns, name="term"),
+    )
+    expected = expit(intercept + linear)
+    return CaseMixFit(
+        measure=measure.key,
+        formula=f"{measure.outcome} ~ {measure.casemix}",
+        patients=len(y),
+        events=events,
+        coefficients=coefficients,
+        linear=linear,
+        intercept=intercept,
+        expected=expected,
+        c_statistic=c_statistic(y, linear),
+        units_in_fit=len(kept_units),
+    )

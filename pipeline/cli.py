@@ -1,0 +1,87 @@
+"""Command line: ``fairgauge build CONFIG`` and ``fairgauge demo``.
+
+The only module that prints errors and chooses exit codes; everything else raises.
+"""
+
+from __future__ import annotations
+
+import argparse
+import sys
+import time
+from pathlib import Path
+
+from . import __version__
+from .errors import FairgaugeError
+
+
+class ConsoleReporter:
+    """Progress lines with elapsed time, and warnings counted for the closing summary."""
+
+    def __init__(self) -> None:
+        self.start = time.perf_counter()
+        self.warnings = 0
+
+    def stage(self, text: str) -> None:
+        print(f"[{time.perf_counter() - self.start:6.1f}s] {text}", flush=True)
+
+    def warn(self, text: str) -> None:
+        self.warnings += 1
+        print(f"[{time.perf_counter() - self.start:6.1f}s] WARNING {text}", flush=True)
+
+
+def _parser() -> argparse.ArgumentParser:
+    parser = argparse.ArgumentParser(prog="fairgauge", description="Risk-adjusted, shrinkage-based unit reports as a static website.")
+    parser.add_argument("--version", action="version", version=f"fairgauge {__version__}")
+    sub = parser.add_subparsers(dest="command", required=True)
+    common = argparse.ArgumentParser(add_help=False)
+    common.add_argument("--strict", action="store_true", help="treat warnings as errors")
+    common.add_argument("--renderer", choices=["auto", "quarto", "builtin"], help="override [cycle].renderer")
+    build = sub.add_parser("build", parents=[common], help="run the reporting cycle described by a config file")
+    build.add_argument("config", type=Path, help="cycle config (TOML)")
+    demo = sub.add_parser("demo", parents=[common], help="invent a network, then build its site")
+    demo.add_argument("--folder", type=Path, default=Path("demo-cycle"), help="where the invented inputs and config go (default: demo-cycle)")
+    demo.add_argument("--site", type=Path, default=Path("site/demo"), help="where the site goes (default: site/demo)")
+    demo.add_argument("--seed", type=int, default=7, help="seed of the invented network (default: 7)")
+    demo.add_argument("--units", type=int, default=44, help="number of invented units, 30-60 recommended (default: 44)")
+    return parser
+
+
+def _summary(summary, reporter: ConsoleReporter) -> None:
+    reported = {r.measure.key: int((r.table["status"] == "reported").sum()) for r in summary.results}
+    print(f"\nfairgauge: cycle finished in {summary.seconds:.1f} s")
+    print(f"  units:    {summary.units} ({summary.patients:,} patient rows)")
+    print(f"  measures: {', '.join(f'{k} ({n} units reported)' for k, n in reported.items())}")
+    print(f"  warnings: {reporter.warnings}")
+    print(f"  renderer: {summary.renderer.name}")
+    print(f"  site:     {(summary.site / 'index.html').resolve()}")
+
+
+def main(argv: list[str] | None = None) -> int:
+    args = _parser().parse_args(argv)
+    reporter = ConsoleReporter()
+    try:
+        from .config import load_config
+        from .cycle import run_cycle
+
+        if args.command == "demo":
+            from .demo import write_demo
+
+            reporter.stage(f"inventing a network of {args.units} units in {args.folder}/ (all data made up)")
+            files = write_demo(args.folder, args.site, seed=args.seed, n_units=args.units)
+            config_path = files.config
+        else:
+            config_path = args.config
+        config = load_config(config_path)
+        summary = run_cycle(config, reporter, strict=args.strict, renderer=args.renderer)
+    except FairgaugeError as exc:
+        print(f"fairgauge: ERROR {exc}", file=sys.stderr)
+        return exc.exit_code
+    except KeyboardInterrupt:
+        print("fairgauge: interrupted; the previous site was left as it was.", file=sys.stderr)
+        return 130
+    _summary(summary, reporter)
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())

@@ -1,0 +1,292 @@
+"""The cycle config: one TOML file per reporting cycle, declared once here.
+
+Every field is a dataclass field with a docstring-like ``doc``; the loader walks these
+declarations, so the schema, the defaults, the checks and the generated reference in
+DEVELOPERS.md cannot drift apart. All problems are collected and raised together
+(:class:`~pipeline.errors.ConfigError`) before any data file is opened.
+"""
+
+from __future__ import annotations
+
+import difflib
+import hashlib
+import re
+import tomllib
+import typing
+from dataclasses import MISSING, dataclass, field, fields
+from pathlib import Path
+from typing import Any, Callable, Literal
+
+from .errors import ConfigError, Problem
+
+Check = Callable[[Any], "str | None"]
+
+
+def option(default: Any = MISSING, doc: str = "", check: Check | None = None) -> Any:
+    """Declare one config key: its default (none = required), its meaning and its check."""
+    return field(default=default, metadata={"doc": doc, "check": check})
+
+
+def _between(lo: float, hi: float, *, inclusive: bool = True) -> Check:
+    def check(value: float) -> str | None:
+        ok = lo <= value <= hi if inclusive else lo < value < hi
+        if ok:
+            return None
+        bracket = "from {} to {}" if inclusive else "strictly between {} and {}"
+        return f"must be {bracket.format(lo, hi)}; got {value}"
+
+    return check
+
+
+_SLUG = re.compile(r"^[a-z0-9][a-z0-9_-]{0,39}$")
+
+
+def _slug(value: str) -> str | None:
+    if _SLUG.match(value):
+        return None
+    return (
+        f"'{value}' is not allowed: use 1-40 lower-case letters, digits, '-' or '_', "
+        "starting with a letter or digit (it becomes a file name)"
+    )
+
+
+def _nonempty(value: str) -> str | None:
+    return None if value.strip() else "must not be empty"
+
+
+def _benchmark(value: str | float) -> str | None:
+    if isinstance(value, str):
+        return None if value == "network" else f"must be \"network\" or a rate between 0 and 1; got '{value}'"
+    return None if 0 < value < 1 else f"a fixed benchmark rate must be strictly between 0 and 1; got {value}"
+
+
+@dataclass(frozen=True)
+class CycleSection:
+    """[cycle]: what this reporting cycle is and where its site goes."""
+
+    title: str = option(doc="Site title shown on every page.", check=_nonempty)
+    publisher: str = option(doc="Organisation publishing the results (shown on every page).", check=_nonempty)
+    period: str = option(doc="Label of the reporting period, e.g. \"April 2025 to March 2026\".", check=_nonempty)
+    output: Path = option(Path("site"), doc="Folder that receives the finished site (relative to the config file).")
+    renderer: Literal["auto", "quarto", "builtin"] = option(
+        "auto", doc="auto: Quarto when the `quarto` command is found, else the built-in renderer."
+    )
+    invented_data: bool = option(
+        False, doc="True for demonstration data: every page then says the data are invented."
+    )
+
+
+@dataclass(frozen=True)
+class InputsSection:
+    """[inputs]: the cohort file and the unit table."""
+
+    cohort: Path = option(doc="Patient-level rows (CSV or Parquet), one per index admission or procedure.")
+    units: Path = option(doc="Unit table (CSV or Parquet) with columns id, name, kind.")
+    unit_column: str = option("unit_id", doc="Cohort column holding the unit id.", check=_nonempty)
+    record_column: str = option(
+        "", doc="Optional cohort column with a unique record id; repeated ids are rejected as duplicates."
+    )
+
+
+@dataclass(frozen=True)
+class ReportingSection:
+    """[reporting]: how results are summarised and what may be published."""
+
+    interval: float = option(0.95, doc="Credible interval level (equal-tailed).", check=_between(0.5, 1, inclusive=False))
+    minimum_cases: int = option(
+        11,
+        doc="Units with fewer cases than this are fitted but their numbers are not published "
+        "(common practice for small-cell suppression in public health reporting, no source).",
+        check=_between(1, 10_000),
+    )
+    benchmark: str | float = option(
+        "network", doc="\"network\" (the network's observed rate) or a fixed rate between 0 and 1.", check=_benchmark
+    )
+
+
+@dataclass(frozen=True)
+class SamplerSection:
+    """[sampler]: PyMC's NUTS settings for the shrinkage fits."""
+
+    chains: int = option(4, doc="Independent chains (R-hat needs at least 2).", check=_between(2, 16))
+    draws: int = option(1000, doc="Kept draws per chain.", check=_between(100, 100_000))
+    tune: int = option(1000, doc="Warm-up draws per chain (discarded).", check=_between(100, 100_000))
+    target_accept: float = option(0.9, doc="NUTS target acceptance; raise it if divergences appear.", check=_between(0.6, 0.999))
+    engine: Literal["nutpie", "pymc"] = option(
+        "nutpie", doc="nutpie (compiled once per cycle, fast) or pymc (PyMC's own NUTS); both sample the same PyMC model."
+    )
+    cores: int = option(2, doc="Chains run in parallel on this many processes.", check=_between(1, 64))
+    seed: int = option(20261202, doc="Random seed; the same seed and inputs give the same draws.", check=_between(0, 2**32 - 1))
+
+
+@dataclass(frozen=True)
+class MeasureSection:
+    """[[measures]]: one outcome measure reported for every unit."""
+
+    key: str = option(doc="Short id used in file names and downloads.", check=_slug)
+    name: str = option(doc="Plain-language name, e.g. \"Readmission within 30 days\".", check=_nonempty)
+    definition: str = option(doc="One or two plain sentences saying who is counted and what counts as the outcome.", check=_nonempty)
+    outcome: str = option(doc="Cohort column holding the outcome (0/1 for binary measures).", check=_nonempty)
+    type: str = option("binary", doc="Outcome type; see OUTCOME_TYPES.")
+    better: Literal["lower", "higher"] = option("lower", doc="Which direction is better for patients.")
+    casemix: str = option(
+        "1", doc="Right-hand side of the case-mix formula (patsy syntax), e.g. \"C(age_band) + diabetes\"; \"1\" = no adjustment."
+    )
+
+
+# Built-in outcome types: a data table, one row per type (later types add a row).
+OUTCOME_TYPES: dict[str, str] = {
+    "binary": "0/1 outcome; logistic case-mix fit; hierarchical logistic shrinkage fit",
+}
+
+SECTIONS: dict[str, type] = {
+    "cycle": CycleSection,
+    "inputs": InputsSection,
+    "reporting": ReportingSection,
+    "sampler": SamplerSection,
+}
+
+
+@dataclass(frozen=True)
+class CycleConfig:
+    """A validated cycle config. Paths are absolute."""
+
+    source: Path
+    sha256: str
+    cycle: CycleSection
+    inputs: InputsSection
+    reporting: ReportingSection
+    sampler: SamplerSection
+    measures: tuple[MeasureSection, ...]
+
+    def measure(self, key: str) -> MeasureSection:
+        return next(m for m in self.measures if m.key == key)
+
+
+def _hint(name: str, allowed: typing.Iterable[str]) -> str:
+    close = difflib.get_close_matches(name, list(allowed), n=1, cutoff=0.6)
+    return f" Did you mean '{close[0]}'?" if close else ""
+
+
+def _type_problem(value: Any, hint: Any) -> str | None:
+    """Say what is wrong if ``value`` does not fit the annotated type ``hint``."""
+    origin = typing.get_origin(hint)
+    if origin is Literal:
+        choices = typing.get_args(hint)
+        if value in choices:
+            return None
+        return f"must be one of {', '.join(repr(c) for c in choices)}; got {value!r}{_hint(str(value), map(str, choices))}"
+    if origin in (typing.Union, getattr(__import__("types"), "UnionType", None)):
+        options = typing.get_args(hint)
+        if any(_type_problem(value, o) is None for o in options):
+            return None
+        return f"must be {' or '.join(o.__name__ for o in options)}; got {type(value).__name__} {value!r}"
+    if hint is Path:
+        return None if isinstance(value, str) and value.strip() else f"must be a path (text); got {value!r}"
+    if hint is float:
+        ok = isinstance(value, (int, float)) and not isinstance(value, bool)
+        return None if ok else f"must be a number; got {type(value).__name__} {value!r}"
+    if hint is int:
+        ok = isinstance(value, int) and not isinstance(value, bool)
+        return None if ok else f"must be a whole number; got {type(value).__name__} {value!r}"
+    if hint is bool:
+        return None if isinstance(value, bool) else f"must be true or false; got {value!r}"
+    if hint is str:
+        return None if isinstance(value, str) else f"must be text; got {type(value).__name__} {value!r}"
+    raise TypeError(f"unsupported config type {hint!r}")  # a bug in this module, not in the user's file
+
+
+def _build_section(cls: type, table: Any, where: str, base: Path, problems: list[Problem]) -> Any:
+    if not isinstance(table, dict):
+        problems.append(Problem(where, f"must be a table; got {type(table).__name__}"))
+        return None
+    hints = typing.get_type_hints(cls)
+    known = {f.name for f in fields(cls)}
+    for key in table:
+        if key not in known:
+            problems.append(Problem(f"{where}.{key}", f"unknown key.{_hint(key, known)} Allowed: {', '.join(sorted(known))}."))
+    values: dict[str, Any] = {}
+    for f in fields(cls):
+        key = f"{where}.{f.name}"
+        if f.name not in table:
+            if f.default is MISSING:
+                problems.append(Problem(key, f"is required ({f.metadata['doc']})"))
+            continue
+        value = table[f.name]
+        wrong = _type_problem(value, hints[f.name])
+        if wrong is None and f.metadata["check"] is not None:
+            wrong = f.metadata["check"](value)
+        if wrong:
+            problems.append(Problem(key, wrong))
+            continue
+        if hints[f.name] is Path:
+            value = (base / value).resolve()
+        elif hints[f.name] is float:
+            value = float(value)
+        values[f.name] = value
+    try:
+        return cls(**values)
+    except TypeError:  # a required key was missing: already reported
+        return None
+
+
+def _check_measures(measures: list[MeasureSection], problems: list[Problem]) -> None:
+    seen: dict[str, int] = {}
+    for i, m in enumerate(measures):
+        where = f"measures[{i}]"
+        if m.key in seen:
+            problems.append(Problem(f"{where}.key", f"'{m.key}' is already used by measures[{seen[m.key]}]; keys must be unique"))
+        seen.setdefault(m.key, i)
+        if m.type not in OUTCOME_TYPES:
+            problems.append(
+                Problem(f"{where}.type", f"'{m.type}' is not an outcome type fairgauge fits. Allowed: {', '.join(OUTCOME_TYPES)}.{_hint(m.type, OUTCOME_TYPES)}")
+            )
+        if "~" in m.casemix:
+            problems.append(Problem(f"{where}.casemix", "give only the right-hand side of the formula (no '~'); the outcome comes from 'outcome'"))
+
+
+def load_config(path: str | Path) -> CycleConfig:
+    """Read and validate a cycle config, reporting every problem at once."""
+    path = Path(path).resolve()
+    try:
+        raw_bytes = path.read_bytes()
+    except OSError as exc:
+        raise ConfigError([Problem(str(path), f"cannot be read ({exc.strerror}). Check the path.")]) from None
+    try:
+        raw = tomllib.loads(raw_bytes.decode("utf-8"))
+    except (tomllib.TOMLDecodeError, UnicodeDecodeError) as exc:
+        raise ConfigError([Problem(str(path), f"is not valid TOML: {exc}")]) from None
+
+    problems: list[Problem] = []
+    allowed_top = set(SECTIONS) | {"measures"}
+    for key in raw:
+        if key not in allowed_top:
+            problems.append(Problem(key, f"unknown section.{_hint(key, allowed_top)} Allowed: {', '.join(sorted(allowed_top))}."))
+    base = path.parent
+    sections = {name: _build_section(cls, raw.get(name, {}), name, base, problems) for name, cls in SECTIONS.items()}
+
+    raw_measures = raw.get("measures", [])
+    if not isinstance(raw_measures, list) or not raw_measures:
+        problems.append(Problem("measures", "at least one [[measures]] table is required"))
+        raw_measures = []
+    measures = [_build_section(MeasureSection, t, f"measures[{i}]", base, problems) for i, t in enumerate(raw_measures)]
+    _check_measures([m for m in measures if m is not None], problems)
+
+    if problems:
+        raise ConfigError(problems)
+    return CycleConfig(
+        source=path,
+        sha256=hashlib.sha256(raw_bytes).hexdigest(),
+        measures=tuple(measures),
+        **sections,
+    )
+
+
+def reference_table() -> str:
+    """Markdown reference of every key (used to keep DEVELOPERS.md honest)."""
+    rows = ["| key | default | meaning |", "| --- | --- | --- |"]
+    for name, cls in [*SECTIONS.items(), ("measures[]", MeasureSection)]:
+        for f in fields(cls):
+            default = "required" if f.default is MISSING else repr(f.default if not isinstance(f.default, Path) else str(f.default))
+            rows.append(f"| `{name}.{f.name}` | {default} | {f.metadata['doc']} |")
+    return "\n".join(rows)

@@ -1,0 +1,187 @@
+"""One reporting cycle, start to finish: read, fit, summarise, draw, write, render, publish.
+
+``run_cycle`` is the whole cycle on one screen; each stage is one named call. Nothing is
+written to the output folder until every stage has succeeded: the site is built in a
+temporary folder beside it and swapped in at the end, so a failed cycle leaves the last
+good site exactly as it was.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import shutil
+import tempfile
+import time
+from dataclasses import dataclass, field
+from datetime import datetime, timezone
+from importlib import metadata
+from pathlib import Path
+from typing import Protocol
+
+import numpy as np
+import pandas as pd
+
+from . import __version__, templates_path
+from .casemix import fit_casemix
+from .config import CycleConfig, MeasureSection
+from .data import Cohort, load_cohort
+from .errors import RenderError, StrictError
+from .figures import measure_figure, unit_figure
+from .pages import render_pages, slug
+from .render import Renderer, choose_renderer, render_site
+from .results import DICTIONARY, MeasureResult, public_table, results_json, summarise_measure
+from .shrinkage import Cells, Sampler, ShrinkageSpec, fit_failed, unit_draws
+
+MARKER = ".fairgauge-site"  # written into every site; only folders holding it are ever replaced
+PACKAGES = ("numpy", "pandas", "statsmodels", "pymc", "nutpie", "arviz", "plotnine")
+
+
+class Reporter(Protocol):
+    def stage(self, text: str) -> None: ...
+    def warn(self, text: str) -> None: ...
+
+
+class Quiet:
+    def stage(self, text: str) -> None:
+        pass
+
+    def warn(self, text: str) -> None:
+        pass
+
+
+@dataclass
+class CycleSummary:
+    site: Path
+    units: int
+    measures: list[str]
+    patients: int
+    renderer: Renderer
+    results: list[MeasureResult]
+    warnings: list[str] = field(default_factory=list)
+    seconds: float = 0.0
+
+
+def run_cycle(config: CycleConfig, reporter: Reporter = Quiet(), strict: bool = False, renderer: str | None = None) -> CycleSummary:
+    """Run one reporting cycle described by ``config`` and publish its site."""
+    start = time.perf_counter()
+    chosen = choose_renderer(renderer or config.cycle.renderer)
+    reporter.stage(f"renderer: {chosen.name} ({chosen.reason})")
+    reporter.stage("reading and checking the cohort and the unit table")
+    cohort = load_cohort(config)
+    warnings = list(cohort.warnings)
+    for w in warnings:
+        reporter.warn(w)
+    if strict and warnings:
+        raise StrictError(f"{len(warnings)} warning(s) and --strict is set; nothing was fitted or published.")
+    results = fit_measures(config, cohort, reporter)
+    build = build_site(config, cohort, results, chosen, reporter)
+    publish(build, config.cycle.output)
+    return CycleSummary(
+        site=config.cycle.output, units=len(cohort.units), measures=[m.key for m in config.measures],
+        patients=len(cohort.rows), renderer=chosen, results=results, warnings=warnings,
+        seconds=time.perf_counter() - start,
+    )
+
+
+def fit_measures(config: CycleConfig, cohort: Cohort, reporter: Reporter) -> list[MeasureResult]:
+    """Case-mix fit then shrinkage fit for every measure (one compiled model for all)."""
+    rows = cohort.rows
+    fitted_units = [u for u in cohort.units.index if u in set(rows[cohort.unit_column])]
+    codes = pd.Categorical(rows[cohort.unit_column], categories=fitted_units).codes.astype(np.int64)
+    sampler = Sampler(ShrinkageSpec(), config.sampler, engine=config.sampler.engine)
+    results = []
+    for i, measure in enumerate(config.measures):
+        results.append(fit_measure(config, cohort, measure, codes, fitted_units, sampler, config.sampler.seed + i, reporter))
+    return results
+
+
+def fit_measure(config, cohort: Cohort, measure: MeasureSection, codes, fitted_units, sampler: Sampler, seed: int, reporter: Reporter) -> MeasureResult:
+    reporter.stage(f"{measure.key}: case-mix fit ({measure.casemix})")
+    casemix = fit_casemix(measure, cohort.rows, codes)
+    y = cohort.rows[measure.outcome].to_numpy(dtype=float)
+    cells = Cells.from_patients(codes, casemix.intercept + casemix.linear, y, len(fitted_units))
+    s = config.sampler
+    reporter.stage(
+        f"{measure.key}: C-statistic {casemix.c_statistic:.3f}; shrinkage fit on {len(cells.n):,} cells "
+        f"({s.chains} chains x {s.draws} draws, {s.engine})"
+    )
+    draws, diagnostics = sampler.run(cells, seed)
+    if diagnostics.failures():
+        raise fit_failed(measure.key, diagnostics)
+    reporter.stage(
+        f"{measure.key}: sampled in {diagnostics.seconds:.1f} s; R-hat max {diagnostics.rhat_max:.3f}, "
+        f"bulk ESS min {diagnostics.ess_bulk_min:.0f}, divergences {diagnostics.divergences}"
+    )
+    counts = pd.DataFrame({"code": codes, "y": y, "e": casemix.expected}).groupby("code").agg(
+        cases=("y", "size"), observed=("y", "sum"), expected=("e", "sum")
+    ).reindex(range(len(fitted_units)))
+    return summarise_measure(config, measure, cohort.units, fitted_units, counts, casemix, unit_draws(cells, draws), draws["tau"], diagnostics)
+
+
+def about(config: CycleConfig, cohort: Cohort, renderer: Renderer) -> dict:
+    """What this build is and how it was made (goes into results.json and the methods page)."""
+    versions = {}
+    for name in PACKAGES:
+        try:
+            versions[name] = metadata.version(name)
+        except metadata.PackageNotFoundError:
+            pass
+    return {
+        "title": config.cycle.title, "publisher": config.cycle.publisher, "period": config.cycle.period,
+        "invented_data": config.cycle.invented_data, "version": __version__,
+        "built": datetime.now(timezone.utc).strftime("%Y-%m-%d %H:%M UTC"),
+        "config_sha256": config.sha256, "input_sha256": cohort.sha256, "seed": config.sampler.seed,
+        "renderer": f"{renderer.name} {renderer.version}", "versions": versions,
+    }
+
+
+def build_site(config: CycleConfig, cohort: Cohort, results: list[MeasureResult], renderer: Renderer, reporter: Reporter) -> Path:
+    """Write figures, downloads and pages into a new folder beside the output; render it there."""
+    output = config.cycle.output
+    output.parent.mkdir(parents=True, exist_ok=True)
+    build = Path(tempfile.mkdtemp(prefix=f".{output.name}.tmp-", dir=output.parent))
+    try:
+        project = build / "_source"
+        reporter.stage(f"drawing figures ({len(results)} measures, {len(cohort.units)} units)")
+        taken: set[str] = set()
+        slugs = {uid: slug(uid, taken) for uid in cohort.units.index}
+        for r in results:
+            measure_figure(r, project / "figures" / f"measure-{r.measure.key}.png")
+        has_figure = {uid: unit_figure(uid, results, project / "figures" / f"unit-{slugs[uid]}.png") for uid in cohort.units.index}
+        reporter.stage("writing results and pages")
+        info = about(config, cohort, renderer)
+        table = public_table(results)
+        (project / "downloads").mkdir(parents=True)
+        table.to_csv(project / "downloads" / "results.csv", index=False, float_format="%.6g")
+        (project / "downloads" / "results.json").write_text(results_json(table, results, info), encoding="utf-8")
+        (project / "assets").mkdir()
+        shutil.copyfile(templates_path() / "static" / "fairgauge.css", project / "assets" / "fairgauge.css")
+        for page in render_pages(config, results, cohort.units, {**info, "dictionary": DICTIONARY}, has_figure):
+            target = project / page.path
+            target.parent.mkdir(parents=True, exist_ok=True)
+            target.write_text(page.text, encoding="utf-8")
+        reporter.stage(f"rendering the site ({renderer.name})")
+        render_site(project, build, renderer)
+        (build / MARKER).write_text(json.dumps(info, indent=2), encoding="utf-8")
+        return build
+    except BaseException:
+        shutil.rmtree(build, ignore_errors=True)
+        raise
+
+
+def publish(build: Path, output: Path) -> None:
+    """Swap the finished ``build`` in place of ``output``; refuse to replace a folder we did not make."""
+    if output.exists() and any(output.iterdir()) and not (output / MARKER).exists():
+        shutil.rmtree(build, ignore_errors=True)
+        raise RenderError(
+            f"{output} already exists, is not empty and was not made by fairgauge, so it was left alone. "
+            "Choose an empty or new folder for [cycle].output."
+        )
+    retired = None
+    if output.exists():
+        retired = output.with_name(f".{output.name}.old-{os.getpid()}")
+        os.replace(output, retired)
+    os.replace(build, output)
+    if retired is not None:
+        shutil.rmtree(retired, ignore_errors=True)

@@ -1,0 +1,211 @@
+"""Reading and checking a cycle's inputs: the cohort (patient rows) and the unit table.
+
+Every check collects its problems; one :class:`~pipeline.errors.InputError` lists them all,
+each naming the file, the column, the first offending rows and what is allowed.
+Rows are numbered from 1 = the first data row (for a CSV, file line = row + 1).
+"""
+
+from __future__ import annotations
+
+import ast
+import difflib
+import hashlib
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+
+from .config import CycleConfig
+from .errors import InputError, Problem
+
+UNIT_TABLE_COLUMNS = ("id", "name", "kind")
+_SHOW_ROWS = 5  # offending rows quoted per problem
+
+
+@dataclass(frozen=True)
+class Cohort:
+    """Validated inputs of one cycle."""
+
+    rows: pd.DataFrame  # patient rows; the unit column is text, row order as in the file
+    units: pd.DataFrame  # unit table indexed by id (text), columns name, kind
+    unit_column: str
+    sha256: dict[str, str]  # file name -> SHA-256 of its bytes, for provenance
+    warnings: tuple[str, ...]
+
+
+def _sha256(path: Path) -> str:
+    h = hashlib.sha256()
+    with path.open("rb") as fh:
+        for block in iter(lambda: fh.read(1 << 20), b""):
+            h.update(block)
+    return h.hexdigest()
+
+
+def read_table(path: Path, text_columns: tuple[str, ...] = ()) -> pd.DataFrame:
+    """Read a CSV or Parquet file; ``text_columns`` are kept as text (ids must not become numbers)."""
+    where = str(path)
+    if not path.is_file():
+        raise InputError([Problem(where, "file not found. Check the path in the cycle config ([inputs]).")])
+    suffix = path.suffix.lower()
+    try:
+        if suffix == ".csv":
+            frame = pd.read_csv(path, dtype={c: "string" for c in text_columns}, encoding="utf-8")
+        elif suffix in (".parquet", ".pq"):
+            frame = pd.read_parquet(path)
+            for c in text_columns:
+                if c in frame.columns:
+                    frame[c] = frame[c].astype("string")
+        else:
+            raise InputError([Problem(where, f"unsupported file type '{suffix}'. Allowed: .csv, .parquet.")])
+    except InputError:
+        raise
+    except UnicodeDecodeError as exc:
+        raise InputError([Problem(where, f"is not UTF-8 text (byte {exc.start}). Save it as UTF-8 and run again.")]) from None
+    except pd.errors.EmptyDataError:
+        raise InputError([Problem(where, "is empty: it needs a header row and at least one data row.")]) from None
+    except Exception as exc:  # pandas/pyarrow raise many types for damaged files
+        raise InputError([Problem(where, f"cannot be read as {suffix[1:]} ({type(exc).__name__}: {exc}).")]) from None
+    if frame.empty:
+        raise InputError([Problem(where, "has a header but no data rows.")])
+    return frame
+
+
+def _rows(mask: pd.Series | np.ndarray) -> str:
+    positions = np.flatnonzero(np.asarray(mask)) + 1
+    shown = ", ".join(str(p) for p in positions[:_SHOW_ROWS])
+    more = len(positions) - _SHOW_ROWS
+    return f"row{'s' if len(positions) > 1 else ''} {shown}" + (f" (and {more} more)" if more > 0 else "")
+
+
+def formula_variables(rhs: str) -> list[str]:
+    """Column names a patsy right-hand side uses (function names such as C or np.log excluded)."""
+    try:
+        tree = ast.parse(rhs.replace("~", " "), mode="eval")
+    except SyntaxError as exc:
+        raise ValueError(f"'{rhs}' is not a valid formula: {exc.msg}") from None
+    called = {id(n.func) for n in ast.walk(tree) if isinstance(n, ast.Call)}
+    attr_bases = {id(n.value) for n in ast.walk(tree) if isinstance(n, ast.Attribute)}
+    names = [
+        n.id for n in ast.walk(tree) if isinstance(n, ast.Name) and id(n) not in called and id(n) not in attr_bases
+    ]
+    return list(dict.fromkeys(names))
+
+
+def _check_units(units: pd.DataFrame, where: str, problems: list[Problem]) -> None:
+    missing = [c for c in UNIT_TABLE_COLUMNS if c not in units.columns]
+    for c in missing:
+        problems.append(Problem(f"{where}, column '{c}'", f"is missing. A unit table needs columns {', '.join(UNIT_TABLE_COLUMNS)}."))
+    if missing:
+        return
+    for c in UNIT_TABLE_COLUMNS:
+        empty = units[c].isna() | (units[c].astype("string").str.strip() == "")
+        if empty.any():
+            problems.append(Problem(f"{where}, column '{c}'", f"is empty at {_rows(empty)}; every unit needs an id, a name and a kind."))
+    dup = units["id"].duplicated(keep=False) & units["id"].notna()
+    if dup.any():
+        problems.append(Problem(f"{where}, column 'id'", f"repeats ids at {_rows(dup)}; each unit must appear once."))
+
+
+def _check_outcome(rows: pd.DataFrame, column: str, kind: str, where: str, problems: list[Problem]) -> None:
+    values = rows[column]
+    missing = values.isna()
+    if missing.any():
+        problems.append(Problem(f"{where}, column '{column}'", f"has no value at {_rows(missing)}; every row needs its outcome."))
+    numeric = pd.to_numeric(values, errors="coerce")
+    not_number = numeric.isna() & ~missing
+    if not_number.any():
+        sample = values[not_number].iloc[0]
+        problems.append(Problem(f"{where}, column '{column}'", f"must be numbers; found '{sample}' at {_rows(not_number)}."))
+        return
+    if kind == "binary":
+        bad = numeric.notna() & ~numeric.isin([0, 1])
+        if bad.any():
+            sample = numeric[bad].iloc[0]
+            problems.append(Problem(f"{where}, column '{column}'", f"must be 0 or 1 for a binary measure; found {sample:g} at {_rows(bad)}."))
+
+
+def _check_risk_factor(rows: pd.DataFrame, column: str, where: str, problems: list[Problem]) -> None:
+    values = rows[column]
+    missing = values.isna()
+    if missing.any():
+        problems.append(
+            Problem(f"{where}, column '{column}'", f"has no value at {_rows(missing)}. Risk factors must be complete; fill or remove those rows before the cycle.")
+        )
+    if values.dtype.kind in "O" or pd.api.types.is_string_dtype(values):
+        as_number = pd.to_numeric(values, errors="coerce")
+        numeric_share = as_number.notna().mean()
+        if 0.9 <= numeric_share < 1:
+            odd = as_number.isna() & ~missing
+            sample = values[odd].iloc[0]
+            problems.append(
+                Problem(f"{where}, column '{column}'", f"looks numeric but has text such as '{sample}' at {_rows(odd)}; use numbers only, or wrap the column in C() if it is a category.")
+            )
+
+
+def load_cohort(config: CycleConfig) -> Cohort:
+    """Read the unit table and the cohort named in ``config`` and check them together."""
+    inputs = config.inputs
+    unit_col = inputs.unit_column
+    units = read_table(inputs.units, text_columns=("id",))
+    text_cols = tuple(c for c in (unit_col, inputs.record_column) if c)
+    rows = read_table(inputs.cohort, text_columns=text_cols)
+    problems: list[Problem] = []
+    warnings: list[str] = []
+    u_where, c_where = str(inputs.units), str(inputs.cohort)
+    _check_units(units, u_where, problems)
+
+    needed: dict[str, str] = {unit_col: "[inputs].unit_column"}
+    if inputs.record_column:
+        needed[inputs.record_column] = "[inputs].record_column"
+    risk_factors: list[str] = []
+    for i, m in enumerate(config.measures):
+        needed.setdefault(m.outcome, f"measures[{i}].outcome")
+        try:
+            variables = formula_variables(m.casemix)
+        except ValueError as exc:
+            problems.append(Problem(f"measures[{i}].casemix", str(exc)))
+            continue
+        for v in variables:
+            needed.setdefault(v, f"measures[{i}].casemix")
+            risk_factors.append(v)
+    absent = [c for c in needed if c not in rows.columns]
+    for c in absent:
+        close = difflib.get_close_matches(c, [str(x) for x in rows.columns], n=1)
+        hint = f" Did you mean '{close[0]}'?" if close else ""
+        problems.append(Problem(f"{c_where}, column '{c}'", f"is missing (named by {needed[c]}).{hint} Columns present: {', '.join(map(str, rows.columns))}."))
+    if problems:  # later checks need these columns and a sound unit table
+        raise InputError(problems)
+
+    rows[unit_col] = rows[unit_col].astype("string").str.strip()
+    units = units.assign(id=units["id"].astype("string").str.strip()).set_index("id")
+    unknown = ~rows[unit_col].isin(units.index)
+    if unknown.any():
+        sample = rows.loc[unknown, unit_col].iloc[0]
+        problems.append(Problem(f"{c_where}, column '{unit_col}'", f"has unit ids not in the unit table {u_where}, such as '{sample}', at {_rows(unknown)}. Add them to the unit table or correct the ids."))
+    if inputs.record_column:
+        dup = rows[inputs.record_column].duplicated(keep=False)
+        if dup.any():
+            problems.append(Problem(f"{c_where}, column '{inputs.record_column}'", f"repeats record ids at {_rows(dup)}; each admission or procedure must appear once. Remove the duplicate rows."))
+    else:
+        dup = rows.duplicated(keep=False)
+        if dup.any():
+            warnings.append(f"{c_where}: {int(dup.sum())} rows are exact copies of another row ({_rows(dup)}); set [inputs].record_column to check ids properly.")
+    for m in config.measures:
+        _check_outcome(rows, m.outcome, m.type, c_where, problems)
+    for v in dict.fromkeys(risk_factors):
+        _check_risk_factor(rows, v, c_where, problems)
+    if problems:
+        raise InputError(problems)
+
+    idle = units.index[~units.index.isin(rows[unit_col])]
+    if len(idle):
+        warnings.append(f"{len(idle)} unit(s) in {u_where} have no cases this cycle and are listed without results: {', '.join(idle[:5])}.")
+    keep = [unit_col, *dict.fromkeys([m.outcome for m in config.measures] + risk_factors)]
+    return Cohort(
+        rows=rows[keep].reset_index(drop=True),
+        units=units[["name", "kind"]].astype("string"),
+        unit_column=unit_col,
+        sha256={inputs.cohort.name: _sha256(inputs.cohort), inputs.units.name: _sha256(inputs.units)},
+        warnings=tuple(warnings),
+    )

@@ -1,0 +1,94 @@
+"""Figures (plotnine): adjusted rates with intervals, per measure and per unit.
+
+Position against the benchmark is shown by marker shape *and* colour *and* legend words,
+never colour alone. Colours are from the Okabe & Ito (2008) colour-blind-safe palette.
+"""
+
+from __future__ import annotations
+
+import warnings
+from pathlib import Path
+
+import pandas as pd
+import plotnine as p9
+
+from .results import POSITION, MeasureResult
+
+# position key -> (colour, marker); a data table so pages and figures agree.
+MARKS = {
+    "above": ("#D55E00", "^"),  # vermillion, triangle up
+    "spans": ("#4D4D4D", "o"),  # dark grey, circle
+    "below": ("#0072B2", "v"),  # blue, triangle down
+}
+_LABELS = {k: POSITION[k] for k in MARKS}
+DPI = 110
+
+
+LEGEND = "Where the credible interval sits"
+
+
+def _scales():
+    return [
+        p9.scale_color_manual(values={k: c for k, (c, _) in MARKS.items()}, labels=_LABELS, name=LEGEND, drop=False, limits=list(MARKS)),
+        p9.scale_shape_manual(values={k: s for k, (_, s) in MARKS.items()}, labels=_LABELS, name=LEGEND, drop=False, limits=list(MARKS)),
+    ]
+
+
+def _theme(height: float):
+    return p9.theme_bw(base_size=10) + p9.theme(
+        figure_size=(7.5, height), legend_position="bottom", legend_direction="vertical", panel_grid_minor=p9.element_blank()
+    )
+
+
+def _save(plot, path: Path) -> None:
+    path.parent.mkdir(parents=True, exist_ok=True)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        plot.save(path, dpi=DPI, verbose=False)
+
+
+def measure_figure(result: MeasureResult, path: Path) -> None:
+    """All reported units' risk-standardised rates with credible intervals against the benchmark."""
+    t = result.table[result.table["status"] == "reported"].sort_values("rsr_median")
+    order = list(t["unit_name"])
+    data = t.assign(
+        unit=pd.Categorical(t["unit_name"], categories=order, ordered=True),
+        rsr=t["rsr_median"] * 100, lo=t["rsr_lower"] * 100, hi=t["rsr_upper"] * 100,
+    )
+    plot = (
+        p9.ggplot(data, p9.aes(x="unit", y="rsr", ymin="lo", ymax="hi", colour="position", shape="position"))
+        + p9.geom_hline(yintercept=result.benchmark * 100, linetype="dashed", colour="#000000")
+        + p9.geom_linerange(size=0.8)
+        + p9.geom_point(size=2.6, fill="white")
+        + p9.coord_flip()
+        + _scales()
+        + p9.labs(x="", y=f"Risk-standardised rate, % (dashed line: benchmark {result.benchmark * 100:.1f}%)")
+        + _theme(max(3.0, 1.6 + 0.19 * len(order)))
+    )
+    _save(plot, path)
+
+
+def unit_figure(unit_id: str, results: list[MeasureResult], path: Path) -> bool:
+    """A unit's adjusted ratio to the network on each reported measure; False if none is reported."""
+    rows = []
+    for r in results:
+        row = r.table[(r.table["unit_id"] == unit_id) & (r.table["status"] == "reported")]
+        if len(row):
+            rows.append(row.assign(measure_name=r.measure.name, bench=r.benchmark / r.network_rate))
+    if not rows:
+        return False
+    data = pd.concat(rows)
+    data = data.assign(measure_name=pd.Categorical(data["measure_name"], categories=list(data["measure_name"])[::-1]))
+    plot = (
+        p9.ggplot(data, p9.aes(x="measure_name", y="ratio_median", ymin="ratio_lower", ymax="ratio_upper", colour="position", shape="position"))
+        # The benchmark as a ratio to the network rate: 1 unless a fixed benchmark is configured.
+        + p9.geom_point(p9.aes(x="measure_name", y="bench"), inherit_aes=False, shape="|", size=9, colour="#000000")
+        + p9.geom_linerange(size=0.8)
+        + p9.geom_point(size=3, fill="white")
+        + p9.coord_flip()
+        + _scales()
+        + p9.labs(x="", y="Adjusted ratio to the network\n(1 = as many events as expected for these patients; black bar: benchmark)")
+        + _theme(1.9 + 0.45 * len(data))
+    )
+    _save(plot, path)
+    return True

@@ -1,0 +1,255 @@
+"""Pages: Quarto markdown (.qmd) and ``_quarto.yml`` from Jinja2 templates.
+
+Every number is formatted here, in Python, and handed to a template in a typed context;
+templates only lay values out. Text that comes from data passes through the ``md`` filter,
+which makes it literal in both Quarto (pandoc) and the built-in renderer.
+"""
+
+from __future__ import annotations
+
+import json
+import re
+from dataclasses import dataclass, field, replace
+from pathlib import PurePosixPath
+
+import jinja2
+import pandas as pd
+
+from . import templates_path
+from .config import CycleConfig
+from .results import POSITION, STATUS, MeasureResult
+from .shrinkage import LIMITS, ShrinkageSpec
+
+_MD_SPECIAL = set("\\`*_{}[]()#+-.!|~^$@:\"'")
+_ENTITIES = {"&": "&amp;", "<": "&lt;", ">": "&gt;"}
+
+
+def md(text: object) -> str:
+    """Escape data text so markdown and HTML show it literally (one line, no markup)."""
+    out = []
+    for ch in " ".join(str(text).split()):
+        if ch in _ENTITIES:
+            out.append(_ENTITIES[ch])
+        elif ch in _MD_SPECIAL:
+            out.append("\\" + ch)
+        else:
+            out.append(ch)
+    return "".join(out)
+
+
+def slug(unit_id: str, taken: set[str]) -> str:
+    """A file-name-safe, stable address for a unit (from its id), unique within ``taken``."""
+    base = re.sub(r"[^a-z0-9]+", "-", unit_id.lower()).strip("-")[:60] or "unit"
+    candidate, n = base, 2
+    while candidate in taken:
+        candidate, n = f"{base}-{n}", n + 1
+    taken.add(candidate)
+    return candidate
+
+
+def pct(x: float, digits: int = 1) -> str:
+    return "" if pd.isna(x) else f"{x * 100:.{digits}f}%"
+
+
+def span(lo: float, hi: float, digits: int = 1) -> str:
+    return "" if pd.isna(lo) else f"{lo * 100:.{digits}f}% to {hi * 100:.{digits}f}%"
+
+
+def num(x: float, digits: int = 2) -> str:
+    return "" if pd.isna(x) else f"{x:.{digits}f}"
+
+
+def chance(p: float) -> str:
+    """A posterior probability in words people read easily, never 0% or 100%."""
+    if pd.isna(p):
+        return ""
+    if p < 0.01:
+        return "less than 1%"
+    if p > 0.99:
+        return "more than 99%"
+    return f"{p * 100:.0f}%"
+
+
+def natural_frequency(rate: float) -> str:
+    """'about N in every 100 (or 1,000) patients', with N at least 10 where possible."""
+    base = 100 if rate >= 0.1 else 1000
+    return f"about {rate * base:.0f} in every {base:,} patients"
+
+
+SYMBOLS = {"above": "▲", "spans": "●", "below": "▼", "": ""}
+
+
+@dataclass(frozen=True)
+class Cell:
+    """One unit on one measure, formatted."""
+
+    status: str
+    status_words: str
+    cases: str
+    observed: str
+    expected: str
+    raw_rate: str
+    oe_ratio: str
+    rate: str
+    interval: str
+    ratio: str
+    ratio_interval: str
+    chance_above: str
+    position: str
+    position_words: str
+    symbol: str
+    sentence: str
+
+
+@dataclass(frozen=True)
+class MeasureView:
+    key: str
+    name: str
+    definition: str
+    better: str
+    href: str
+    figure: str
+    patients: str
+    events: str
+    network_rate: str
+    benchmark: str
+    benchmark_is_network: bool
+    c_statistic: str
+    units_in_fit: int
+    formula: str
+    tau: str
+    rhat: str
+    ess: str
+    divergences: int
+    seconds: str
+    coefficients: list[dict[str, str]]
+    rows: list[dict] = field(default_factory=list)  # unit name, href, Cell
+
+
+@dataclass(frozen=True)
+class UnitView:
+    id: str
+    name: str
+    kind: str
+    href: str
+    figure: str  # "" when the unit has no reported measure
+    cells: list[tuple[MeasureView, Cell]]
+
+
+def _sentence(name: str, m: MeasureResult, row: pd.Series, level: str, min_cases: int) -> str:
+    if row["status"] == "too_few":
+        return f"This unit had fewer than {min_cases} cases, too few for a fair estimate, so its numbers are not published."
+    if row["status"] == "no_cases":
+        return "This unit had no cases for this measure in this period."
+    return (
+        f"After allowing for how ill its patients were, {natural_frequency(row['rsr_median'])} at {name} "
+        f"would be expected to have this outcome (we are {level} sure it lies between {span(row['rsr_lower'], row['rsr_upper'])}). "
+        f"The benchmark is {pct(m.benchmark)}. The chance that this unit's adjusted rate is above the benchmark is {chance(row['prob_above_benchmark'])}."
+    )
+
+
+def _cell(m: MeasureResult, row: pd.Series, level: str, min_cases: int) -> Cell:
+    reported = row["status"] == "reported"
+    show = (lambda v: v) if reported else (lambda v: "")
+    return Cell(
+        status=row["status"],
+        status_words=STATUS[row["status"]],
+        cases=show(f"{int(row['cases']):,}") if reported else (f"fewer than {min_cases}" if row["status"] == "too_few" else "0"),
+        observed=show(f"{int(row['observed']):,}") if reported else "",
+        expected=show(f"{row['expected']:.1f}") if reported else "",
+        raw_rate=show(pct(row["raw_rate"])),
+        oe_ratio=show(num(row["oe_ratio"])),
+        rate=show(pct(row["rsr_median"])),
+        interval=show(span(row["rsr_lower"], row["rsr_upper"])),
+        ratio=show(num(row["ratio_median"])),
+        ratio_interval=show(f"{num(row['ratio_lower'])} to {num(row['ratio_upper'])}"),
+        chance_above=show(chance(row["prob_above_benchmark"])),
+        position=row["position"],
+        position_words=POSITION.get(row["position"], STATUS[row["status"]]),
+        symbol=SYMBOLS[row["position"]],
+        sentence=_sentence(md(row["unit_name"]), m, row, level, min_cases),
+    )
+
+
+def views(config: CycleConfig, results: list[MeasureResult], units: pd.DataFrame) -> tuple[list[MeasureView], list[UnitView]]:
+    """Format every number once; return the measure and unit views the templates lay out."""
+    level = f"{config.reporting.interval * 100:g}%"
+    taken: set[str] = set()
+    slugs = {uid: slug(uid, taken) for uid in units.index}
+    measures: list[MeasureView] = []
+    cells: dict[str, list[tuple[MeasureView, Cell]]] = {uid: [] for uid in units.index}
+    for m in results:
+        d = m.diagnostics
+        coefs = [
+            {"term": md(term), "odds_ratio": num(r["odds_ratio"]), "interval": f"{num(r['or_lower'])} to {num(r['or_upper'])}"}
+            for term, r in m.casemix.coefficients.iterrows()
+        ]
+        view = MeasureView(
+            key=m.measure.key, name=md(m.measure.name), definition=md(m.measure.definition), better=m.measure.better,
+            href=f"measures/{m.measure.key}.qmd", figure=f"figures/measure-{m.measure.key}.png",
+            patients=f"{m.casemix.patients:,}", events=f"{m.casemix.events:,}", network_rate=pct(m.network_rate),
+            benchmark=pct(m.benchmark), benchmark_is_network=config.reporting.benchmark == "network",
+            c_statistic=num(m.casemix.c_statistic, 3), units_in_fit=m.casemix.units_in_fit, formula=md(m.casemix.formula),
+            tau=f"{num(m.tau[0])} ({num(m.tau[1])} to {num(m.tau[2])})", rhat=num(d.rhat_max, 3), ess=f"{d.ess_bulk_min:,.0f}",
+            divergences=d.divergences, seconds=f"{d.seconds:.1f}", coefficients=coefs,
+        )
+        ordered = m.table.sort_values(["status", "rsr_median"], key=lambda s: s.map({"reported": 0, "too_few": 1, "no_cases": 2}) if s.name == "status" else s)
+        for _, row in ordered.iterrows():
+            cell = _cell(m, row, level, config.reporting.minimum_cases)
+            view.rows.append({"name": md(row["unit_name"]), "href": f"units/{slugs[row['unit_id']]}.qmd", "cell": cell})
+            cells[row["unit_id"]].append((view, cell))
+        measures.append(view)
+    unit_views = [
+        UnitView(id=md(uid), name=md(u["name"]), kind=md(u["kind"]), href=f"units/{slugs[uid]}.qmd",
+                 figure=f"figures/unit-{slugs[uid]}.png", cells=cells[uid])
+        for uid, u in units.iterrows()
+    ]
+    return measures, unit_views
+
+
+def environment() -> jinja2.Environment:
+    env = jinja2.Environment(
+        loader=jinja2.FileSystemLoader(templates_path()),
+        undefined=jinja2.StrictUndefined,
+        autoescape=False,  # output is markdown; data text is escaped by the md filter instead
+        trim_blocks=True,
+        lstrip_blocks=True,
+        keep_trailing_newline=True,
+    )
+    env.filters["md"] = md
+    env.filters["yaml"] = lambda s: json.dumps(str(s), ensure_ascii=False)  # a JSON string is a YAML scalar
+    return env
+
+
+@dataclass(frozen=True)
+class Page:
+    path: str  # relative to the Quarto project, posix
+    text: str
+
+
+def _up(path: str) -> str:
+    return "../" * (len(PurePosixPath(path).parts) - 1)
+
+
+def render_pages(config: CycleConfig, results: list[MeasureResult], units: pd.DataFrame, site: dict, unit_has_figure: dict[str, bool]) -> list[Page]:
+    """All pages of the site plus ``_quarto.yml``, as text."""
+    env = environment()
+    measures, unit_views = views(config, results, units)
+    unit_views = [u if unit_has_figure.get(uid, False) else replace(u, figure="") for uid, u in zip(units.index, unit_views)]
+    common = {
+        "cycle": config.cycle, "site": site, "measures": measures, "units": unit_views, "limits": LIMITS,
+        "priors": ShrinkageSpec().describe(), "reporting": config.reporting, "sampler": config.sampler,
+        "level": f"{config.reporting.interval * 100:g}%", "positions": POSITION, "symbols": SYMBOLS,
+    }
+    pages = [
+        ("index.qmd", "index.qmd.j2", {}),
+        ("units.qmd", "units.qmd.j2", {}),
+        *[(m.href, "measure.qmd.j2", {"m": m}) for m in measures],
+        *[(u.href, "unit.qmd.j2", {"u": u}) for u in unit_views],
+        ("methods.qmd", "methods.qmd.j2", {}),
+        ("cautions.qmd", "cautions.qmd.j2", {}),
+        ("downloads.qmd", "downloads.qmd.j2", {}),
+    ]
+    out = [Page(path, env.get_template(f"qmd/{tpl}").render(**common, **extra, up=_up(path))) for path, tpl, extra in pages]
+    out.append(Page("_quarto.yml", env.get_template("qmd/_quarto.yml.j2").render(**common, pages=[p for p, _, _ in pages], up="")))
+    return out

@@ -1,0 +1,181 @@
+"""The results table: one row per (measure, unit), with everything a page or download shows.
+
+Numbers stay numbers here; wording and formatting belong to ``pages``. Suppression of small
+units happens here, once, so no later stage can leak a suppressed value.
+"""
+
+from __future__ import annotations
+
+import json
+import math
+from dataclasses import dataclass
+
+import numpy as np
+import pandas as pd
+
+from .casemix import CaseMixFit
+from .config import CycleConfig, MeasureSection
+from .shrinkage import Diagnostics, UnitDraws
+
+# Unit states, in our own words (the key is stored; the words are shown).
+STATUS = {
+    "reported": "Reported",
+    "too_few": "Too few cases to report",
+    "no_cases": "No cases this cycle",
+}
+# Where the credible interval of the adjusted rate lies relative to the benchmark.
+POSITION = {
+    "above": "Interval sits above the benchmark",
+    "spans": "Interval spans the benchmark",
+    "below": "Interval sits below the benchmark",
+}
+PUBLIC_COLUMNS = [
+    "measure", "unit_id", "unit_name", "unit_kind", "status", "cases", "observed", "expected", "raw_rate",
+    "oe_ratio", "rsr_median", "rsr_lower", "rsr_upper", "ratio_median", "ratio_lower", "ratio_upper",
+    "prob_above_benchmark", "position",
+]
+NUMERIC_PUBLIC = PUBLIC_COLUMNS[5:-1]
+
+
+@dataclass(frozen=True)
+class MeasureResult:
+    """One measure's fitted results and the figures that describe the fits."""
+
+    measure: MeasureSection
+    casemix: CaseMixFit
+    diagnostics: Diagnostics
+    network_rate: float
+    benchmark: float
+    tau: tuple[float, float, float]  # posterior median, lower, upper of the between-unit SD
+    table: pd.DataFrame  # full internal table, one row per unit in the unit table
+
+
+def summarise_measure(
+    config: CycleConfig,
+    measure: MeasureSection,
+    units: pd.DataFrame,
+    unit_ids: list[str],
+    counts: pd.DataFrame,
+    casemix: CaseMixFit,
+    draws: UnitDraws,
+    tau_draws: np.ndarray,
+    diagnostics: Diagnostics,
+) -> MeasureResult:
+    """Posterior summaries per unit for one measure.
+
+    ``counts`` has, per fitted unit (same order as ``unit_ids``), cases, observed and expected.
+    """
+    level = config.reporting.interval
+    lo_q, hi_q = (1 - level) / 2, 1 - (1 - level) / 2
+    network_rate = casemix.events / casemix.patients
+    benchmark = network_rate if config.reporting.benchmark == "network" else float(config.reporting.benchmark)
+    rsr = draws.ratio * network_rate
+    fitted = pd.DataFrame(
+        {
+            "unit_id": unit_ids,
+            "cases": counts["cases"].to_numpy(),
+            "observed": counts["observed"].to_numpy(),
+            "expected": counts["expected"].to_numpy(),
+            "ratio_median": np.median(draws.ratio, axis=0),
+            "ratio_lower": np.quantile(draws.ratio, lo_q, axis=0),
+            "ratio_upper": np.quantile(draws.ratio, hi_q, axis=0),
+            "rsr_median": np.median(rsr, axis=0),
+            "rsr_lower": np.quantile(rsr, lo_q, axis=0),
+            "rsr_upper": np.quantile(rsr, hi_q, axis=0),
+            "prob_above_benchmark": (rsr > benchmark).mean(axis=0),
+            "effect_median": np.median(draws.effect, axis=0),
+            "effect_lower": np.quantile(draws.effect, lo_q, axis=0),
+            "effect_upper": np.quantile(draws.effect, hi_q, axis=0),
+        }
+    )
+    table = units.rename(columns={"name": "unit_name", "kind": "unit_kind"}).rename_axis("unit_id").reset_index()
+    table = table.merge(fitted, on="unit_id", how="left")
+    table.insert(0, "measure", measure.key)
+    table["cases"] = table["cases"].fillna(0).astype(int)
+    table["raw_rate"] = table["observed"] / table["cases"].where(table["cases"] > 0)
+    table["oe_ratio"] = table["observed"] / table["expected"]
+    table["status"] = np.select(
+        [table["cases"] == 0, table["cases"] < config.reporting.minimum_cases], ["no_cases", "too_few"], "reported"
+    )
+    table["position"] = np.select(
+        [table["rsr_lower"] > benchmark, table["rsr_upper"] < benchmark, table["status"] == "reported"],
+        ["above", "below", "spans"], "",
+    )
+    table.loc[table["status"] != "reported", "position"] = ""
+    return MeasureResult(
+        measure=measure,
+        casemix=casemix,
+        diagnostics=diagnostics,
+        network_rate=network_rate,
+        benchmark=benchmark,
+        tau=(float(np.median(tau_draws)), float(np.quantile(tau_draws, lo_q)), float(np.quantile(tau_draws, hi_q))),
+        table=table,
+    )
+
+
+def public_table(results: list[MeasureResult]) -> pd.DataFrame:
+    """Everything that may leave the pipeline: suppressed units keep only their name and state."""
+    table = pd.concat([r.table for r in results], ignore_index=True)[PUBLIC_COLUMNS].copy()
+    hidden = table["status"] != "reported"
+    table[NUMERIC_PUBLIC] = table[NUMERIC_PUBLIC].astype(float)
+    table.loc[hidden, NUMERIC_PUBLIC] = np.nan
+    return table
+
+
+def _clean(value):
+    if isinstance(value, float) and math.isnan(value):
+        return None
+    if isinstance(value, (np.floating,)):
+        return None if np.isnan(value) else float(value)
+    if isinstance(value, (np.integer,)):
+        return int(value)
+    return value
+
+
+def results_json(table: pd.DataFrame, results: list[MeasureResult], about: dict) -> str:
+    """The downloadable JSON: cycle description, per-measure summaries and the public rows."""
+    measures = [
+        {
+            "key": r.measure.key,
+            "name": r.measure.name,
+            "definition": r.measure.definition,
+            "better": r.measure.better,
+            "patients": r.casemix.patients,
+            "events": r.casemix.events,
+            "network_rate": r.network_rate,
+            "benchmark": r.benchmark,
+            "c_statistic": r.casemix.c_statistic,
+            "between_unit_sd": dict(zip(["median", "lower", "upper"], r.tau)),
+            "diagnostics": {
+                "rhat_max": r.diagnostics.rhat_max,
+                "ess_bulk_min": r.diagnostics.ess_bulk_min,
+                "divergences": r.diagnostics.divergences,
+            },
+        }
+        for r in results
+    ]
+    rows = [{k: _clean(v) for k, v in row.items()} for row in table.to_dict(orient="records")]
+    return json.dumps({"about": about, "measures": measures, "results": rows}, indent=2, ensure_ascii=False)
+
+
+# Meaning of every downloadable column (shown on the downloads page).
+DICTIONARY = {
+    "measure": "Key of the measure (see results.json for its name and definition).",
+    "unit_id": "The unit's id in the network's unit table.",
+    "unit_name": "The unit's name.",
+    "unit_kind": "What kind of unit it is.",
+    "status": "reported; too_few (fewer cases than the publication minimum: numbers withheld); no_cases.",
+    "cases": "Patients counted for this measure.",
+    "observed": "Patients who had the outcome.",
+    "expected": "Patients expected to have the outcome given their recorded risk factors (case-mix fit).",
+    "raw_rate": "observed / cases, not adjusted for risk or chance.",
+    "oe_ratio": "observed / expected, not adjusted for chance.",
+    "rsr_median": "Risk-standardised rate: posterior median.",
+    "rsr_lower": "Lower end of the credible interval of the risk-standardised rate.",
+    "rsr_upper": "Upper end of the credible interval of the risk-standardised rate.",
+    "ratio_median": "Predicted / expected events (risk-standardised rate / network rate): posterior median.",
+    "ratio_lower": "Lower end of the credible interval of that ratio.",
+    "ratio_upper": "Upper end of the credible interval of that ratio.",
+    "prob_above_benchmark": "Posterior probability that the risk-standardised rate is above the benchmark.",
+    "position": "above / spans / below: where the credible interval sits relative to the benchmark.",
+}

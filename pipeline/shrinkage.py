@@ -1,0 +1,219 @@
+"""Shrinkage fit: a hierarchical logistic model with one random intercept per unit.
+
+Spec, build, run (three steps, each testable alone):
+
+* :class:`ShrinkageSpec` is the plain description (priors, parameterisation);
+* :func:`build_model` turns a spec and a :class:`Cells` table into a ``pm.Model`` whose
+  data are ``pm.Data`` containers, so one compiled model serves every measure of a cycle;
+* :func:`run` samples it (nutpie, or PyMC's own NUTS) and checks the diagnostics.
+
+Model (binary measure; patient j in unit i, case-mix linear risk x_ij from the case-mix fit)::
+
+    logit P(y_ij = 1) = c + mu + u_i + x_ij,  u_i = tau * z_i,  z_i ~ Normal(0, 1)
+    mu ~ Normal(0, 1),  tau ~ HalfNormal(1)
+
+Patients of one unit with the same linear risk are pooled into one binomial cell, which
+changes no likelihood value (the binomial is the sum of its Bernoullis).
+
+Per unit the risk-standardised rate (Krumholz et al. 2006, Circulation 113:1683; Normand &
+Shahian 2007, Statistical Science 22:206) is, draw by draw,
+``RSR_i = P_i / E_i * network observed rate`` with ``P_i = sum_j expit(c + mu + u_i + x_ij)``
+and ``E_i = sum_j expit(c + mu + x_ij)``.
+"""
+
+from __future__ import annotations
+
+import warnings
+from dataclasses import dataclass, field
+
+import numpy as np
+import pandas as pd
+from scipy.special import expit
+
+from .config import SamplerSection
+from .errors import FitError
+
+# Built-in priors: a data table (name -> distribution, parameters), printed on the methods page.
+PRIORS: dict[str, tuple[str, dict[str, float]]] = {
+    "mu": ("Normal", {"mu": 0.0, "sigma": 1.0}),
+    "tau": ("HalfNormal", {"sigma": 1.0}),
+}
+
+# Diagnostic limits (Vehtari et al. 2021, Bayesian Analysis 16:667: R-hat below 1.01 and a
+# bulk effective sample size of at least 100 per chain; divergences must be absent).
+LIMITS = {"rhat_max": 1.01, "ess_bulk_per_chain_min": 100, "divergences_max": 0}
+
+
+@dataclass(frozen=True)
+class ShrinkageSpec:
+    """What the shrinkage model is, without data."""
+
+    priors: dict[str, tuple[str, dict[str, float]]] = field(default_factory=lambda: dict(PRIORS))
+    parameterisation: str = "non-centred"
+
+    def describe(self) -> list[str]:
+        """One line per prior, in the notation of the methods page."""
+        return [f"{name} ~ {dist}({', '.join(f'{k}={v:g}' for k, v in args.items())})" for name, (dist, args) in self.priors.items()]
+
+
+@dataclass(frozen=True)
+class Cells:
+    """Patients pooled by (unit, linear risk): the exact sufficient statistics of the fit."""
+
+    unit: np.ndarray  # unit code 0..n_units-1
+    offset: np.ndarray  # calibrated intercept + linear risk
+    n: np.ndarray  # patients in the cell
+    r: np.ndarray  # events in the cell
+    n_units: int
+
+    @classmethod
+    def from_patients(cls, unit_codes: np.ndarray, offset: np.ndarray, y: np.ndarray, n_units: int) -> "Cells":
+        frame = pd.DataFrame({"unit": unit_codes, "offset": offset, "y": y})
+        grouped = frame.groupby(["unit", "offset"], sort=True)["y"].agg(["size", "sum"]).reset_index()
+        return cls(
+            unit=grouped["unit"].to_numpy(np.int64),
+            offset=grouped["offset"].to_numpy(float),
+            n=grouped["size"].to_numpy(float),
+            r=grouped["sum"].to_numpy(float),
+            n_units=n_units,
+        )
+
+    def data(self) -> dict[str, np.ndarray]:
+        return {"unit": self.unit, "offset": self.offset, "n": self.n, "r": self.r}
+
+
+def build_model(spec: ShrinkageSpec, cells: Cells):
+    """Build the PyMC model of ``spec`` with ``cells`` as swappable data."""
+    import pymc as pm
+    import pytensor.tensor as pt
+
+    def prior(name: str, **kw):
+        dist, args = spec.priors[name]
+        return getattr(pm, dist)(name, **args, **kw)
+
+    with pm.Model() as model:
+        data = {k: pm.Data(k, v) for k, v in cells.data().items()}
+        mu = prior("mu")
+        tau = prior("tau")
+        z = pm.Normal("z", 0.0, 1.0, shape=cells.n_units)
+        pm.Deterministic("u", tau * z)
+        eta = data["offset"] + mu + tau * z[data["unit"]]
+        # Binomial log-likelihood without its constant: r*eta - n*log(1 + exp(eta)).
+        pm.Potential("loglik", pt.sum(data["r"] * eta - data["n"] * pt.softplus(eta)))
+    return model
+
+
+@dataclass(frozen=True)
+class Diagnostics:
+    rhat_max: float
+    ess_bulk_min: float
+    divergences: int
+    chains: int
+    draws: int
+    seconds: float
+
+    def failures(self) -> list[str]:
+        out = []
+        if not self.rhat_max <= LIMITS["rhat_max"]:
+            out.append(f"largest R-hat {self.rhat_max:.3f} is above {LIMITS['rhat_max']}")
+        if not self.ess_bulk_min >= LIMITS["ess_bulk_per_chain_min"] * self.chains:
+            out.append(f"smallest bulk ESS {self.ess_bulk_min:.0f} is below {LIMITS['ess_bulk_per_chain_min'] * self.chains}")
+        if self.divergences > LIMITS["divergences_max"]:
+            out.append(f"{self.divergences} divergent transitions")
+        return out
+
+
+class Sampler:
+    """Compiles the model once per cycle and fits every measure's cells with it."""
+
+    def __init__(self, spec: ShrinkageSpec, settings: SamplerSection, engine: str = "nutpie"):
+        self.spec, self.settings, self.engine = spec, settings, engine
+        self._compiled = None
+
+    def run(self, cells: Cells, seed: int):
+        """Sample the posterior for ``cells``; return (posterior draws, diagnostics)."""
+        import time
+
+        import arviz as az
+
+        s = self.settings
+        start = time.perf_counter()
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            if self.engine == "nutpie":
+                import nutpie
+
+                if self._compiled is None or self._compiled_units != cells.n_units:
+                    self._compiled = nutpie.compile_pymc_model(build_model(self.spec, cells))
+                    self._compiled_units = cells.n_units
+                compiled = self._compiled.with_data(**cells.data())
+                idata = nutpie.sample(
+                    compiled, draws=s.draws, tune=s.tune, chains=s.chains, cores=s.cores,
+                    seed=seed, target_accept=s.target_accept, progress_bar=False,
+                    # Adapts to the mu-versus-mean(z) correlation: measured 4x the bulk ESS of mu
+                    # on the demo network at the same cost (see DEVELOPERS.md, "Sampler").
+                    low_rank_modified_mass_matrix=True,
+                )
+            else:
+                import pymc as pm
+
+                with build_model(self.spec, cells):
+                    idata = pm.sample(
+                        draws=s.draws, tune=s.tune, chains=s.chains, cores=s.cores, random_seed=seed,
+                        target_accept=s.target_accept, progressbar=False, compute_convergence_checks=False,
+                    )
+            names = ["mu", "tau", "z"]
+            rhat = az.rhat(idata, var_names=names)
+            ess = az.ess(idata, var_names=names, method="bulk")
+        diagnostics = Diagnostics(
+            rhat_max=float(max(rhat[v].max() for v in names)),
+            ess_bulk_min=float(min(ess[v].min() for v in names)),
+            divergences=int(idata.sample_stats["diverging"].sum()),
+            chains=s.chains,
+            draws=s.draws,
+            seconds=time.perf_counter() - start,
+        )
+        post = idata.posterior
+        draws = {
+            "mu": post["mu"].values.reshape(-1),
+            "tau": post["tau"].values.reshape(-1),
+            "u": (post["tau"].values[..., None] * post["z"].values).reshape(-1, cells.n_units),
+        }
+        return draws, diagnostics
+
+
+@dataclass(frozen=True)
+class UnitDraws:
+    """Posterior draws per unit: risk-standardised ratio P/E and unit effect u."""
+
+    ratio: np.ndarray  # (draws, units) P_i / E_i
+    effect: np.ndarray  # (draws, units) u_i on the log-odds scale
+
+
+def unit_draws(cells: Cells, draws: dict[str, np.ndarray], max_draws: int = 4000) -> UnitDraws:
+    """Predicted over expected events per unit, draw by draw (the Krumholz ratio P/E)."""
+    mu, u = draws["mu"], draws["u"]
+    if len(mu) > max_draws:  # evenly thinned: the summaries need no more
+        keep = np.linspace(0, len(mu) - 1, max_draws).round().astype(int)
+        mu, u = mu[keep], u[keep]
+    ratio = np.full(u.shape, np.nan)
+    order = np.argsort(cells.unit, kind="stable")
+    bounds = np.searchsorted(cells.unit[order], np.arange(cells.n_units + 1))
+    for i in range(cells.n_units):
+        idx = order[bounds[i] : bounds[i + 1]]
+        if len(idx) == 0:
+            continue
+        off, n = cells.offset[idx], cells.n[idx]
+        base = mu[:, None] + off[None, :]
+        predicted = expit(base + u[:, i, None]) @ n
+        expected = expit(base) @ n
+        ratio[:, i] = predicted / expected
+    return UnitDraws(ratio=ratio, effect=u)
+
+
+def fit_failed(measure: str, diagnostics: Diagnostics) -> FitError:
+    reasons = "; ".join(diagnostics.failures())
+    return FitError(
+        f"measure '{measure}': the shrinkage fit did not pass its checks ({reasons}). Nothing was published. "
+        "Try more warm-up draws ([sampler].tune) or a higher [sampler].target_accept, then run the cycle again."
+    )
