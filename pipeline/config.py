@@ -127,10 +127,12 @@ class MeasureSection:
     name: str = option(doc="Plain-language name, e.g. \"Readmission within 30 days\".", check=_nonempty)
     definition: str = option(doc="One or two plain sentences saying who is counted and what counts as the outcome.", check=_nonempty)
     outcome: str = option(doc="Cohort column holding the outcome (0/1 for binary measures).", check=_nonempty)
-    type: str = option("binary", doc="Outcome type; see OUTCOME_TYPES.")
+    type: str = option("binary", doc="Outcome type: binary.", check=lambda v: _outcome_type(v))
     better: Literal["lower", "higher"] = option("lower", doc="Which direction is better for patients.")
     casemix: str = option(
-        "1", doc="Right-hand side of the case-mix formula (patsy syntax), e.g. \"C(age_band) + diabetes\"; \"1\" = no adjustment."
+        "1",
+        doc="Right-hand side of the case-mix formula (patsy syntax), e.g. \"C(age_band) + diabetes\"; \"1\" = no adjustment.",
+        check=lambda v: "give only the right-hand side of the formula (no '~'); the outcome comes from 'outcome'" if "~" in v else _nonempty(v),
     )
 
 
@@ -138,6 +140,12 @@ class MeasureSection:
 OUTCOME_TYPES: dict[str, str] = {
     "binary": "0/1 outcome; logistic case-mix fit; hierarchical logistic shrinkage fit",
 }
+
+def _outcome_type(value: str) -> str | None:
+    if value in OUTCOME_TYPES:
+        return None
+    return f"'{value}' is not an outcome type fairgauge fits. Allowed: {', '.join(OUTCOME_TYPES)}.{_hint(value, OUTCOME_TYPES)}"
+
 
 SECTIONS: dict[str, type] = {
     "cycle": CycleSection,
@@ -231,18 +239,13 @@ def _build_section(cls: type, table: Any, where: str, base: Path, problems: list
 
 
 def _check_measures(measures: list[MeasureSection], problems: list[Problem]) -> None:
+    """Checks across measures (each field was checked on its own already)."""
     seen: dict[str, int] = {}
     for i, m in enumerate(measures):
         where = f"measures[{i}]"
         if m.key in seen:
             problems.append(Problem(f"{where}.key", f"'{m.key}' is already used by measures[{seen[m.key]}]; keys must be unique"))
         seen.setdefault(m.key, i)
-        if m.type not in OUTCOME_TYPES:
-            problems.append(
-                Problem(f"{where}.type", f"'{m.type}' is not an outcome type fairgauge fits. Allowed: {', '.join(OUTCOME_TYPES)}.{_hint(m.type, OUTCOME_TYPES)}")
-            )
-        if "~" in m.casemix:
-            problems.append(Problem(f"{where}.casemix", "give only the right-hand side of the formula (no '~'); the outcome comes from 'outcome'"))
 
 
 def load_config(path: str | Path) -> CycleConfig:

@@ -42,6 +42,16 @@ def _sha256(path: Path) -> str:
     return h.hexdigest()
 
 
+def _first_non_utf8_line(path: Path) -> int:
+    with path.open("rb") as fh:
+        for number, line in enumerate(fh, start=1):
+            try:
+                line.decode("utf-8")
+            except UnicodeDecodeError:
+                return number
+    return 0
+
+
 def read_table(path: Path, text_columns: tuple[str, ...] = ()) -> pd.DataFrame:
     """Read a CSV or Parquet file; ``text_columns`` are kept as text (ids must not become numbers)."""
     where = str(path)
@@ -60,8 +70,8 @@ def read_table(path: Path, text_columns: tuple[str, ...] = ()) -> pd.DataFrame:
             raise InputError([Problem(where, f"unsupported file type '{suffix}'. Allowed: .csv, .parquet.")])
     except InputError:
         raise
-    except UnicodeDecodeError as exc:
-        raise InputError([Problem(where, f"is not UTF-8 text (byte {exc.start}). Save it as UTF-8 and run again.")]) from None
+    except UnicodeDecodeError:
+        raise InputError([Problem(where, f"is not UTF-8 text (first at line {_first_non_utf8_line(path)}). Save it as UTF-8 and run again.")]) from None
     except pd.errors.EmptyDataError:
         raise InputError([Problem(where, "is empty: it needs a header row and at least one data row.")]) from None
     except Exception as exc:  # pandas/pyarrow raise many types for damaged files
@@ -81,14 +91,14 @@ def _rows(mask: pd.Series | np.ndarray) -> str:
 def formula_variables(rhs: str) -> list[str]:
     """Column names a patsy right-hand side uses (function names such as C or np.log excluded)."""
     try:
-        tree = ast.parse(rhs.replace("~", " "), mode="eval")
+        # patsy's interaction operator ':' is not Python; any binary operator parses the same names
+        tree = ast.parse(rhs.replace("~", " ").replace(":", "*"), mode="eval")
     except SyntaxError as exc:
         raise ValueError(f"'{rhs}' is not a valid formula: {exc.msg}") from None
     called = {id(n.func) for n in ast.walk(tree) if isinstance(n, ast.Call)}
     attr_bases = {id(n.value) for n in ast.walk(tree) if isinstance(n, ast.Attribute)}
-    names = [
-        n.id for n in ast.walk(tree) if isinstance(n, ast.Name) and id(n) not in called and id(n) not in attr_bases
-    ]
+    found = [n for n in ast.walk(tree) if isinstance(n, ast.Name) and id(n) not in called and id(n) not in attr_bases]
+    names = [n.id for n in sorted(found, key=lambda n: n.col_offset)]  # in the order they are written
     return list(dict.fromkeys(names))
 
 

@@ -37,6 +37,16 @@ def md(text: object) -> str:
     return "".join(out)
 
 
+def code(text: object) -> str:
+    """Data text as an inline code span: shown literally, with no escapes visible.
+
+    The fence is longer than any run of backticks inside; '|' is escaped for pipe tables.
+    """
+    body = " ".join(str(text).split()).replace("|", "\\|")
+    fence = "`" * (max((len(run) for run in re.findall(r"`+", body)), default=0) + 1)
+    return f"{fence} {body} {fence}"
+
+
 def slug(unit_id: str, taken: set[str]) -> str:
     """A file-name-safe, stable address for a unit (from its id), unique within ``taken``."""
     base = re.sub(r"[^a-z0-9]+", "-", unit_id.lower()).strip("-")[:60] or "unit"
@@ -189,7 +199,7 @@ def views(config: CycleConfig, results: list[MeasureResult], units: pd.DataFrame
             href=f"measures/{m.measure.key}.qmd", figure=f"figures/measure-{m.measure.key}.png",
             patients=f"{m.casemix.patients:,}", events=f"{m.casemix.events:,}", network_rate=pct(m.network_rate),
             benchmark=pct(m.benchmark), benchmark_is_network=config.reporting.benchmark == "network",
-            c_statistic=num(m.casemix.c_statistic, 3), units_in_fit=m.casemix.units_in_fit, formula=md(m.casemix.formula),
+            c_statistic=num(m.casemix.c_statistic, 3), units_in_fit=m.casemix.units_in_fit, formula=code(m.casemix.formula),
             tau=f"{num(m.tau[0])} ({num(m.tau[1])} to {num(m.tau[2])})", rhat=num(d.rhat_max, 3), ess=f"{d.ess_bulk_min:,.0f}",
             divergences=d.divergences, seconds=f"{d.seconds:.1f}", coefficients=coefs,
         )
@@ -217,6 +227,7 @@ def environment() -> jinja2.Environment:
         keep_trailing_newline=True,
     )
     env.filters["md"] = md
+    env.filters["code"] = code
     env.filters["yaml"] = lambda s: json.dumps(str(s), ensure_ascii=False)  # a JSON string is a YAML scalar
     return env
 

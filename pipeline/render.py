@@ -8,6 +8,7 @@ links, figures and downloads.
 
 from __future__ import annotations
 
+import html
 import re
 import shutil
 from dataclasses import dataclass
@@ -16,6 +17,7 @@ from pathlib import Path, PurePosixPath
 import jinja2
 import yaml
 from markdown_it import MarkdownIt
+from markupsafe import Markup
 
 from . import __version__, templates_path
 from .errors import RenderError
@@ -102,9 +104,10 @@ class BuiltinRenderer:
 
     def nav(self, up: str) -> list[dict]:
         def link(item: dict) -> dict:
+            text = Markup(self.inline(str(item["text"])))  # names in the navigation are escaped markdown
             if "menu" in item:
-                return {"text": item["text"], "href": "", "menu": [link(x) for x in item["menu"]]}
-            return {"text": item["text"], "href": up + item["href"].replace(".qmd", ".html"), "menu": []}
+                return {"text": text, "href": "", "menu": [link(x) for x in item["menu"]]}
+            return {"text": text, "href": up + item["href"].replace(".qmd", ".html"), "menu": []}
 
         return [link(x) for x in self.config["website"]["navbar"]["left"]]
 
@@ -121,13 +124,13 @@ class BuiltinRenderer:
         return self.shell.render(
             up=up,
             site_title=website["title"],
-            title=jinja2.utils.markupsafe.Markup(self.inline(str(meta.get("title", "")))),
-            subtitle=jinja2.utils.markupsafe.Markup(self.inline(str(meta.get("subtitle", "")))),
-            plain_title=re.sub(r"\\(.)", r"\1", str(meta.get("title", ""))),
-            body=jinja2.utils.markupsafe.Markup(body),
+            title=Markup(self.inline(str(meta.get("title", "")))),
+            subtitle=Markup(self.inline(str(meta.get("subtitle", "")))),
+            plain_title=html.unescape(re.sub(r"\\(.)", r"\1", str(meta.get("title", "")))),
+            body=Markup(body),
             nav=self.nav(up),
             current=rel.replace(".qmd", ".html"),
-            footer=jinja2.utils.markupsafe.Markup(self.inline(website["page-footer"]["left"])),
+            footer=Markup(self.inline(website["page-footer"]["left"])),
         )
 
     def render(self, out: Path) -> None:

@@ -44,12 +44,29 @@ PRIORS: dict[str, tuple[str, dict[str, float]]] = {
 LIMITS = {"rhat_max": 1.01, "ess_bulk_per_chain_min": 100, "divergences_max": 0}
 
 
+# How much units borrow from each other: a data table of the built-in choices.
+POOLING = {
+    "partial": "unit intercepts from a common Normal(mu, tau), non-centred: the published model",
+    "none": "independent unit intercepts with a Logistic(0, 1) prior, which is a uniform prior on each "
+    "unit's rate; nothing is borrowed between units (used to check the engine against exact results)",
+}
+
+
 @dataclass(frozen=True)
 class ShrinkageSpec:
     """What the shrinkage model is, without data."""
 
     priors: dict[str, tuple[str, dict[str, float]]] = field(default_factory=lambda: dict(PRIORS))
-    parameterisation: str = "non-centred"
+    pooling: str = "partial"
+
+    def __post_init__(self) -> None:
+        if self.pooling not in POOLING:
+            raise ValueError(f"pooling must be one of {', '.join(POOLING)}; got {self.pooling!r}")
+
+    @property
+    def sampled(self) -> list[str]:
+        """Names of the sampled parameters (the ones diagnostics are computed on)."""
+        return ["mu", "tau", "z"] if self.pooling == "partial" else ["a"]
 
     def describe(self) -> list[str]:
         """One line per prior, in the notation of the methods page."""
@@ -93,11 +110,14 @@ def build_model(spec: ShrinkageSpec, cells: Cells):
 
     with pm.Model() as model:
         data = {k: pm.Data(k, v) for k, v in cells.data().items()}
-        mu = prior("mu")
-        tau = prior("tau")
-        z = pm.Normal("z", 0.0, 1.0, shape=cells.n_units)
-        pm.Deterministic("u", tau * z)
-        eta = data["offset"] + mu + tau * z[data["unit"]]
+        if spec.pooling == "partial":
+            mu = prior("mu")
+            tau = prior("tau")
+            z = pm.Normal("z", 0.0, 1.0, shape=cells.n_units)
+            eta = data["offset"] + mu + tau * z[data["unit"]]
+        else:
+            a = pm.Logistic("a", 0.0, 1.0, shape=cells.n_units)
+            eta = data["offset"] + a[data["unit"]]
         # Binomial log-likelihood without its constant: r*eta - n*log(1 + exp(eta)).
         pm.Potential("loglik", pt.sum(data["r"] * eta - data["n"] * pt.softplus(eta)))
     return model
@@ -129,6 +149,7 @@ class Sampler:
     def __init__(self, spec: ShrinkageSpec, settings: SamplerSection, engine: str = "nutpie"):
         self.spec, self.settings, self.engine = spec, settings, engine
         self._compiled = None
+        self._compiled_units = -1
 
     def run(self, cells: Cells, seed: int):
         """Sample the posterior for ``cells``; return (posterior draws, diagnostics)."""
@@ -143,7 +164,7 @@ class Sampler:
             if self.engine == "nutpie":
                 import nutpie
 
-                if self._compiled is None or self._compiled_units != cells.n_units:
+                if self._compiled is None or self._compiled_units != cells.n_units:  # compile once per cycle
                     self._compiled = nutpie.compile_pymc_model(build_model(self.spec, cells))
                     self._compiled_units = cells.n_units
                 compiled = self._compiled.with_data(**cells.data())
@@ -162,7 +183,7 @@ class Sampler:
                         draws=s.draws, tune=s.tune, chains=s.chains, cores=s.cores, random_seed=seed,
                         target_accept=s.target_accept, progressbar=False, compute_convergence_checks=False,
                     )
-            names = ["mu", "tau", "z"]
+            names = self.spec.sampled
             rhat = az.rhat(idata, var_names=names)
             ess = az.ess(idata, var_names=names, method="bulk")
         diagnostics = Diagnostics(
@@ -173,13 +194,19 @@ class Sampler:
             draws=s.draws,
             seconds=time.perf_counter() - start,
         )
-        post = idata.posterior
-        draws = {
-            "mu": post["mu"].values.reshape(-1),
-            "tau": post["tau"].values.reshape(-1),
-            "u": (post["tau"].values[..., None] * post["z"].values).reshape(-1, cells.n_units),
-        }
-        return draws, diagnostics
+        return posterior_draws(self.spec, idata.posterior, cells.n_units), diagnostics
+
+
+def posterior_draws(spec: ShrinkageSpec, post, n_units: int) -> dict[str, np.ndarray]:
+    """Flatten chains: mu (draws,), tau (draws,), u (draws, units) with intercept = mu + u."""
+    if spec.pooling == "partial":
+        mu = post["mu"].values.reshape(-1)
+        tau = post["tau"].values.reshape(-1)
+        u = (post["tau"].values[..., None] * post["z"].values).reshape(-1, n_units)
+    else:  # no common mean: the reference intercept is 0 and each unit's own intercept is u
+        u = post["a"].values.reshape(-1, n_units)
+        mu, tau = np.zeros(len(u)), np.full(len(u), np.inf)
+    return {"mu": mu, "tau": tau, "u": u}
 
 
 @dataclass(frozen=True)

@@ -1,0 +1,78 @@
+"""Shared fixtures: tiny seeded inputs, and one real demo cycle per test session."""
+
+from __future__ import annotations
+
+import textwrap
+from pathlib import Path
+
+import pandas as pd
+import pytest
+
+from pipeline.config import load_config
+from pipeline.cycle import run_cycle
+from pipeline.demo import write_demo
+
+BASE_CONFIG = """
+[cycle]
+title = "Test network"
+publisher = "Test publisher"
+period = "Test period"
+output = "site"
+renderer = "builtin"
+
+[inputs]
+cohort = "cohort.csv"
+units = "units.csv"
+record_column = "stay_id"
+
+[sampler]
+chains = 2
+draws = 300
+tune = 300
+cores = 1
+
+[[measures]]
+key = "readmit"
+name = "Readmission"
+definition = "Readmitted within 30 days."
+outcome = "readmit"
+casemix = "age + C(sex)"
+"""
+
+
+def small_cohort() -> tuple[pd.DataFrame, pd.DataFrame]:
+    """Six rows over two units: the smallest valid input."""
+    units = pd.DataFrame({"id": ["a1", "b2"], "name": ["Unit A", "Unit B"], "kind": ["hospital", "clinic"]})
+    cohort = pd.DataFrame(
+        {
+            "stay_id": [f"s{i}" for i in range(6)],
+            "unit_id": ["a1", "a1", "a1", "b2", "b2", "b2"],
+            "age": [50, 61, 72, 45, 80, 66],
+            "sex": ["F", "M", "F", "M", "F", "M"],
+            "readmit": [0, 1, 0, 0, 1, 1],
+        }
+    )
+    return units, cohort
+
+
+@pytest.fixture
+def cycle_folder(tmp_path: Path):
+    """Write a valid small config plus inputs; return a function that writes variants."""
+
+    def write(config: str = BASE_CONFIG, units: pd.DataFrame | None = None, cohort: pd.DataFrame | None = None) -> Path:
+        u, c = small_cohort()
+        (units if units is not None else u).to_csv(tmp_path / "units.csv", index=False)
+        (cohort if cohort is not None else c).to_csv(tmp_path / "cohort.csv", index=False)
+        (tmp_path / "cycle.toml").write_text(textwrap.dedent(config), encoding="utf-8")
+        return tmp_path / "cycle.toml"
+
+    return write
+
+
+@pytest.fixture(scope="session")
+def demo_cycle(tmp_path_factory):
+    """The real demo cycle, run once: (demo files, summary, site folder)."""
+    folder = tmp_path_factory.mktemp("demo")
+    files = write_demo(folder / "inputs", folder / "site")
+    summary = run_cycle(load_config(files.config), renderer="builtin")
+    return files, summary, folder / "site"

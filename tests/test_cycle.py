@@ -1,0 +1,210 @@
+"""End to end: the demo cycle builds a complete site; its known true effects are recovered;
+a failed cycle leaves the last good site untouched."""
+
+from __future__ import annotations
+
+import dataclasses
+import filecmp
+import re
+import shutil
+from html.parser import HTMLParser
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+import pytest
+import yaml
+
+from pipeline.config import load_config
+from pipeline.cycle import MARKER, run_cycle
+from pipeline.errors import FitError, RenderError
+from pipeline.shrinkage import Diagnostics, Sampler
+
+pytestmark = pytest.mark.slow
+
+
+class _Links(HTMLParser):
+    def __init__(self):
+        super().__init__()
+        self.targets: list[str] = []
+
+    def handle_starttag(self, tag, attrs):
+        for name, value in attrs:
+            if (tag, name) in {("a", "href"), ("img", "src"), ("link", "href")} and value:
+                self.targets.append(value)
+
+
+def _html_pages(site: Path) -> list[Path]:
+    return sorted(p for p in site.rglob("*.html") if "_source" not in p.parts)
+
+
+def test_quarto_project_is_complete_and_has_no_code_cells(demo_cycle):
+    _, summary, site = demo_cycle
+    project = site / "_source"
+    config = yaml.safe_load((project / "_quarto.yml").read_text())
+    assert config["project"]["type"] == "website"
+    listed = config["project"]["render"]
+    on_disk = sorted(p.relative_to(project).as_posix() for p in project.rglob("*.qmd"))
+    assert sorted(listed) == on_disk
+    assert len(listed) == 1 + 1 + len(summary.measures) + summary.units + 3  # home, units, measures, profiles, methods, cautions, downloads
+    for item in config["website"]["navbar"]["left"]:
+        for link in item.get("menu", [item]):
+            assert (project / link["href"]).is_file()
+    for qmd in listed:
+        text = (project / qmd).read_text()
+        assert text.startswith("---\n")
+        assert not re.search(r"^```+\s*\{", text, re.M), f"{qmd} has an executable code cell"
+
+
+def test_every_page_is_rendered_and_every_link_and_image_resolves(demo_cycle):
+    _, summary, site = demo_cycle
+    pages = _html_pages(site)
+    assert len(pages) == 1 + 1 + len(summary.measures) + summary.units + 3
+    broken = []
+    for page in pages:
+        parser = _Links()
+        parser.feed(page.read_text())
+        assert parser.targets, page
+        for target in parser.targets:
+            if target.startswith(("#", "http:", "https:", "mailto:")):
+                continue
+            path = (page.parent / target.split("#")[0]).resolve()
+            if not path.is_file():
+                broken.append(f"{page.relative_to(site)} -> {target}")
+    assert broken == []
+    assert (site / "figures" / "measure-readmit30.png").stat().st_size > 10_000
+    assert (site / MARKER).is_file()
+
+
+def test_every_page_says_the_data_are_invented_and_carries_the_caution(demo_cycle):
+    _, _, site = demo_cycle
+    for page in _html_pages(site):
+        text = page.read_text()
+        assert "Everything on this site is invented for demonstration" in text, page
+        assert "invented demonstration data" in text, page  # footer
+    for page in ["index.html", "cautions.html", "measures/death30.html", "units/mv01.html"]:
+        assert "Do not choose or avoid care on these numbers alone" in (site / page).read_text()
+
+
+def test_downloads_hold_one_row_per_unit_and_measure_and_suppress_small_units(demo_cycle):
+    _, summary, site = demo_cycle
+    table = pd.read_csv(site / "downloads" / "results.csv")
+    assert len(table) == summary.units * len(summary.measures)
+    small = table[table["status"] == "too_few"]
+    assert len(small) > 0  # the demo always has a 10-patient unit
+    assert small[["cases", "observed", "expected", "raw_rate", "rsr_median", "prob_above_benchmark"]].isna().all().all()
+    reported = table[table["status"] == "reported"]
+    assert reported["rsr_median"].between(0, 1).all()
+    assert (reported["rsr_lower"] <= reported["rsr_median"]).all() and (reported["rsr_median"] <= reported["rsr_upper"]).all()
+    unit = small.iloc[0]
+    from pipeline.pages import slug
+
+    assert "too few for a fair estimate" in (site / "units" / f"{slug(unit['unit_id'], set())}.html").read_text()
+
+
+def test_no_patient_rows_reach_the_site(demo_cycle):
+    files, _, site = demo_cycle
+    stay_ids = set(pd.read_csv(files.cohort, usecols=["stay_id"])["stay_id"].sample(200, random_state=1))
+    for path in site.rglob("*"):
+        if path.is_file() and path.suffix in {".html", ".qmd", ".csv", ".json", ".yml"}:
+            text = path.read_text()
+            assert not any(s in text for s in stay_ids), path
+
+
+def test_methods_page_shows_this_cycles_numbers(demo_cycle):
+    _, summary, site = demo_cycle
+    methods = (site / "methods.html").read_text()
+    for r in summary.results:
+        assert f"{r.casemix.c_statistic:.3f}" in methods
+        assert f"{r.diagnostics.rhat_max:.3f}" in methods
+    assert "tau ~ HalfNormal(sigma=1)" in methods
+
+
+def test_demo_true_effects_are_recovered_at_about_the_nominal_rate(demo_cycle):
+    files, summary, _ = demo_cycle
+    truth = pd.read_csv(files.truth, dtype={"unit_id": str})
+    fitted = pd.concat([r.table for r in summary.results]).merge(truth, on=["measure", "unit_id"])
+    inside = (fitted["ratio_lower"] <= fitted["true_ratio"]) & (fitted["true_ratio"] <= fitted["ratio_upper"])
+    coverage = inside.mean()
+    # 95% intervals over 3 measures x 44 units = 132 intervals: the binomial SD of coverage is
+    # about 1.9 points, so 88% is more than 3 SD below nominal.
+    assert len(fitted) == 132
+    assert 0.88 <= coverage <= 1.0, f"coverage {coverage:.3f}"
+    # Shrinkage must pay off: adjusted ratios closer to the truth than raw O/E ratios.
+    error_shrunk = np.sqrt(np.mean(np.log(fitted["ratio_median"] / fitted["true_ratio"]) ** 2))
+    with_events = fitted[fitted["observed"] > 0]
+    error_raw = np.sqrt(np.mean(np.log(with_events["oe_ratio"] / with_events["true_ratio"]) ** 2))
+    assert error_shrunk < 0.8 * error_raw, (error_shrunk, error_raw)
+
+
+def _snapshot(folder: Path) -> dict[str, bytes]:
+    return {p.relative_to(folder).as_posix(): p.read_bytes() for p in sorted(folder.rglob("*")) if p.is_file()}
+
+
+def test_a_failed_cycle_leaves_the_last_good_site_byte_for_byte(demo_cycle, tmp_path, monkeypatch):
+    files, _, site = demo_cycle
+    last_good = tmp_path / "published"
+    shutil.copytree(site, last_good)
+    before = _snapshot(last_good)
+    config = load_config(files.config)
+    config = dataclasses.replace(config, cycle=dataclasses.replace(config.cycle, output=last_good))
+
+    def failing_run(self, cells, seed):  # a sampler whose chains disagree
+        return {}, Diagnostics(rhat_max=1.2, ess_bulk_min=50, divergences=0, chains=4, draws=1000, seconds=0.1)
+
+    monkeypatch.setattr(Sampler, "run", failing_run)
+    with pytest.raises(FitError, match="largest R-hat 1.200 is above 1.01"):
+        run_cycle(config, renderer="builtin")
+    assert _snapshot(last_good) == before
+    assert [p.name for p in tmp_path.iterdir()] == ["published"]  # no half-built folders left behind
+
+
+def test_a_folder_fairgauge_did_not_make_is_never_replaced(demo_cycle, tmp_path, monkeypatch):
+    files, summary, _ = demo_cycle
+    precious = tmp_path / "precious"
+    precious.mkdir()
+    (precious / "notes.txt").write_text("keep me")
+    config = load_config(files.config)
+    config = dataclasses.replace(config, cycle=dataclasses.replace(config.cycle, output=precious))
+    monkeypatch.setattr("pipeline.cycle.fit_measures", lambda *a: summary.results)  # reuse the session's fits
+    with pytest.raises(RenderError, match="was not made by fairgauge, so it was left alone"):
+        run_cycle(config, renderer="builtin")
+    assert [p.name for p in tmp_path.iterdir()] == ["precious"] and (precious / "notes.txt").read_text() == "keep me"
+
+
+def _fake_quarto(folder: Path, body: str) -> None:
+    """A stand-in `quarto` on PATH (Quarto itself cannot be installed on these machines)."""
+    folder.mkdir()
+    script = folder / "quarto"
+    script.write_text(f'#!/bin/sh\nif [ "$1" = "--version" ]; then echo 9.9.9; exit 0; fi\n{body}\n')
+    script.chmod(0o755)
+
+
+def _config_with_output(files, output: Path):
+    config = load_config(files.config)
+    return dataclasses.replace(config, cycle=dataclasses.replace(config.cycle, output=output, renderer="auto"))
+
+
+def test_quarto_is_used_when_found_and_its_site_is_published(demo_cycle, tmp_path, monkeypatch):
+    files, summary, _ = demo_cycle
+    _fake_quarto(tmp_path / "bin", 'cd "$2" && mkdir -p _site && grep -c qmd _quarto.yml > _site/index.html')
+    monkeypatch.setenv("PATH", f"{tmp_path / 'bin'}:{__import__('os').environ['PATH']}")
+    monkeypatch.setattr("pipeline.cycle.fit_measures", lambda *a: summary.results)
+    result = run_cycle(_config_with_output(files, tmp_path / "out"))
+    assert result.renderer.name == "quarto" and result.renderer.version == "9.9.9"
+    assert int((tmp_path / "out" / "index.html").read_text()) > summary.units  # Quarto's output, moved into place
+    assert (tmp_path / "out" / "_source" / "_quarto.yml").is_file()
+
+
+def test_a_quarto_failure_shows_its_output_and_keeps_the_last_site(demo_cycle, tmp_path, monkeypatch):
+    files, summary, site = demo_cycle
+    last_good = tmp_path / "published"
+    shutil.copytree(site, last_good)
+    before = _snapshot(last_good)
+    _fake_quarto(tmp_path / "bin", 'echo "ERROR: could not find the theme"; exit 1')
+    monkeypatch.setenv("PATH", f"{tmp_path / 'bin'}:{__import__('os').environ['PATH']}")
+    monkeypatch.setattr("pipeline.cycle.fit_measures", lambda *a: summary.results)
+    with pytest.raises(RenderError, match="exited with code 1. Its output:\nERROR: could not find the theme"):
+        run_cycle(_config_with_output(files, last_good))
+    assert _snapshot(last_good) == before
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["bin", "published"]

@@ -1,0 +1,59 @@
+"""Input checks: one folder per bad-input scenario, exact messages (file, column, rows, what is allowed)."""
+
+from __future__ import annotations
+
+import shutil
+from pathlib import Path
+
+import pytest
+
+from pipeline.config import load_config
+from pipeline.data import formula_variables, load_cohort
+from pipeline.errors import InputError
+
+from .conftest import BASE_CONFIG
+
+SCENARIOS = Path(__file__).parent / "bad_inputs"
+
+
+@pytest.mark.parametrize("scenario", sorted(p.name for p in SCENARIOS.iterdir() if p.is_dir()))
+def test_bad_input_gives_exact_message(scenario, tmp_path):
+    for f in ("cohort.csv", "units.csv"):
+        shutil.copy(SCENARIOS / scenario / f, tmp_path / f)
+    (tmp_path / "cycle.toml").write_text(BASE_CONFIG)
+    config = load_config(tmp_path / "cycle.toml")
+    expected = (SCENARIOS / scenario / "expected.txt").read_text().strip().format(
+        cohort=tmp_path / "cohort.csv", units=tmp_path / "units.csv"
+    )
+    with pytest.raises(InputError) as caught:
+        load_cohort(config)
+    assert expected in [str(p) for p in caught.value.problems]
+
+
+def test_valid_input_keeps_only_needed_columns_and_hashes_files(cycle_folder):
+    cohort = load_cohort(load_config(cycle_folder()))
+    assert list(cohort.rows.columns) == ["unit_id", "readmit", "age", "sex"]  # the record id is not carried on
+    assert list(cohort.units.index) == ["a1", "b2"]
+    assert set(cohort.sha256) == {"cohort.csv", "units.csv"}
+    assert cohort.warnings == ()
+
+
+def test_unit_ids_stay_text_and_idle_units_warn(cycle_folder):
+    import pandas as pd
+
+    from .conftest import small_cohort
+
+    units, rows = small_cohort()
+    units = pd.concat([units, pd.DataFrame({"id": ["007"], "name": ["Idle"], "kind": ["clinic"]})])
+    rows["unit_id"] = rows["unit_id"].replace({"b2": "007"})
+    cohort = load_cohort(load_config(cycle_folder(units=units.iloc[[0, 2]], cohort=rows)))
+    assert "007" in set(cohort.rows["unit_id"])  # not turned into the number 7
+    units_all = pd.concat([units.iloc[[0, 2]], pd.DataFrame({"id": ["x9"], "name": ["Spare"], "kind": ["clinic"]})])
+    cohort = load_cohort(load_config(cycle_folder(units=units_all, cohort=rows)))
+    assert cohort.warnings[0].startswith("1 unit(s) in ") and cohort.warnings[0].endswith("have no cases this cycle and are listed without results: x9.")
+
+
+def test_formula_variables_skip_function_names():
+    assert formula_variables("C(age_band) + np.log(weight) + a:b + bs(age, df=3)") == ["age_band", "weight", "a", "b", "age"]
+    with pytest.raises(ValueError, match="is not a valid formula"):
+        formula_variables("age +")

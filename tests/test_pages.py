@@ -1,0 +1,82 @@
+"""Pages and rendering pieces: escaping, addresses, strict templates, the built-in renderer, the tool helper."""
+
+from __future__ import annotations
+
+import sys
+from pathlib import Path
+
+import jinja2
+import pytest
+from markdown_it import MarkdownIt
+
+from pipeline.errors import ToolError
+from pipeline.external import run_tool
+from pipeline.pages import chance, code, environment, md, natural_frequency, slug
+from pipeline.render import BuiltinRenderer
+
+
+@pytest.mark.parametrize(
+    "text",
+    ["<script>alert(1)</script>", "[click](http://example.invalid)", "**bold** _it_ `code`", "St. Mary's #1 | A&E", "a\nb"],
+)
+def test_data_text_is_shown_literally(text):
+    html = MarkdownIt("commonmark").enable("table").renderInline(md(text))
+    assert "<script" not in html and "<a " not in html and "<strong>" not in html and "<em>" not in html and "<code>" not in html
+    shown = html.replace("&lt;", "<").replace("&gt;", ">").replace("&amp;", "&").replace("&quot;", '"')
+    assert shown == " ".join(text.split())
+
+
+@pytest.mark.parametrize("text", ["y ~ C(age_band) + a:b", "odd `tick` and ``two``", "<b>x</b> & *y*"])
+def test_code_spans_show_formulas_without_escapes(text):
+    html = MarkdownIt("commonmark").enable("table").renderInline(code(text))
+    assert html.startswith("<code>") and html.endswith("</code>")
+    assert html[6:-7].replace("&lt;", "<").replace("&gt;", ">").replace("&amp;", "&") == text
+
+
+def test_slugs_are_safe_stable_and_unique():
+    taken: set[str] = set()
+    assert slug("MV-01", taken) == "mv-01"
+    assert slug("../../etc/passwd", taken) == "etc-passwd"
+    assert slug("mv 01", taken) == "mv-01-2"
+    assert slug("!!!", taken) == "unit"
+
+
+def test_natural_frequencies_and_chances_in_words():
+    assert natural_frequency(0.142) == "about 14 in every 100 patients"
+    assert natural_frequency(0.014) == "about 14 in every 1,000 patients"
+    assert chance(0.004) == "less than 1%" and chance(0.9996) == "more than 99%" and chance(0.5) == "50%"
+
+
+def test_templates_fail_loudly_on_a_missing_value():
+    with pytest.raises(jinja2.UndefinedError):
+        environment().get_template("qmd/cautions.qmd.j2").render(cycle=None, up="")
+
+
+def test_builtin_renderer_turns_callouts_links_and_tables_into_html(tmp_path):
+    (tmp_path / "_quarto.yml").write_text(
+        'project:\n  render: ["index.qmd", "sub/page.qmd"]\nwebsite:\n  title: "T"\n  page-footer:\n    left: "F"\n'
+        '  navbar:\n    left:\n      - href: index.qmd\n        text: "Home \\\\(A&amp;E\\\\)"\n'
+    )
+    (tmp_path / "index.qmd").write_text('---\ntitle: "Home"\n---\n\n::: {.callout-warning title="Heed"}\nInner **text**.\n:::\n\n[next](sub/page.qmd#top)\n')
+    (tmp_path / "sub").mkdir()
+    (tmp_path / "sub" / "page.qmd").write_text('---\ntitle: "A \\\\<b\\\\>"\n---\n\n| a | b |\n|:--|--:|\n| 1 | 2 |\n')
+    out = tmp_path / "out"
+    out.mkdir()
+    BuiltinRenderer(tmp_path).render(out)
+    index = (out / "index.html").read_text()
+    assert '<aside class="callout callout-warning" role="note"><p class="callout-title">Heed</p><p>Inner <strong>text</strong>.</p>' in index
+    assert 'href="sub/page.html#top"' in index
+    page = (out / "sub" / "page.html").read_text()
+    assert 'href="../index.html"' in page and 'href="../assets/fairgauge.css"' in page
+    assert "<h1>A &lt;b&gt;</h1>" in page and "<title>A &lt;b&gt; · T</title>" in page
+    assert '<a href="../index.html">Home (A&amp;E)</a>' in page
+    assert '<td style="text-align:right">2</td>' in page
+
+
+def test_external_tool_output_is_returned_and_replayed_on_failure():
+    assert run_tool([sys.executable, "-c", "print('fine')"]).strip() == "fine"
+    with pytest.raises(ToolError) as caught:
+        run_tool([sys.executable, "-c", "import sys; print('what went wrong'); sys.exit(3)"])
+    assert caught.value.returncode == 3 and "what went wrong" in str(caught.value)
+    with pytest.raises(ToolError, match="was not found on PATH"):
+        run_tool(["fairgauge-no-such-tool-xyz"])

@@ -1,0 +1,96 @@
+"""Shrinkage fit: spec and build checked without sampling; the sampler against exact results."""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+from scipy import stats
+from scipy.special import expit
+
+from pipeline.config import SamplerSection
+from pipeline.shrinkage import Cells, Diagnostics, Sampler, ShrinkageSpec, build_model, fit_failed, unit_draws
+
+
+def test_spec_is_plain_and_printable():
+    spec = ShrinkageSpec()
+    assert spec.describe() == ["mu ~ Normal(mu=0, sigma=1)", "tau ~ HalfNormal(sigma=1)"]
+    assert spec.sampled == ["mu", "tau", "z"]
+    assert ShrinkageSpec(pooling="none").sampled == ["a"]
+    with pytest.raises(ValueError, match="pooling must be one of partial, none"):
+        ShrinkageSpec(pooling="some")
+
+
+def _patients(seed=4, n_units=5):
+    rng = np.random.default_rng(seed)
+    unit = rng.integers(0, n_units, 400)
+    offset = rng.choice([-2.0, -1.5, -0.5, 0.25], 400)  # few distinct risks, so cells pool many patients
+    y = (rng.random(400) < expit(offset + 0.3 * (unit - 2))).astype(float)
+    return unit, offset, y
+
+
+def test_cells_keep_every_patient_and_event():
+    unit, offset, y = _patients()
+    cells = Cells.from_patients(unit, offset, y, 5)
+    assert cells.n.sum() == 400 and cells.r.sum() == y.sum()
+    assert len(cells.n) <= 5 * 4
+    assert np.bincount(cells.unit, weights=cells.n).tolist() == np.bincount(unit, minlength=5).tolist()
+
+
+def test_pooled_cells_give_the_per_patient_bernoulli_likelihood():
+    """Cell pooling changes no likelihood difference (built model vs. scipy per patient, no sampling)."""
+    unit, offset, y = _patients()
+    model = build_model(ShrinkageSpec(), Cells.from_patients(unit, offset, y, 5))
+    assert sorted(v.name for v in model.free_RVs) == ["mu", "tau", "z"]
+    logp = model.compile_logp()
+    rng = np.random.default_rng(0)
+
+    def point(mu, tau, z):
+        return {"mu": mu, "tau_log__": np.log(tau), "z": z}
+
+    def reference(mu, tau, z):
+        eta = offset + mu + tau * z[unit]
+        loglik = stats.bernoulli.logpmf(y, expit(eta)).sum()
+        prior = stats.norm.logpdf(mu, 0, 1) + stats.halfnorm.logpdf(tau, scale=1) + np.log(tau) + stats.norm.logpdf(z).sum()
+        return loglik + prior
+
+    a = (0.1, 0.4, rng.normal(size=5))
+    b = (-0.3, 0.9, rng.normal(size=5))
+    assert logp(point(*a)) - logp(point(*b)) == pytest.approx(reference(*a) - reference(*b), abs=1e-8)
+
+
+def test_risk_standardised_ratio_on_a_constructed_example():
+    # Constructed example (values computed with numpy; formula of Krumholz et al. 2006 and Normand &
+    # Shahian 2007, from memory): mu = -2, b = 1, unit intercept -1.5, patients x = 0, 1, 2.
+    # P = 1.182426, E = 0.888144, P/E = 1.331344; with network rate 0.20 the RSR is 0.266269.
+    cells = Cells(unit=np.zeros(3, dtype=np.int64), offset=np.array([0.0, 1.0, 2.0]), n=np.ones(3), r=np.array([1.0, 0, 0]), n_units=1)
+    draws = unit_draws(cells, {"mu": np.array([-2.0]), "u": np.array([[0.5]]), "tau": np.array([1.0])})
+    assert draws.ratio[0, 0] == pytest.approx(1.331344, abs=1e-6)
+    assert draws.ratio[0, 0] * 0.20 == pytest.approx(0.266269, abs=1e-6)
+
+
+def test_failed_diagnostics_are_named_in_the_error():
+    d = Diagnostics(rhat_max=1.05, ess_bulk_min=120, divergences=3, chains=4, draws=1000, seconds=1.0)
+    assert d.failures() == ["largest R-hat 1.050 is above 1.01", "smallest bulk ESS 120 is below 400", "3 divergent transitions"]
+    message = str(fit_failed("readmit", d))
+    assert message.startswith("measure 'readmit': the shrinkage fit did not pass its checks (largest R-hat 1.050")
+    assert "Nothing was published" in message
+
+
+@pytest.mark.slow
+@pytest.mark.parametrize("engine", ["nutpie", "pymc"])
+def test_no_pooling_reproduces_the_exact_beta_posterior(engine):
+    # Conjugacy: with a uniform prior on a rate, r events in n give Beta(1 + r, 1 + n - r)
+    # (Gelman et al., Bayesian Data Analysis, 3rd ed., ch. 2). A Logistic(0, 1) prior on the
+    # logit is exactly that uniform prior, so pooling "none" must reproduce it.
+    r, n = np.array([0, 7, 45]), np.array([10, 20, 300])
+    cells = Cells(unit=np.arange(3), offset=np.zeros(3), n=n.astype(float), r=r.astype(float), n_units=3)
+    settings = SamplerSection(chains=4, draws=2000, tune=1000, cores=2, seed=17, engine=engine)
+    draws, diagnostics = Sampler(ShrinkageSpec(pooling="none"), settings, engine=engine).run(cells, seed=17)
+    assert diagnostics.failures() == []
+    rate = expit(draws["u"])
+    for i in range(3):
+        exact = stats.beta(1 + r[i], 1 + n[i] - r[i])
+        for q in (0.025, 0.5, 0.975):
+            # Monte Carlo tolerance: about 4 standard errors of a quantile from ~2,000 effective draws.
+            se = np.sqrt(q * (1 - q) / 2000) / exact.pdf(exact.ppf(q))
+            assert abs(np.quantile(rate[:, i], q) - exact.ppf(q)) < 4 * se, (i, q)
