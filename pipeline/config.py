@@ -12,6 +12,7 @@ import difflib
 import hashlib
 import re
 import tomllib
+import types
 import typing
 from dataclasses import MISSING, dataclass, field, fields
 from pathlib import Path
@@ -184,7 +185,7 @@ def _type_problem(value: Any, hint: Any) -> str | None:
         if value in choices:
             return None
         return f"must be one of {', '.join(repr(c) for c in choices)}; got {value!r}{_hint(str(value), map(str, choices))}"
-    if origin in (typing.Union, getattr(__import__("types"), "UnionType", None)):
+    if origin in (typing.Union, types.UnionType):
         options = typing.get_args(hint)
         if any(_type_problem(value, o) is None for o in options):
             return None

@@ -28,7 +28,7 @@ from .config import CycleConfig, MeasureSection
 from .data import Cohort, load_cohort
 from .errors import RenderError, StrictError
 from .figures import measure_figure, unit_figure
-from .pages import render_pages, slug
+from .pages import render_pages, unit_slugs
 from .render import Renderer, choose_renderer, render_site
 from .results import DICTIONARY, MeasureResult, public_table, results_json, summarise_measure
 from .shrinkage import Cells, Sampler, ShrinkageSpec, fit_failed, unit_draws
@@ -87,7 +87,8 @@ def run_cycle(config: CycleConfig, reporter: Reporter = Quiet(), strict: bool = 
 def fit_measures(config: CycleConfig, cohort: Cohort, reporter: Reporter) -> list[MeasureResult]:
     """Case-mix fit then shrinkage fit for every measure (one compiled model for all)."""
     rows = cohort.rows
-    fitted_units = [u for u in cohort.units.index if u in set(rows[cohort.unit_column])]
+    present = set(rows[cohort.unit_column])
+    fitted_units = [u for u in cohort.units.index if u in present]
     codes = pd.Categorical(rows[cohort.unit_column], categories=fitted_units).codes.astype(np.int64)
     sampler = Sampler(ShrinkageSpec(), config.sampler, engine=config.sampler.engine)
     results = []
@@ -96,7 +97,10 @@ def fit_measures(config: CycleConfig, cohort: Cohort, reporter: Reporter) -> lis
     return results
 
 
-def fit_measure(config, cohort: Cohort, measure: MeasureSection, codes, fitted_units, sampler: Sampler, seed: int, reporter: Reporter) -> MeasureResult:
+def fit_measure(
+    config: CycleConfig, cohort: Cohort, measure: MeasureSection, codes: np.ndarray, fitted_units: list[str],
+    sampler: Sampler, seed: int, reporter: Reporter,
+) -> MeasureResult:
     reporter.stage(f"{measure.key}: case-mix fit ({measure.casemix})")
     casemix = fit_casemix(measure, cohort.rows, codes)
     y = cohort.rows[measure.outcome].to_numpy(dtype=float)
@@ -144,8 +148,7 @@ def build_site(config: CycleConfig, cohort: Cohort, results: list[MeasureResult]
     try:
         project = build / "_source"
         reporter.stage(f"drawing figures ({len(results)} measures, {len(cohort.units)} units)")
-        taken: set[str] = set()
-        slugs = {uid: slug(uid, taken) for uid in cohort.units.index}
+        slugs = unit_slugs(cohort.units.index)
         for r in results:
             measure_figure(r, project / "figures" / f"measure-{r.measure.key}.png")
         has_figure = {uid: unit_figure(uid, results, project / "figures" / f"unit-{slugs[uid]}.png") for uid in cohort.units.index}
@@ -157,7 +160,7 @@ def build_site(config: CycleConfig, cohort: Cohort, results: list[MeasureResult]
         (project / "downloads" / "results.json").write_text(results_json(table, results, info), encoding="utf-8")
         (project / "assets").mkdir()
         shutil.copyfile(templates_path() / "static" / "fairgauge.css", project / "assets" / "fairgauge.css")
-        for page in render_pages(config, results, cohort.units, {**info, "dictionary": DICTIONARY}, has_figure):
+        for page in render_pages(config, results, cohort.units, slugs, has_figure, {**info, "dictionary": DICTIONARY}):
             target = project / page.path
             target.parent.mkdir(parents=True, exist_ok=True)
             target.write_text(page.text, encoding="utf-8")

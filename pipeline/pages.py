@@ -9,7 +9,7 @@ from __future__ import annotations
 
 import json
 import re
-from dataclasses import dataclass, field, replace
+from dataclasses import dataclass, field
 from pathlib import PurePosixPath
 
 import jinja2
@@ -55,6 +55,12 @@ def slug(unit_id: str, taken: set[str]) -> str:
         candidate, n = f"{base}-{n}", n + 1
     taken.add(candidate)
     return candidate
+
+
+def unit_slugs(unit_ids) -> dict[str, str]:
+    """Each unit's address, in unit-table order (first come keeps the plain slug)."""
+    taken: set[str] = set()
+    return {uid: slug(uid, taken) for uid in unit_ids}
 
 
 def pct(x: float, digits: int = 1) -> str:
@@ -181,11 +187,11 @@ def _cell(m: MeasureResult, row: pd.Series, level: str, min_cases: int) -> Cell:
     )
 
 
-def views(config: CycleConfig, results: list[MeasureResult], units: pd.DataFrame) -> tuple[list[MeasureView], list[UnitView]]:
+def views(
+    config: CycleConfig, results: list[MeasureResult], units: pd.DataFrame, slugs: dict[str, str], has_figure: dict[str, bool]
+) -> tuple[list[MeasureView], list[UnitView]]:
     """Format every number once; return the measure and unit views the templates lay out."""
     level = f"{config.reporting.interval * 100:g}%"
-    taken: set[str] = set()
-    slugs = {uid: slug(uid, taken) for uid in units.index}
     measures: list[MeasureView] = []
     cells: dict[str, list[tuple[MeasureView, Cell]]] = {uid: [] for uid in units.index}
     for m in results:
@@ -211,7 +217,7 @@ def views(config: CycleConfig, results: list[MeasureResult], units: pd.DataFrame
         measures.append(view)
     unit_views = [
         UnitView(id=md(uid), name=md(u["name"]), kind=md(u["kind"]), href=f"units/{slugs[uid]}.qmd",
-                 figure=f"figures/unit-{slugs[uid]}.png", cells=cells[uid])
+                 figure=f"figures/unit-{slugs[uid]}.png" if has_figure.get(uid) else "", cells=cells[uid])
         for uid, u in units.iterrows()
     ]
     return measures, unit_views
@@ -242,11 +248,12 @@ def _up(path: str) -> str:
     return "../" * (len(PurePosixPath(path).parts) - 1)
 
 
-def render_pages(config: CycleConfig, results: list[MeasureResult], units: pd.DataFrame, site: dict, unit_has_figure: dict[str, bool]) -> list[Page]:
+def render_pages(
+    config: CycleConfig, results: list[MeasureResult], units: pd.DataFrame, slugs: dict[str, str], has_figure: dict[str, bool], site: dict
+) -> list[Page]:
     """All pages of the site plus ``_quarto.yml``, as text."""
     env = environment()
-    measures, unit_views = views(config, results, units)
-    unit_views = [u if unit_has_figure.get(uid, False) else replace(u, figure="") for uid, u in zip(units.index, unit_views)]
+    measures, unit_views = views(config, results, units, slugs, has_figure)
     common = {
         "cycle": config.cycle, "site": site, "measures": measures, "units": unit_views, "limits": LIMITS,
         "priors": ShrinkageSpec().describe(), "reporting": config.reporting, "sampler": config.sampler,

@@ -23,6 +23,7 @@ and ``E_i = sum_j expit(c + mu + x_ij)``.
 
 from __future__ import annotations
 
+import time
 import warnings
 from dataclasses import dataclass, field
 
@@ -153,8 +154,6 @@ class Sampler:
 
     def run(self, cells: Cells, seed: int):
         """Sample the posterior for ``cells``; return (posterior draws, diagnostics)."""
-        import time
-
         import arviz as az
 
         s = self.settings
