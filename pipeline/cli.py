@@ -38,6 +38,8 @@ def _parser() -> argparse.ArgumentParser:
     common.add_argument("--renderer", choices=["auto", "quarto", "builtin"], help="override [cycle].renderer")
     build = sub.add_parser("build", parents=[common], help="run the reporting cycle described by a config file")
     build.add_argument("config", type=Path, help="cycle config (TOML)")
+    check = sub.add_parser("check", help="check a config and its data without fitting anything")
+    check.add_argument("config", type=Path, help="cycle config (TOML)")
     demo = sub.add_parser("demo", parents=[common], help="invent a network, then build its site")
     demo.add_argument("--folder", type=Path, default=Path("demo-cycle"), help="where the invented inputs and config go (default: demo-cycle)")
     demo.add_argument("--site", type=Path, default=Path("site/demo"), help="where the site goes (default: site/demo)")
@@ -63,6 +65,15 @@ def main(argv: list[str] | None = None) -> int:
         from .config import load_config
         from .cycle import run_cycle
 
+        if args.command == "check":
+            from .data import load_cohort
+
+            cohort = load_cohort(load_config(args.config))
+            for w in cohort.warnings:
+                reporter.warn(w)
+            print(f"fairgauge: check passed: {len(cohort.rows):,} patient rows, {cohort.rows[cohort.unit_column].nunique()} units with cases, "
+                  f"{len(cohort.units)} in the unit table; {len(cohort.warnings)} warning(s). Nothing was fitted.")
+            return 0
         if args.command == "demo":
             from .demo import write_demo
 

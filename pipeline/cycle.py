@@ -33,7 +33,7 @@ from .render import Renderer, choose_renderer, render_site
 from .results import DICTIONARY, MeasureResult, public_table, results_json, summarise_measure
 from .shrinkage import Cells, Sampler, ShrinkageSpec, fit_failed, unit_draws
 
-MARKER = ".fairgauge-site"  # written into every site; only folders holding it are ever replaced
+MARKER = "fairgauge-manifest.json"  # every site's provenance; only folders holding it are ever replaced
 PACKAGES = ("numpy", "pandas", "statsmodels", "pymc", "nutpie", "arviz", "plotnine")
 
 
@@ -123,8 +123,8 @@ def fit_measure(
     return summarise_measure(config, measure, cohort.units, fitted_units, counts, casemix, unit_draws(cells, draws), draws["tau"], diagnostics)
 
 
-def about(config: CycleConfig, cohort: Cohort, renderer: Renderer) -> dict:
-    """What this build is and how it was made (goes into results.json and the methods page)."""
+def about(config: CycleConfig, cohort: Cohort, renderer: Renderer, results: list[MeasureResult]) -> dict:
+    """The manifest: what this build is and how it was made (site root, results.json, methods page)."""
     versions = {}
     for name in PACKAGES:
         try:
@@ -137,14 +137,24 @@ def about(config: CycleConfig, cohort: Cohort, renderer: Renderer) -> dict:
         "built": datetime.now(timezone.utc).strftime("%Y-%m-%d %H:%M UTC"),
         "config_sha256": config.sha256, "input_sha256": cohort.sha256, "seed": config.sampler.seed,
         "renderer": f"{renderer.name} {renderer.version}", "versions": versions,
+        "sampler": {k: getattr(config.sampler, k) for k in ("engine", "chains", "draws", "tune", "target_accept")},
+        "diagnostics": {
+            r.measure.key: {"rhat_max": round(r.diagnostics.rhat_max, 4), "ess_bulk_min": round(r.diagnostics.ess_bulk_min),
+                            "divergences": r.diagnostics.divergences}
+            for r in results
+        },
     }
 
 
 def build_site(config: CycleConfig, cohort: Cohort, results: list[MeasureResult], renderer: Renderer, reporter: Reporter) -> Path:
     """Write figures, downloads and pages into a new folder beside the output; render it there."""
     output = config.cycle.output
-    output.parent.mkdir(parents=True, exist_ok=True)
-    build = Path(tempfile.mkdtemp(prefix=f".{output.name}.tmp-", dir=output.parent))
+    try:
+        output.parent.mkdir(parents=True, exist_ok=True)
+        remove_stale_builds(output)
+        build = Path(tempfile.mkdtemp(prefix=f".{output.name}.tmp-{os.getpid()}-", dir=output.parent))
+    except OSError as exc:
+        raise RenderError(f"cannot write beside the output folder {output} ({exc.strerror or exc}); the previous site was left as it was.") from None
     try:
         project = build / "_source"
         reporter.stage(f"drawing figures ({len(results)} measures, {len(cohort.units)} units)")
@@ -153,7 +163,8 @@ def build_site(config: CycleConfig, cohort: Cohort, results: list[MeasureResult]
             measure_figure(r, project / "figures" / f"measure-{r.measure.key}.png")
         has_figure = {uid: unit_figure(uid, results, project / "figures" / f"unit-{slugs[uid]}.png") for uid in cohort.units.index}
         reporter.stage("writing results and pages")
-        info = about(config, cohort, renderer)
+        info = about(config, cohort, renderer, results)
+        (project / MARKER).write_text(json.dumps(info, indent=2), encoding="utf-8")
         table = public_table(results)
         (project / "downloads").mkdir(parents=True)
         table.to_csv(project / "downloads" / "results.csv", index=False, float_format="%.6g")
@@ -166,11 +177,33 @@ def build_site(config: CycleConfig, cohort: Cohort, results: list[MeasureResult]
             target.write_text(page.text, encoding="utf-8")
         reporter.stage(f"rendering the site ({renderer.name})")
         render_site(project, build, renderer)
-        (build / MARKER).write_text(json.dumps(info, indent=2), encoding="utf-8")
         return build
+    except OSError as exc:
+        shutil.rmtree(build, ignore_errors=True)
+        raise RenderError(f"writing the new site failed ({exc.strerror or exc}: {exc.filename or build}); the previous site was left as it was.") from None
     except BaseException:
         shutil.rmtree(build, ignore_errors=True)
         raise
+
+
+def remove_stale_builds(output: Path) -> None:
+    """Delete build or retired folders left by a cycle that was killed (its process is gone)."""
+    for leftover in output.parent.glob(f".{output.name}.*-*"):
+        kind, _, rest = leftover.name[len(output.name) + 2 :].partition("-")
+        pid = rest.split("-")[0]
+        if kind not in ("tmp", "old") or not pid.isdigit() or _alive(int(pid)):
+            continue
+        shutil.rmtree(leftover, ignore_errors=True)
+
+
+def _alive(pid: int) -> bool:
+    try:
+        os.kill(pid, 0)
+    except ProcessLookupError:
+        return False
+    except PermissionError:
+        return True
+    return True
 
 
 def publish(build: Path, output: Path) -> None:
@@ -182,9 +215,15 @@ def publish(build: Path, output: Path) -> None:
             "Choose an empty or new folder for [cycle].output."
         )
     retired = None
-    if output.exists():
-        retired = output.with_name(f".{output.name}.old-{os.getpid()}")
-        os.replace(output, retired)
-    os.replace(build, output)
+    try:
+        if output.exists():
+            retired = output.with_name(f".{output.name}.old-{os.getpid()}")
+            os.replace(output, retired)
+        os.replace(build, output)
+    except OSError as exc:
+        if retired is not None and not output.exists():
+            os.replace(retired, output)  # put the last good site back
+        shutil.rmtree(build, ignore_errors=True)
+        raise RenderError(f"could not swap the new site into {output} ({exc.strerror or exc}); the previous site was left as it was.") from None
     if retired is not None:
         shutil.rmtree(retired, ignore_errors=True)

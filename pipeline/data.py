@@ -10,6 +10,7 @@ from __future__ import annotations
 import ast
 import difflib
 import hashlib
+import re
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -20,6 +21,14 @@ from .config import CycleConfig
 from .errors import InputError, Problem
 
 UNIT_TABLE_COLUMNS = ("id", "name", "kind")
+# Column names that suggest direct identifiers (common practice, no source: the usual
+# suspects of de-identification checklists). Such columns are never carried past this module.
+_IDENTIFIER = re.compile(
+    r"(^|_)(name|first_?name|given_?name|surname|last_?name|family_?name|mrn|medical_?record\w*|nhs_?(no|number)?|"
+    r"ssn|social_?security\w*|patient_?(id|no|number)|dob|date_?of_?birth|birth_?date|phone|telephone|mobile|"
+    r"e_?mail|address|street|post_?code|zip(_?code)?)($|_)",
+    re.IGNORECASE,
+)
 _SHOW_ROWS = 5  # offending rows quoted per problem
 
 
@@ -153,6 +162,22 @@ def _check_risk_factor(rows: pd.DataFrame, column: str, where: str, problems: li
             )
 
 
+def _check_comparable(config: CycleConfig, rows: pd.DataFrame, unit_col: str, where: str, problems: list[Problem]) -> None:
+    """A measure needs events and non-events, and a comparison needs two units."""
+    n_units = rows[unit_col].nunique()
+    if n_units < 2:
+        problems.append(Problem(f"{where}, column '{unit_col}'", f"all rows belong to one unit ('{rows[unit_col].iloc[0]}'); fairgauge compares units, so at least two are needed."))
+    for m in config.measures:
+        values = pd.to_numeric(rows[m.outcome], errors="coerce")
+        if m.type == "binary" and values.isin([0, 1]).all():
+            events = int(values.sum())
+            if events in (0, len(values)):
+                who = "no patient had" if events == 0 else "every patient had"
+                problems.append(
+                    Problem(f"{where}, column '{m.outcome}'", f"{who} the outcome of measure '{m.key}', so units cannot be compared on it. Check the extract, or remove the measure from the config.")
+                )
+
+
 def load_cohort(config: CycleConfig) -> Cohort:
     """Read the unit table and the cohort named in ``config`` and check them together."""
     inputs = config.inputs
@@ -203,6 +228,13 @@ def load_cohort(config: CycleConfig) -> Cohort:
             warnings.append(f"{c_where}: {int(dup.sum())} rows are exact copies of another row ({_rows(dup)}); set [inputs].record_column to check ids properly.")
     for m in config.measures:
         _check_outcome(rows, m.outcome, m.type, c_where, problems)
+    _check_comparable(config, rows, unit_col, c_where, problems)
+    looks_identifying = [str(c) for c in rows.columns if _IDENTIFIER.search(str(c))]
+    if looks_identifying:
+        warnings.append(
+            f"{c_where}: column(s) {', '.join(looks_identifying)} look like direct identifiers. fairgauge does not use "
+            "or publish them, but they should not be in the extract at all: remove them at the source."
+        )
     for v in dict.fromkeys(risk_factors):
         _check_risk_factor(rows, v, c_where, problems)
     if problems:

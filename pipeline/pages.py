@@ -137,7 +137,6 @@ class MeasureView:
     rhat: str
     ess: str
     divergences: int
-    seconds: str
     coefficients: list[dict[str, str]]
     rows: list[dict] = field(default_factory=list)  # unit name, href, Cell
 
@@ -157,6 +156,11 @@ def _sentence(name: str, m: MeasureResult, row: pd.Series, level: str, min_cases
         return f"This unit had fewer than {min_cases} cases, too few for a fair estimate, so its numbers are not published."
     if row["status"] == "no_cases":
         return "This unit had no cases for this measure in this period."
+    if row["status"] == "withheld":
+        return (
+            "This unit's numbers are withheld so that a smaller unit's numbers cannot be worked out "
+            "by subtracting the published numbers from the network totals."
+        )
     return (
         f"After allowing for how ill its patients were, {natural_frequency(row['rsr_median'])} at {name} "
         f"would be expected to have this outcome (we are {level} sure it lies between {span(row['rsr_lower'], row['rsr_upper'])}). "
@@ -170,7 +174,7 @@ def _cell(m: MeasureResult, row: pd.Series, level: str, min_cases: int) -> Cell:
     return Cell(
         status=row["status"],
         status_words=STATUS[row["status"]],
-        cases=show(f"{int(row['cases']):,}") if reported else (f"fewer than {min_cases}" if row["status"] == "too_few" else "0"),
+        cases=f"{int(row['cases']):,}" if reported else {"too_few": f"fewer than {min_cases}", "withheld": "withheld"}.get(row["status"], "0"),
         observed=show(f"{int(row['observed']):,}") if reported else "",
         expected=show(f"{row['expected']:.1f}") if reported else "",
         raw_rate=show(pct(row["raw_rate"])),
@@ -207,9 +211,9 @@ def views(
             benchmark=pct(m.benchmark), benchmark_is_network=config.reporting.benchmark == "network",
             c_statistic=num(m.casemix.c_statistic, 3), units_in_fit=m.casemix.units_in_fit, formula=code(m.casemix.formula),
             tau=f"{num(m.tau[0])} ({num(m.tau[1])} to {num(m.tau[2])})", rhat=num(d.rhat_max, 3), ess=f"{d.ess_bulk_min:,.0f}",
-            divergences=d.divergences, seconds=f"{d.seconds:.1f}", coefficients=coefs,
+            divergences=d.divergences, coefficients=coefs,
         )
-        ordered = m.table.sort_values(["status", "rsr_median"], key=lambda s: s.map({"reported": 0, "too_few": 1, "no_cases": 2}) if s.name == "status" else s)
+        ordered = m.table.sort_values(["status", "rsr_median"], key=lambda s: s.map({"reported": 0, "too_few": 1, "withheld": 2, "no_cases": 3}) if s.name == "status" else s)
         for _, row in ordered.iterrows():
             cell = _cell(m, row, level, config.reporting.minimum_cases)
             view.rows.append({"name": md(row["unit_name"]), "href": f"units/{slugs[row['unit_id']]}.qmd", "cell": cell})

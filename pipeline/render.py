@@ -23,7 +23,7 @@ from . import __version__, templates_path
 from .errors import RenderError
 from .external import find_tool, run_tool
 
-ASSETS = ("figures", "downloads", "assets")
+ASSETS = ("figures", "downloads", "assets", "fairgauge-manifest.json")  # copied as they are
 
 
 @dataclass(frozen=True)
@@ -142,3 +142,5 @@ class BuiltinRenderer:
             source = self.project / folder
             if source.is_dir():
                 shutil.copytree(source, out / folder, dirs_exist_ok=True)
+            elif source.is_file():
+                shutil.copy2(source, out / folder)

@@ -21,6 +21,7 @@ from .shrinkage import Diagnostics, UnitDraws
 STATUS = {
     "reported": "Reported",
     "too_few": "Too few cases to report",
+    "withheld": "Withheld to protect a smaller unit",
     "no_cases": "No cases this cycle",
 }
 # Where the credible interval of the adjusted rate lies relative to the benchmark.
@@ -101,6 +102,7 @@ def summarise_measure(
         [table["rsr_lower"] > benchmark, table["rsr_upper"] < benchmark, table["status"] == "reported"],
         ["above", "below", "spans"], "",
     )
+    withhold_complement(table, config.reporting.minimum_cases)
     table.loc[table["status"] != "reported", "position"] = ""
     return MeasureResult(
         measure=measure,
@@ -111,6 +113,24 @@ def summarise_measure(
         tau=(float(np.median(tau_draws)), float(np.quantile(tau_draws, lo_q)), float(np.quantile(tau_draws, hi_q))),
         table=table,
     )
+
+
+def withhold_complement(table: pd.DataFrame, minimum: int) -> None:
+    """Complementary suppression, in place.
+
+    Network totals are published, so the suppressed units' combined cases and events can be
+    worked out by subtraction. While fewer than two units are suppressed, or they hold fewer
+    than ``minimum`` cases between them, the smallest reported unit is withheld too, so no single
+    small unit's numbers can be recovered (common practice in official statistics, no source).
+    """
+    while True:
+        hidden = table["status"].isin(["too_few", "withheld"])
+        if not hidden.any() or (hidden.sum() >= 2 and table.loc[hidden, "cases"].sum() >= minimum):
+            return
+        reported = table[table["status"] == "reported"]
+        if reported.empty:
+            return
+        table.loc[reported["cases"].idxmin(), "status"] = "withheld"
 
 
 def public_table(results: list[MeasureResult]) -> pd.DataFrame:
@@ -164,7 +184,7 @@ DICTIONARY = {
     "unit_id": "The unit's id in the network's unit table.",
     "unit_name": "The unit's name.",
     "unit_kind": "What kind of unit it is.",
-    "status": "reported; too_few (fewer cases than the publication minimum: numbers withheld); no_cases.",
+    "status": "reported; too_few (fewer cases than the publication minimum: numbers withheld); withheld (numbers withheld so a smaller unit's cannot be worked out from network totals); no_cases.",
     "cases": "Patients counted for this measure.",
     "observed": "Patients who had the outcome.",
     "expected": "Patients expected to have the outcome given their recorded risk factors (case-mix fit).",

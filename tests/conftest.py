@@ -76,3 +76,68 @@ def demo_cycle(tmp_path_factory):
     files = write_demo(folder / "inputs", folder / "site")
     summary = run_cycle(load_config(files.config), renderer="builtin")
     return files, summary, folder / "site"
+
+
+HOSTILE_NAMES = {
+    0: "<script>alert('x')</script> *Bold* [link](http://evil.example) | pipe",
+    1: "St. Mary's # 1 & <b>Co</b>",
+}
+HOSTILE_CONFIG = """
+[cycle]
+title = "Hostile test network"
+publisher = "Test publisher"
+period = "Test period"
+output = "site"
+renderer = "builtin"
+
+[inputs]
+cohort = "cohort.csv"
+units = "units.csv"
+record_column = "stay_id"
+
+[sampler]
+chains = 4
+draws = 1000
+tune = 1000
+target_accept = 0.95
+seed = 99
+
+[[measures]]
+key = "readmit30"
+name = "Readmission"
+definition = "Readmitted within 30 days."
+outcome = "readmit30"
+casemix = "C(age_band) + emergency + frailty"
+"""
+
+
+@pytest.fixture(scope="session")
+def hostile_cycle(tmp_path_factory):
+    """A small real cycle whose inputs carry planted identifiers, unique markers and hostile names.
+
+    Returns (folder, markers by column, summary, site). Markers are unique per row in every
+    column that can hold one: the record id, three identifier-like columns and a numeric risk
+    factor (unit ids, outcomes and category labels are published or aggregated by design).
+    """
+    import numpy as np
+
+    from pipeline.demo import invent_network
+
+    folder = tmp_path_factory.mktemp("hostile")
+    units, cohort, _ = invent_network(seed=3, n_units=16, smallest=10, largest=500)
+    for i, name in HOSTILE_NAMES.items():
+        units.loc[i, "name"] = name
+    n = len(cohort)
+    rng = np.random.default_rng(0)
+    cohort["stay_id"] = [f"ZQXREC{i:07d}" for i in range(n)]
+    cohort["patient_name"] = [f"ZQXNAME{i:07d}" for i in range(n)]
+    cohort["date_of_birth"] = [f"ZQXDOB{i:07d}" for i in range(n)]
+    cohort["phone"] = [f"ZQXTEL{i:07d}" for i in range(n)]
+    cohort["frailty"] = np.round(rng.normal(0, 1, n), 9) + np.arange(n) * 1e-9
+    markers = {c: list(cohort[c]) for c in ("stay_id", "patient_name", "date_of_birth", "phone")}
+    markers["frailty"] = [f"{v:.9f}" for v in cohort["frailty"]]
+    units.to_csv(folder / "units.csv", index=False)
+    cohort.to_csv(folder / "cohort.csv", index=False, float_format="%.9f")
+    (folder / "cycle.toml").write_text(HOSTILE_CONFIG)
+    summary = run_cycle(load_config(folder / "cycle.toml"))
+    return folder, markers, summary, folder / "site"

@@ -1,0 +1,186 @@
+"""Nothing leaked, nothing lost, everything traceable: privacy, safe pages, provenance,
+atomic publishing under faults, determinism."""
+
+from __future__ import annotations
+
+import dataclasses
+import errno
+import hashlib
+import json
+import os
+import re
+import shutil
+import signal
+import subprocess
+import sys
+import time
+from html.parser import HTMLParser
+from pathlib import Path
+
+import pandas as pd
+import pytest
+
+from pipeline.config import load_config
+from pipeline.cycle import MARKER, remove_stale_builds, run_cycle
+from pipeline.errors import RenderError
+from pipeline.results import withhold_complement
+
+from .conftest import HOSTILE_NAMES
+
+
+def _files(site: Path) -> list[Path]:
+    return sorted(p for p in site.rglob("*") if p.is_file())
+
+
+def _snapshot(folder: Path) -> dict[str, bytes]:
+    return {p.relative_to(folder).as_posix(): p.read_bytes() for p in _files(folder)}
+
+
+def test_complementary_suppression_hides_enough_to_protect_a_lone_small_unit():
+    table = pd.DataFrame({"status": ["reported", "too_few", "reported", "reported", "no_cases"], "cases": [300, 4, 25, 40, 0]})
+    withhold_complement(table, 11)
+    assert table["status"].tolist() == ["reported", "too_few", "withheld", "reported", "no_cases"]
+    two_small = pd.DataFrame({"status": ["too_few", "too_few", "reported"], "cases": [6, 7, 90]})
+    withhold_complement(two_small, 11)  # 6 + 7 >= 11 and two units: nothing more to hide
+    assert two_small["status"].tolist() == ["too_few", "too_few", "reported"]
+    tiny = pd.DataFrame({"status": ["too_few", "too_few", "reported", "reported"], "cases": [2, 3, 50, 20]})
+    withhold_complement(tiny, 11)  # 2 + 3 < 11: the smallest reported unit joins them
+    assert tiny["status"].tolist() == ["too_few", "too_few", "reported", "withheld"]
+
+
+@pytest.mark.slow
+def test_no_patient_level_value_reaches_any_output_file(hostile_cycle):
+    folder, markers, summary, site = hostile_cycle
+    blobs = {p: p.read_bytes() for p in _files(site)}
+    assert len(blobs) > 20
+    for column, values in markers.items():
+        for value in values:
+            token = value.encode()
+            leaked = [p for p, blob in blobs.items() if token in blob]
+            assert leaked == [], f"{column} value {value} found in {leaked}"
+    warning = next(w for w in summary.warnings if "look like direct identifiers" in w)
+    assert "patient_name, date_of_birth, phone" in warning
+
+
+@pytest.mark.slow
+def test_small_units_and_their_complement_are_suppressed_in_the_downloads(hostile_cycle):
+    _, _, summary, site = hostile_cycle
+    table = pd.read_csv(site / "downloads" / "results.csv")
+    hidden = table[table["status"].isin(["too_few", "withheld"])]
+    internal = summary.results[0].table.set_index("unit_id")
+    assert len(hidden) >= 2 and internal.loc[hidden["unit_id"], "cases"].sum() >= 11
+    assert hidden[["cases", "observed", "expected", "rsr_median"]].isna().all().all()
+
+
+class _Refs(HTMLParser):
+    def __init__(self):
+        super().__init__()
+        self.refs, self.scripts = [], 0
+
+    def handle_starttag(self, tag, attrs):
+        self.scripts += tag == "script"
+        self.refs += [v for k, v in attrs if k in ("href", "src") and v]
+
+
+@pytest.mark.slow
+def test_pages_show_hostile_names_literally_load_nothing_from_elsewhere_and_carry_a_csp(hostile_cycle):
+    _, _, _, site = hostile_cycle
+    pages = [p for p in _files(site) if p.suffix == ".html" and "_source" not in p.parts]
+    for page in pages:
+        text = page.read_text()
+        parser = _Refs()
+        parser.feed(text)
+        assert parser.scripts == 0, page
+        assert not [r for r in parser.refs if "//" in r or r.startswith(("http", "data:", "javascript:"))], page
+        assert '<meta http-equiv="Content-Security-Policy" content="default-src \'none\';' in text
+    home = (site / "index.html").read_text()
+    assert "&lt;script&gt;alert('x')&lt;/script&gt; *Bold* [link](http://evil.example) | pipe" in home
+    assert "St. Mary's # 1 &amp; &lt;b&gt;Co&lt;/b&gt;" in home
+    assert (site / "units" / "mv01.html").read_text().count("&lt;script&gt;") >= 2  # title and heading
+
+
+@pytest.mark.slow
+def test_manifest_records_inputs_settings_and_diagnostics(hostile_cycle):
+    folder, _, summary, site = hostile_cycle
+    manifest = json.loads((site / MARKER).read_text())
+    for name in ("cohort.csv", "units.csv"):
+        assert manifest["input_sha256"][name] == hashlib.sha256((folder / name).read_bytes()).hexdigest()
+    assert manifest["config_sha256"] == hashlib.sha256((folder / "cycle.toml").read_bytes()).hexdigest()
+    assert manifest["seed"] == 99 and manifest["renderer"].startswith("builtin")
+    assert manifest["diagnostics"]["readmit30"]["divergences"] == summary.results[0].diagnostics.divergences
+    assert {"pymc", "nutpie", "statsmodels"} <= set(manifest["versions"])
+    methods = (site / "methods.html").read_text()
+    assert 'href="fairgauge-manifest.json"' in methods and manifest["input_sha256"]["cohort.csv"] in methods
+
+
+def _cycle_copy(folder: Path, target: Path) -> Path:
+    """The same config and inputs, byte for byte, in ``target`` (whose site goes to target/site)."""
+    target.mkdir(exist_ok=True)
+    for name in ("cycle.toml", "cohort.csv", "units.csv"):
+        shutil.copy2(folder / name, target / name)
+    return target / "cycle.toml"
+
+
+@pytest.mark.slow
+def test_same_inputs_give_identical_files_in_a_fresh_process(hostile_cycle, tmp_path):
+    folder, _, _, site = hostile_cycle
+    again = _cycle_copy(folder, tmp_path).parent / "site"
+    done = subprocess.run([sys.executable, "-m", "pipeline.cli", "build", str(tmp_path / "cycle.toml")], capture_output=True, text=True)
+    assert done.returncode == 0, done.stderr
+    built = {json.loads((d / MARKER).read_text())["built"] for d in (site, again)}
+    first, second = _snapshot(site), _snapshot(again)
+    assert first.keys() == second.keys()
+    differing = [name for name in first if first[name] != second[name]]
+    for name in differing:  # only the build-time field may differ
+        strip = lambda b: "\n".join(l for l in b.decode().splitlines() if not any(t in l for t in built))  # noqa: E731
+        assert strip(first[name]) == strip(second[name]), name
+    assert set(differing) <= {MARKER, "methods.html", "_source/methods.qmd", "_source/fairgauge-manifest.json", "downloads/results.json", "_source/downloads/results.json"}
+    assert first["downloads/results.csv"] == second["downloads/results.csv"]
+
+
+@pytest.mark.slow
+def test_a_killed_cycle_leaves_the_last_good_site_byte_for_byte(hostile_cycle, tmp_path):
+    folder, _, _, site = hostile_cycle
+    config = _cycle_copy(folder, tmp_path)
+    published = tmp_path / "site"
+    shutil.copytree(site, published)
+    before = _snapshot(published)
+    process = subprocess.Popen([sys.executable, "-m", "pipeline.cli", "build", str(config)], stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
+    deadline = time.monotonic() + 240
+    while not list(tmp_path.glob(".site.tmp-*")) and process.poll() is None and time.monotonic() < deadline:
+        time.sleep(0.05)  # wait until the new site is being written
+    assert process.poll() is None, "the cycle finished before it could be killed"
+    os.kill(process.pid, signal.SIGKILL)
+    process.wait()
+    assert _snapshot(published) == before
+    assert list(tmp_path.glob(".site.tmp-*"))  # the killed build's folder is left behind ...
+    remove_stale_builds(published)
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["cohort.csv", "cycle.toml", "site", "units.csv"]  # ... until the next cycle
+
+
+@pytest.mark.slow
+@pytest.mark.parametrize(
+    "target, error, message",
+    [
+        ("pipeline.cycle.tempfile.mkdtemp", errno.EROFS, "cannot write beside the output folder {out} (Read-only file system); the previous site was left as it was."),
+        ("pipeline.cycle.results_json", errno.ENOSPC, "writing the new site failed (No space left on device"),
+    ],
+)
+def test_an_unwritable_or_full_disk_ends_in_a_clear_message_and_keeps_the_site(hostile_cycle, tmp_path, monkeypatch, target, error, message):
+    folder, _, summary, site = hostile_cycle
+    published = tmp_path / "published"
+    shutil.copytree(site, published)
+    before = _snapshot(published)
+    config = load_config(folder / "cycle.toml")
+    config = dataclasses.replace(config, cycle=dataclasses.replace(config.cycle, output=published))
+    monkeypatch.setattr("pipeline.cycle.fit_measures", lambda *a: summary.results)
+
+    def fail(*args, **kwargs):
+        raise OSError(error, os.strerror(error))
+
+    monkeypatch.setattr(target, fail)
+    with pytest.raises(RenderError) as caught:
+        run_cycle(config)
+    assert str(caught.value).startswith(message.format(out=published))
+    assert _snapshot(published) == before
+    assert [p.name for p in tmp_path.iterdir()] == ["published"]
