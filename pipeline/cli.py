@@ -36,6 +36,7 @@ def _parser() -> argparse.ArgumentParser:
     common = argparse.ArgumentParser(add_help=False)
     common.add_argument("--strict", action="store_true", help="treat warnings as errors")
     common.add_argument("--renderer", choices=["auto", "quarto", "builtin"], help="override [cycle].renderer")
+    common.add_argument("--refit", action="store_true", help="ignore cached fits and figures; fit and draw everything again")
     build = sub.add_parser("build", parents=[common], help="run the reporting cycle described by a config file")
     build.add_argument("config", type=Path, help="cycle config (TOML)")
     check = sub.add_parser("check", help="check a config and its data without fitting anything")
@@ -83,7 +84,7 @@ def main(argv: list[str] | None = None) -> int:
         else:
             config_path = args.config
         config = load_config(config_path)
-        summary = run_cycle(config, reporter, strict=args.strict, renderer=args.renderer)
+        summary = run_cycle(config, reporter, strict=args.strict, renderer=args.renderer, no_cache=args.refit)
     except FairgaugeError as exc:
         print(f"fairgauge: ERROR {exc}", file=sys.stderr)
         return exc.exit_code

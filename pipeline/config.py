@@ -75,6 +75,14 @@ class CycleSection:
     invented_data: bool = option(
         False, doc="True for demonstration data: every page then says the data are invented."
     )
+    cache: Path = option(
+        Path(".fairgauge-cache"),
+        doc="Folder for cached fits and figures (relative to the config file); unchanged data and model settings are not refitted.",
+    )
+    history: Path = option(
+        Path("history"),
+        doc="Folder where each published cycle's results are kept, for trends and the changes page (relative to the config file).",
+    )
 
 
 @dataclass(frozen=True)

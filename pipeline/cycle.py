@@ -27,7 +27,8 @@ from .casemix import fit_casemix
 from .config import CycleConfig, MeasureSection
 from .data import Cohort, load_cohort
 from .errors import RenderError, StrictError
-from .figures import measure_figure, unit_figure
+from .cache import Cache, key
+from .figures import cached_figure, draw_measure, draw_unit, measure_figure_data, unit_figure_data
 from .pages import render_pages, unit_slugs
 from .render import Renderer, choose_renderer, render_site
 from .results import DICTIONARY, MeasureResult, public_table, results_json, summarise_measure
@@ -62,7 +63,9 @@ class CycleSummary:
     seconds: float = 0.0
 
 
-def run_cycle(config: CycleConfig, reporter: Reporter = Quiet(), strict: bool = False, renderer: str | None = None) -> CycleSummary:
+def run_cycle(
+    config: CycleConfig, reporter: Reporter = Quiet(), strict: bool = False, renderer: str | None = None, no_cache: bool = False
+) -> CycleSummary:
     """Run one reporting cycle described by ``config`` and publish its site."""
     start = time.perf_counter()
     chosen = choose_renderer(renderer or config.cycle.renderer)
@@ -74,8 +77,9 @@ def run_cycle(config: CycleConfig, reporter: Reporter = Quiet(), strict: bool = 
         reporter.warn(w)
     if strict and warnings:
         raise StrictError(f"{len(warnings)} warning(s) and --strict is set; nothing was fitted or published.")
-    results = fit_measures(config, cohort, reporter)
-    build = build_site(config, cohort, results, chosen, reporter)
+    cache = Cache(None if no_cache else config.cycle.cache)
+    results = fit_measures(config, cohort, cache, reporter)
+    build = build_site(config, cohort, results, chosen, cache, reporter)
     publish(build, config.cycle.output)
     return CycleSummary(
         site=config.cycle.output, units=len(cohort.units), measures=[m.key for m in config.measures],
@@ -84,7 +88,7 @@ def run_cycle(config: CycleConfig, reporter: Reporter = Quiet(), strict: bool = 
     )
 
 
-def fit_measures(config: CycleConfig, cohort: Cohort, reporter: Reporter) -> list[MeasureResult]:
+def fit_measures(config: CycleConfig, cohort: Cohort, cache: Cache, reporter: Reporter) -> list[MeasureResult]:
     """Case-mix fit then shrinkage fit for every measure (one compiled model for all)."""
     rows = cohort.rows
     present = set(rows[cohort.unit_column])
@@ -93,14 +97,23 @@ def fit_measures(config: CycleConfig, cohort: Cohort, reporter: Reporter) -> lis
     sampler = Sampler(ShrinkageSpec(), config.sampler, engine=config.sampler.engine)
     results = []
     for i, measure in enumerate(config.measures):
-        results.append(fit_measure(config, cohort, measure, codes, fitted_units, sampler, config.sampler.seed + i, reporter))
+        seed = config.sampler.seed + i
+        fit_key = key("fit", cohort.sha256, cohort.unit_column, fitted_units, measure.outcome, measure.type, measure.casemix, config.sampler, seed, sampler.spec)
+        fits = cache.load(fit_key)
+        if fits is None:
+            fits = fit_measure(config, cohort, measure, codes, fitted_units, sampler, seed, reporter)
+            cache.store(fit_key, fits)
+        else:
+            reporter.stage(f"{measure.key}: data and model settings unchanged; reusing the cached fits")
+        results.append(summarise_measure(config, measure, cohort.units, fitted_units, *fits))
     return results
 
 
 def fit_measure(
     config: CycleConfig, cohort: Cohort, measure: MeasureSection, codes: np.ndarray, fitted_units: list[str],
     sampler: Sampler, seed: int, reporter: Reporter,
-) -> MeasureResult:
+) -> tuple:
+    """Case-mix fit and shrinkage fit of one measure: (counts, case-mix fit, unit draws, tau draws, diagnostics)."""
     reporter.stage(f"{measure.key}: case-mix fit ({measure.casemix})")
     casemix = fit_casemix(measure, cohort.rows, codes)
     y = cohort.rows[measure.outcome].to_numpy(dtype=float)
@@ -120,7 +133,7 @@ def fit_measure(
     counts = pd.DataFrame({"code": codes, "y": y, "e": casemix.expected}).groupby("code").agg(
         cases=("y", "size"), observed=("y", "sum"), expected=("e", "sum")
     ).reindex(range(len(fitted_units)))
-    return summarise_measure(config, measure, cohort.units, fitted_units, counts, casemix, unit_draws(cells, draws), draws["tau"], diagnostics)
+    return counts, casemix, unit_draws(cells, draws), draws["tau"], diagnostics
 
 
 def about(config: CycleConfig, cohort: Cohort, renderer: Renderer, results: list[MeasureResult]) -> dict:
@@ -146,7 +159,7 @@ def about(config: CycleConfig, cohort: Cohort, renderer: Renderer, results: list
     }
 
 
-def build_site(config: CycleConfig, cohort: Cohort, results: list[MeasureResult], renderer: Renderer, reporter: Reporter) -> Path:
+def build_site(config: CycleConfig, cohort: Cohort, results: list[MeasureResult], renderer: Renderer, cache: Cache, reporter: Reporter) -> Path:
     """Write figures, downloads and pages into a new folder beside the output; render it there."""
     output = config.cycle.output
     try:
@@ -160,8 +173,13 @@ def build_site(config: CycleConfig, cohort: Cohort, results: list[MeasureResult]
         reporter.stage(f"drawing figures ({len(results)} measures, {len(cohort.units)} units)")
         slugs = unit_slugs(cohort.units.index)
         for r in results:
-            measure_figure(r, project / "figures" / f"measure-{r.measure.key}.png")
-        has_figure = {uid: unit_figure(uid, results, project / "figures" / f"unit-{slugs[uid]}.png") for uid in cohort.units.index}
+            cached_figure(project / "figures" / f"measure-{r.measure.key}.png", draw_measure, measure_figure_data(r), cache, r.benchmark)
+        has_figure = {}
+        for uid in cohort.units.index:
+            data = unit_figure_data(uid, results)
+            has_figure[uid] = data is not None
+            if data is not None:
+                cached_figure(project / "figures" / f"unit-{slugs[uid]}.png", draw_unit, data, cache)
         reporter.stage("writing results and pages")
         info = about(config, cohort, renderer, results)
         (project / MARKER).write_text(json.dumps(info, indent=2), encoding="utf-8")

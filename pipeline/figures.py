@@ -6,12 +6,15 @@ never colour alone. Colours are from the Okabe & Ito (2008) colour-blind-safe pa
 
 from __future__ import annotations
 
+import hashlib
+import shutil
 import warnings
 from pathlib import Path
 
 import pandas as pd
 import plotnine as p9
 
+from .cache import Cache, key
 from .results import POSITION, MeasureResult
 
 # position key -> (colour, marker); a data table so pages and figures agree.
@@ -47,37 +50,60 @@ def _save(plot, path: Path) -> None:
         plot.save(path, dpi=DPI, verbose=False)
 
 
-def measure_figure(result: MeasureResult, path: Path) -> None:
-    """All reported units' risk-standardised rates with credible intervals against the benchmark."""
+_SOURCE = hashlib.sha256(Path(__file__).read_bytes()).hexdigest()  # drawing code changes redraw
+
+
+def cached_figure(path: Path, draw, data: pd.DataFrame, cache: Cache, *extra) -> None:
+    """Draw ``data`` with ``draw`` into ``path``, or copy the same figure from the cache."""
+    name = key("figure", draw.__name__, data.to_csv(), extra, _SOURCE) + ".png"
+    hit = cache.file(name)
+    path.parent.mkdir(parents=True, exist_ok=True)
+    if hit is not None:
+        shutil.copyfile(hit, path)
+        return
+    draw(data, *extra, path)
+    cache.store_file(name, path)
+
+
+def measure_figure_data(result: MeasureResult) -> pd.DataFrame:
+    """What the measure figure shows: reported units, lowest adjusted rate first."""
     t = result.table[result.table["status"] == "reported"].sort_values("rsr_median")
-    order = list(t["unit_name"])
-    data = t.assign(
-        unit=pd.Categorical(t["unit_name"], categories=order, ordered=True),
-        rsr=t["rsr_median"] * 100, lo=t["rsr_lower"] * 100, hi=t["rsr_upper"] * 100,
+    return pd.DataFrame(
+        {"unit_name": t["unit_name"], "rsr": t["rsr_median"] * 100, "lo": t["rsr_lower"] * 100, "hi": t["rsr_upper"] * 100, "position": t["position"]}
     )
+
+
+def draw_measure(data: pd.DataFrame, benchmark: float, path: Path) -> None:
+    """All reported units' risk-standardised rates with credible intervals against the benchmark."""
+    order = list(data["unit_name"])
+    data = data.assign(unit=pd.Categorical(data["unit_name"], categories=order, ordered=True))
     plot = (
         p9.ggplot(data, p9.aes(x="unit", y="rsr", ymin="lo", ymax="hi", colour="position", shape="position"))
-        + p9.geom_hline(yintercept=result.benchmark * 100, linetype="dashed", colour="#000000")
+        + p9.geom_hline(yintercept=benchmark * 100, linetype="dashed", colour="#000000")
         + p9.geom_linerange(size=0.8)
         + p9.geom_point(size=2.6, fill="white")
         + p9.coord_flip()
         + _scales()
-        + p9.labs(x="", y=f"Risk-standardised rate, % (dashed line: benchmark {result.benchmark * 100:.1f}%)")
+        + p9.labs(x="", y=f"Risk-standardised rate, % (dashed line: benchmark {benchmark * 100:.1f}%)")
         + _theme(max(3.0, 1.6 + 0.19 * len(order)))
     )
     _save(plot, path)
 
 
-def unit_figure(unit_id: str, results: list[MeasureResult], path: Path) -> bool:
-    """A unit's adjusted ratio to the network on each reported measure; False if none is reported."""
+def unit_figure_data(unit_id: str, results: list[MeasureResult]) -> pd.DataFrame | None:
+    """What a unit's figure shows: its reported measures (None when none is reported)."""
     rows = []
     for r in results:
         row = r.table[(r.table["unit_id"] == unit_id) & (r.table["status"] == "reported")]
         if len(row):
             rows.append(row.assign(measure_name=r.measure.name, bench=r.benchmark / r.network_rate))
     if not rows:
-        return False
-    data = pd.concat(rows)
+        return None
+    return pd.concat(rows)[["measure_name", "ratio_median", "ratio_lower", "ratio_upper", "position", "bench"]]
+
+
+def draw_unit(data: pd.DataFrame, path: Path) -> None:
+    """A unit's adjusted ratio to the network on each reported measure."""
     data = data.assign(measure_name=pd.Categorical(data["measure_name"], categories=list(data["measure_name"])[::-1]))
     plot = (
         p9.ggplot(data, p9.aes(x="measure_name", y="ratio_median", ymin="ratio_lower", ymax="ratio_upper", colour="position", shape="position"))
@@ -91,4 +117,3 @@ def unit_figure(unit_id: str, results: list[MeasureResult], path: Path) -> bool:
         + _theme(1.9 + 0.45 * len(data))
     )
     _save(plot, path)
-    return True

@@ -184,3 +184,33 @@ def test_an_unwritable_or_full_disk_ends_in_a_clear_message_and_keeps_the_site(h
     assert str(caught.value).startswith(message.format(out=published))
     assert _snapshot(published) == before
     assert [p.name for p in tmp_path.iterdir()] == ["published"]
+
+
+class _SamplerCalled(Exception):
+    pass
+
+
+def _with_measure(config, **changes):
+    measure = dataclasses.replace(config.measures[0], **changes)
+    return dataclasses.replace(config, measures=(measure,))
+
+
+@pytest.mark.slow
+def test_wording_changes_reuse_cached_fits_but_model_changes_refit(hostile_cycle, monkeypatch):
+    folder, _, _, site = hostile_cycle
+
+    def sampler_called(self, cells, seed):
+        raise _SamplerCalled
+
+    monkeypatch.setattr("pipeline.shrinkage.Sampler.run", sampler_called)
+    config = load_config(folder / "cycle.toml")
+    reworded = _with_measure(config, definition="Patients readmitted, reworded for this test.")
+    start = time.perf_counter()
+    run_cycle(reworded)  # would raise if it tried to sample
+    assert time.perf_counter() - start < 30
+    assert "Patients readmitted, reworded for this test." in (site / "measures" / "readmit30.html").read_text()
+    with pytest.raises(_SamplerCalled):
+        run_cycle(_with_measure(config, casemix="C(age_band) + frailty"))
+    with pytest.raises(_SamplerCalled):
+        run_cycle(dataclasses.replace(config, sampler=dataclasses.replace(config.sampler, seed=100)))
+    run_cycle(config)  # back to the fixture's own site for the tests that follow

@@ -1,0 +1,97 @@
+"""Fit cache: a cycle whose data and model settings are unchanged reuses its fits and figures.
+
+Keys hash everything a fit depends on (input file hashes, the measure's outcome, type and
+formula, the sampler settings and seed, the shrinkage spec, and the versions of fairgauge and
+of the fitting libraries) and nothing it does not (names, wording, templates, reporting
+thresholds), so changing only the words re-renders in seconds. Entries are written atomically.
+The cache is local working data, never part of the site.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import os
+import pickle
+import tempfile
+from dataclasses import asdict
+from importlib import metadata
+from pathlib import Path
+from typing import Any
+
+from . import __version__
+
+_LIBRARIES = ("numpy", "pandas", "statsmodels", "pymc", "nutpie", "plotnine", "matplotlib")
+
+
+def _versions() -> dict[str, str]:
+    found = {"fairgauge": __version__}
+    for name in _LIBRARIES:
+        try:
+            found[name] = metadata.version(name)
+        except metadata.PackageNotFoundError:
+            found[name] = "absent"
+    return found
+
+
+def key(*parts: Any) -> str:
+    """A stable hash of JSON-able parts plus the library versions."""
+    def plain(x: Any) -> Any:
+        if hasattr(x, "__dataclass_fields__"):
+            return asdict(x)
+        if isinstance(x, Path):
+            return x.as_posix()
+        return x
+
+    text = json.dumps([_versions(), *map(plain, parts)], sort_keys=True, default=str)
+    return hashlib.sha256(text.encode()).hexdigest()
+
+
+class Cache:
+    """Pickled values and raw files under one folder; ``None`` folder means no caching."""
+
+    def __init__(self, folder: Path | None):
+        self.folder = folder
+        self.hits = self.misses = 0
+
+    def _path(self, name: str) -> Path:
+        assert self.folder is not None
+        return self.folder / name[:2] / name
+
+    def load(self, name: str) -> Any | None:
+        if self.folder is None:
+            return None
+        path = self._path(name + ".pkl")
+        try:
+            with path.open("rb") as fh:
+                value = pickle.load(fh)
+        except (OSError, pickle.UnpicklingError, EOFError, AttributeError, ImportError):
+            self.misses += 1
+            return None  # absent or unreadable: fit again
+        self.hits += 1
+        return value
+
+    def store(self, name: str, value: Any) -> None:
+        if self.folder is not None:
+            self._write(self._path(name + ".pkl"), pickle.dumps(value, protocol=pickle.HIGHEST_PROTOCOL))
+
+    def file(self, name: str) -> Path | None:
+        """Path of a cached raw file, if present."""
+        if self.folder is None:
+            return None
+        path = self._path(name)
+        return path if path.is_file() else None
+
+    def store_file(self, name: str, source: Path) -> None:
+        if self.folder is not None:
+            self._write(self._path(name), source.read_bytes())
+
+    def _write(self, path: Path, data: bytes) -> None:
+        try:
+            path.parent.mkdir(parents=True, exist_ok=True)
+            fd, tmp = tempfile.mkstemp(dir=path.parent, prefix=".part-")
+            with os.fdopen(fd, "wb") as fh:
+                fh.write(data)
+            os.replace(tmp, path)
+        except OSError:
+            pass  # a cache that cannot be written only costs time
