@@ -228,6 +228,8 @@ def _build_section(cls: type, table: Any, where: str, base: Path, problems: list
         if f.name not in table:
             if f.default is MISSING:
                 problems.append(Problem(key, f"is required ({f.metadata['doc']})"))
+            elif hints[f.name] is Path:
+                values[f.name] = (base / f.default).resolve()  # defaults, too, are relative to the config file
             continue
         value = table[f.name]
         wrong = _type_problem(value, hints[f.name])

@@ -29,6 +29,7 @@ from .data import Cohort, load_cohort
 from .errors import RenderError, StrictError
 from .cache import Cache, key
 from .figures import cached_figure, draw_measure, draw_unit, measure_figure_data, unit_figure_data
+from .history import PastCycle, past_cycles, record_cycle
 from .pages import render_pages, unit_slugs
 from .render import Renderer, choose_renderer, render_site
 from .results import DICTIONARY, MeasureResult, public_table, results_json, summarise_measure
@@ -79,8 +80,13 @@ def run_cycle(
         raise StrictError(f"{len(warnings)} warning(s) and --strict is set; nothing was fitted or published.")
     cache = Cache(None if no_cache else config.cycle.cache)
     results = fit_measures(config, cohort, cache, reporter)
-    build = build_site(config, cohort, results, chosen, cache, reporter)
+    past = past_cycles(config.cycle.history, config.cycle.period)
+    manifest = about(config, cohort, chosen, results)
+    table = public_table(results)
+    build = build_site(config, cohort, results, table, manifest, past, chosen, cache, reporter)
     publish(build, config.cycle.output)
+    reporter.stage(f"recording this cycle in {config.cycle.history}")
+    record_cycle(config.cycle.history, config.cycle.period, table, results, manifest)
     return CycleSummary(
         site=config.cycle.output, units=len(cohort.units), measures=[m.key for m in config.measures],
         patients=len(cohort.rows), renderer=chosen, results=results, warnings=warnings,
@@ -159,7 +165,10 @@ def about(config: CycleConfig, cohort: Cohort, renderer: Renderer, results: list
     }
 
 
-def build_site(config: CycleConfig, cohort: Cohort, results: list[MeasureResult], renderer: Renderer, cache: Cache, reporter: Reporter) -> Path:
+def build_site(
+    config: CycleConfig, cohort: Cohort, results: list[MeasureResult], table: pd.DataFrame, manifest: dict,
+    past: list[PastCycle], renderer: Renderer, cache: Cache, reporter: Reporter,
+) -> Path:
     """Write figures, downloads and pages into a new folder beside the output; render it there."""
     output = config.cycle.output
     try:
@@ -181,15 +190,13 @@ def build_site(config: CycleConfig, cohort: Cohort, results: list[MeasureResult]
             if data is not None:
                 cached_figure(project / "figures" / f"unit-{slugs[uid]}.png", draw_unit, data, cache)
         reporter.stage("writing results and pages")
-        info = about(config, cohort, renderer, results)
-        (project / MARKER).write_text(json.dumps(info, indent=2), encoding="utf-8")
-        table = public_table(results)
+        (project / MARKER).write_text(json.dumps(manifest, indent=2), encoding="utf-8")
         (project / "downloads").mkdir(parents=True)
         table.to_csv(project / "downloads" / "results.csv", index=False, float_format="%.6g")
-        (project / "downloads" / "results.json").write_text(results_json(table, results, info), encoding="utf-8")
+        (project / "downloads" / "results.json").write_text(results_json(table, results, manifest), encoding="utf-8")
         (project / "assets").mkdir()
         shutil.copyfile(templates_path() / "static" / "fairgauge.css", project / "assets" / "fairgauge.css")
-        for page in render_pages(config, results, cohort.units, slugs, has_figure, {**info, "dictionary": DICTIONARY}):
+        for page in render_pages(config, results, cohort.units, slugs, has_figure, past, {**manifest, "dictionary": DICTIONARY}):
             target = project / page.path
             target.parent.mkdir(parents=True, exist_ok=True)
             target.write_text(page.text, encoding="utf-8")

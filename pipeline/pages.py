@@ -17,6 +17,7 @@ import pandas as pd
 
 from . import templates_path
 from .config import CycleConfig
+from .history import PastCycle, changes
 from .results import POSITION, STATUS, MeasureResult
 from .shrinkage import LIMITS, ShrinkageSpec
 
@@ -252,12 +253,45 @@ def _up(path: str) -> str:
     return "../" * (len(PurePosixPath(path).parts) - 1)
 
 
+def trends(config: CycleConfig, results: list[MeasureResult], past: list[PastCycle], slugs: dict[str, str]) -> dict[str, list[dict]]:
+    """Per unit, its published adjusted rates in earlier cycles and now (reported cycles only)."""
+    out: dict[str, list[dict]] = {uid: [] for uid in slugs}
+    for r in results:
+        cycles = [(p.period, p.table[p.table["measure"] == r.measure.key]) for p in past] + [(config.cycle.period, r.table)]
+        for period, table in cycles:
+            for _, row in table[table["status"] == "reported"].iterrows():
+                if row["unit_id"] in out:
+                    out[row["unit_id"]].append({"measure": md(r.measure.name), "period": md(period), "rate": pct(row["rsr_median"]), "interval": span(row["rsr_lower"], row["rsr_upper"])})
+    return out
+
+
+def change_views(results: list[MeasureResult], previous: PastCycle | None, slugs: dict[str, str]) -> list[dict]:
+    """The changes page, one block per measure (empty when there is no earlier cycle)."""
+    if previous is None:
+        return []
+    table = changes(results, previous)
+    blocks = []
+    for r in results:
+        rows = table[table["measure"] == r.measure.key] if len(table) else table
+        blocks.append({
+            "name": md(r.measure.name),
+            "rows": [
+                {"name": md(x["unit_name"]), "href": f"units/{slugs[x['unit_id']]}.qmd", "before": f"{pct(x['before'])} ({span(x['before_lower'], x['before_upper'])})",
+                 "now": f"{pct(x['now'])} ({span(x['now_lower'], x['now_upper'])})", "chance": chance(x["p_higher"]), "words": x["words"]}
+                for _, x in rows.sort_values("p_higher", ascending=False).iterrows()
+            ],
+        })
+    return blocks
+
+
 def render_pages(
-    config: CycleConfig, results: list[MeasureResult], units: pd.DataFrame, slugs: dict[str, str], has_figure: dict[str, bool], site: dict
+    config: CycleConfig, results: list[MeasureResult], units: pd.DataFrame, slugs: dict[str, str], has_figure: dict[str, bool],
+    past: list[PastCycle], site: dict,
 ) -> list[Page]:
     """All pages of the site plus ``_quarto.yml``, as text."""
     env = environment()
     measures, unit_views = views(config, results, units, slugs, has_figure)
+    unit_trends = trends(config, results, past, slugs)
     common = {
         "cycle": config.cycle, "site": site, "measures": measures, "units": unit_views, "limits": LIMITS,
         "priors": ShrinkageSpec().describe(), "reporting": config.reporting, "sampler": config.sampler,
@@ -267,7 +301,8 @@ def render_pages(
         ("index.qmd", "index.qmd.j2", {}),
         ("units.qmd", "units.qmd.j2", {}),
         *[(m.href, "measure.qmd.j2", {"m": m}) for m in measures],
-        *[(u.href, "unit.qmd.j2", {"u": u}) for u in unit_views],
+        *[(u.href, "unit.qmd.j2", {"u": u, "trend": unit_trends[uid] if past else []}) for uid, u in zip(units.index, unit_views)],
+        ("changes.qmd", "changes.qmd.j2", {"previous": md(past[-1].period) if past else "", "blocks": change_views(results, past[-1] if past else None, slugs)}),
         ("methods.qmd", "methods.qmd.j2", {}),
         ("cautions.qmd", "cautions.qmd.j2", {}),
         ("downloads.qmd", "downloads.qmd.j2", {}),

@@ -36,6 +36,7 @@ PUBLIC_COLUMNS = [
     "prob_above_benchmark", "position",
 ]
 NUMERIC_PUBLIC = PUBLIC_COLUMNS[5:-1]
+HISTORY_DRAWS = 1000  # draws kept per unit for comparing cycles
 
 
 @dataclass(frozen=True)
@@ -49,6 +50,7 @@ class MeasureResult:
     benchmark: float
     tau: tuple[float, float, float]  # posterior median, lower, upper of the between-unit SD
     table: pd.DataFrame  # full internal table, one row per unit in the unit table
+    rsr_draws: pd.DataFrame  # thinned posterior draws of the risk-standardised rate, one column per fitted unit
 
 
 def summarise_measure(
@@ -112,6 +114,7 @@ def summarise_measure(
         benchmark=benchmark,
         tau=(float(np.median(tau_draws)), float(np.quantile(tau_draws, lo_q)), float(np.quantile(tau_draws, hi_q))),
         table=table,
+        rsr_draws=pd.DataFrame(rsr[np.linspace(0, len(rsr) - 1, min(len(rsr), HISTORY_DRAWS)).round().astype(int)], columns=unit_ids),
     )
 
 

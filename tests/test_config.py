@@ -19,6 +19,8 @@ def test_valid_config_gets_documented_defaults(cycle_folder):
     assert config.reporting.benchmark == "network"
     assert config.inputs.unit_column == "unit_id"
     assert config.cycle.output == (config.source.parent / "site").resolve()
+    assert config.cycle.cache == config.source.parent / ".fairgauge-cache"  # defaults resolve beside the config too
+    assert config.cycle.history == config.source.parent / "history"
     assert config.measures[0].better == "lower"
     assert len(config.sha256) == 64
 

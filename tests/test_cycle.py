@@ -47,7 +47,7 @@ def test_quarto_project_is_complete_and_has_no_code_cells(demo_cycle):
     listed = config["project"]["render"]
     on_disk = sorted(p.relative_to(project).as_posix() for p in project.rglob("*.qmd"))
     assert sorted(listed) == on_disk
-    assert len(listed) == 1 + 1 + len(summary.measures) + summary.units + 3  # home, units, measures, profiles, methods, cautions, downloads
+    assert len(listed) == 1 + 1 + len(summary.measures) + summary.units + 4  # home, units, measures, profiles, changes, methods, cautions, downloads
     for item in config["website"]["navbar"]["left"]:
         for link in item.get("menu", [item]):
             assert (project / link["href"]).is_file()
@@ -60,7 +60,7 @@ def test_quarto_project_is_complete_and_has_no_code_cells(demo_cycle):
 def test_every_page_is_rendered_and_every_link_and_image_resolves(demo_cycle):
     _, summary, site = demo_cycle
     pages = _html_pages(site)
-    assert len(pages) == 1 + 1 + len(summary.measures) + summary.units + 3
+    assert len(pages) == 1 + 1 + len(summary.measures) + summary.units + 4
     broken = []
     for page in pages:
         parser = _Links()
