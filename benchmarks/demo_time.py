@@ -1,4 +1,5 @@
 """Wall time of the demo cycle from an installed (not editable) fairgauge; target: under 3 minutes.
+Also the rebuild after a wording-only change, which reuses cached fits and figures; target: under 30 s.
 
 Peer, measured in the same run: the same demo cycle with PyMC's own NUTS sampler
 ([sampler].engine = "pymc") instead of nutpie.
@@ -47,6 +48,13 @@ def main() -> None:
     print(output.strip().splitlines()[-6], "...", sep="\n")
     print(f"demo cycle (installed package, nutpie): {seconds:.1f} s; target {TARGET_SECONDS:.0f} s; "
           f"ratio to target {seconds / TARGET_SECONDS:.2f}")
+    config_path = OUT / "demo-cycle" / "cycle.toml"
+    original = config_path.read_text()
+    config_path.write_text(original.replace("within 30 days of going home", "within 30 days of leaving hospital"))
+    reword_seconds, _ = timed([fairgauge, "build", "demo-cycle/cycle.toml"])
+    config_path.write_text(original)
+    print(f"rebuild after a wording-only change (fits and figures from the cache): {reword_seconds:.1f} s; target 30 s; "
+          f"ratio to target {reword_seconds / 30:.2f}; ratio to the full cycle {reword_seconds / seconds:.2f}")
     if args.skip_peer:
         return
     config = (OUT / "demo-cycle" / "cycle.toml").read_text()

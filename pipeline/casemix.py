@@ -44,6 +44,7 @@ class CaseMixFit:
     expected: np.ndarray  # expected risk per patient
     c_statistic: float
     units_in_fit: int  # units with both outcomes present (used to estimate the coefficients)
+    solver: str  # "statsmodels" (dummy columns) or "block-newton" (same estimates, for many units)
 
 
 def c_statistic(outcome: np.ndarray, score: np.ndarray) -> float:
@@ -70,6 +71,56 @@ def calibrate_intercept(linear: np.ndarray, observed_events: float) -> float:
     return float(brentq(target, lo, hi, xtol=1e-12))
 
 
+# Above this many cells in the dense design (patients x (risk terms + unit indicators)), the
+# within-unit fit uses the block Newton solver below instead of statsmodels with dummy columns.
+DENSE_LIMIT = 20_000_000
+
+
+def within_logit(y: np.ndarray, x: np.ndarray, unit: np.ndarray, n_units: int, tol: float = 1e-10, max_iter: int = 100):
+    """Logistic regression with one intercept per unit, by Newton's method on the block system.
+
+    The unit intercepts form a diagonal block of the Hessian, so each Newton step solves the
+    small risk-factor block through its Schur complement and then the intercepts in closed
+    form: the same maximum-likelihood estimates as a fit with a dummy column per unit, in
+    memory proportional to patients x risk terms. Returns (coefficients, standard errors).
+    Every unit must have both outcomes (otherwise its intercept has no finite estimate).
+    """
+    k = x.shape[1]
+    counts = np.bincount(unit, minlength=n_units)
+    mean = np.bincount(unit, weights=y, minlength=n_units) / counts
+    a, b = np.log(mean / (1 - mean)), np.zeros(k)
+
+    def loglik(a_: np.ndarray, b_: np.ndarray) -> float:
+        eta = a_[unit] + x @ b_
+        return float(np.sum(y * eta - np.logaddexp(0.0, eta)))
+
+    current = loglik(a, b)
+    for _ in range(max_iter):
+        p = expit(a[unit] + x @ b)
+        w, r = p * (1 - p), y - p
+        g_a, h_aa = np.bincount(unit, weights=r, minlength=n_units), np.bincount(unit, weights=w, minlength=n_units)
+        h_ab = np.column_stack([np.bincount(unit, weights=w * x[:, c], minlength=n_units) for c in range(k)]) if k else np.zeros((n_units, 0))
+        schur = (x * w[:, None]).T @ x - h_ab.T @ (h_ab / h_aa[:, None])
+        db = np.linalg.solve(schur, x.T @ r - h_ab.T @ (g_a / h_aa)) if k else b
+        da = (g_a - h_ab @ db) / h_aa
+        step = 1.0
+        while step > 1e-4:  # step halving keeps every iteration uphill
+            trial = loglik(a + step * da, b + step * db)
+            if trial >= current - 1e-12:
+                break
+            step /= 2
+        a, b, current = a + step * da, b + step * db, trial
+        if max(np.abs(step * da).max(initial=0), np.abs(step * db).max(initial=0)) < tol:
+            break
+    p = expit(a[unit] + x @ b)
+    w = p * (1 - p)
+    h_aa = np.bincount(unit, weights=w, minlength=n_units)
+    h_ab = np.column_stack([np.bincount(unit, weights=w * x[:, c], minlength=n_units) for c in range(k)]) if k else np.zeros((n_units, 0))
+    schur = (x * w[:, None]).T @ x - h_ab.T @ (h_ab / h_aa[:, None])
+    se = np.sqrt(np.diag(np.linalg.inv(schur))) if k else np.zeros(0)
+    return b, se
+
+
 def design(measure: MeasureSection, rows: pd.DataFrame) -> pd.DataFrame:
     """The case-mix design matrix without its intercept column (may have no columns)."""
     try:
@@ -92,17 +143,21 @@ def fit_casemix(measure: MeasureSection, rows: pd.DataFrame, unit_codes: np.ndar
     informative = (sums > 0) & (sums < counts)
     keep = informative[unit_codes]
     kept_units = np.flatnonzero(informative)
-    dummies = (unit_codes[keep, None] == kept_units[None, 1:]).astype(float)  # first kept unit is the reference
-    exog = np.column_stack([np.ones(keep.sum()), x.to_numpy()[keep], dummies])
+    k = x.shape[1]
+    solver = "statsmodels" if keep.sum() * (1 + k + len(kept_units)) <= DENSE_LIMIT else "block-newton"
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")  # convergence problems are checked below, in words
         try:
-            result = sm.GLM(y[keep], exog, family=sm.families.Binomial()).fit()
+            if solver == "statsmodels":
+                dummies = (unit_codes[keep, None] == kept_units[None, 1:]).astype(float)  # first kept unit is the reference
+                exog = np.column_stack([np.ones(keep.sum()), x.to_numpy()[keep], dummies])
+                result = sm.GLM(y[keep], exog, family=sm.families.Binomial()).fit()
+                b, se = np.asarray(result.params[1 : 1 + k]), np.asarray(result.bse[1 : 1 + k])
+            else:
+                dense_codes = np.searchsorted(kept_units, unit_codes[keep])
+                b, se = within_logit(y[keep], x.to_numpy()[keep], dense_codes, len(kept_units))
         except (np.linalg.LinAlgError, ValueError) as exc:
             raise FitError(f"measure '{measure.key}': the case-mix fit failed ({exc}). Check for risk factors that never vary or that copy each other.") from None
-    k = x.shape[1]
-    b = np.asarray(result.params[1 : 1 + k])
-    se = np.asarray(result.bse[1 : 1 + k])
     if not (np.all(np.isfinite(b)) and np.all(np.isfinite(se))) or np.any(np.abs(b) > 15):
         bad = [name for name, v, s in zip(x.columns, b, se) if not np.isfinite(v) or not np.isfinite(s) or abs(v) > 15]
         raise FitError(
@@ -127,4 +182,5 @@ def fit_casemix(measure: MeasureSection, rows: pd.DataFrame, unit_codes: np.ndar
         expected=expected,
         c_statistic=c_statistic(y, linear),
         units_in_fit=len(kept_units),
+        solver=solver,
     )

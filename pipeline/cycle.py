@@ -28,7 +28,9 @@ from .config import CycleConfig, MeasureSection
 from .data import Cohort, load_cohort
 from .errors import RenderError, StrictError
 from .cache import Cache, key
-from .figures import cached_figure, draw_measure, draw_unit, measure_figure_data, unit_figure_data
+from .figures import (
+    MAX_FIGURE_UNITS, cached_figure, draw_measure, draw_unit, measure_figure_data, measure_figure_path, unit_figure_data, unit_figure_path,
+)
 from .history import PastCycle, past_cycles, record_cycle
 from .pages import render_pages, unit_slugs
 from .render import Renderer, choose_renderer, render_site
@@ -74,6 +76,12 @@ def run_cycle(
     reporter.stage("reading and checking the cohort and the unit table")
     cohort = load_cohort(config)
     warnings = list(cohort.warnings)
+    figures = len(cohort.units) <= MAX_FIGURE_UNITS
+    if not figures:
+        warnings.append(
+            f"{len(cohort.units):,} units: figures are drawn for networks of up to {MAX_FIGURE_UNITS} units; "
+            "this site shows its results in tables only."
+        )
     for w in warnings:
         reporter.warn(w)
     if strict and warnings:
@@ -83,7 +91,7 @@ def run_cycle(
     past = past_cycles(config.cycle.history, config.cycle.period)
     manifest = about(config, cohort, chosen, results)
     table = public_table(results)
-    build = build_site(config, cohort, results, table, manifest, past, chosen, cache, reporter)
+    build = build_site(config, cohort, results, table, manifest, past, chosen, cache, reporter, figures)
     publish(build, config.cycle.output)
     reporter.stage(f"recording this cycle in {config.cycle.history}")
     record_cycle(config.cycle.history, config.cycle.period, table, results, manifest)
@@ -126,7 +134,7 @@ def fit_measure(
     cells = Cells.from_patients(codes, casemix.intercept + casemix.linear, y, len(fitted_units))
     s = config.sampler
     reporter.stage(
-        f"{measure.key}: C-statistic {casemix.c_statistic:.3f}; shrinkage fit on {len(cells.n):,} cells "
+        f"{measure.key}: C-statistic {casemix.c_statistic:.3f} (case-mix solver: {casemix.solver}); shrinkage fit on {len(cells.n):,} cells "
         f"({s.chains} chains x {s.draws} draws, {s.engine})"
     )
     draws, diagnostics = sampler.run(cells, seed)
@@ -167,7 +175,7 @@ def about(config: CycleConfig, cohort: Cohort, renderer: Renderer, results: list
 
 def build_site(
     config: CycleConfig, cohort: Cohort, results: list[MeasureResult], table: pd.DataFrame, manifest: dict,
-    past: list[PastCycle], renderer: Renderer, cache: Cache, reporter: Reporter,
+    past: list[PastCycle], renderer: Renderer, cache: Cache, reporter: Reporter, figures: bool = True,
 ) -> Path:
     """Write figures, downloads and pages into a new folder beside the output; render it there."""
     output = config.cycle.output
@@ -179,16 +187,19 @@ def build_site(
         raise RenderError(f"cannot write beside the output folder {output} ({exc.strerror or exc}); the previous site was left as it was.") from None
     try:
         project = build / "_source"
-        reporter.stage(f"drawing figures ({len(results)} measures, {len(cohort.units)} units)")
+        project.mkdir()
         slugs = unit_slugs(cohort.units.index)
-        for r in results:
-            cached_figure(project / "figures" / f"measure-{r.measure.key}.png", draw_measure, measure_figure_data(r), cache, r.benchmark)
-        has_figure = {}
-        for uid in cohort.units.index:
-            data = unit_figure_data(uid, results)
-            has_figure[uid] = data is not None
-            if data is not None:
-                cached_figure(project / "figures" / f"unit-{slugs[uid]}.png", draw_unit, data, cache)
+        drawn: set[str] = set()  # figure paths (relative to the project) that exist
+        if figures:
+            reporter.stage(f"drawing figures ({len(results)} measures, {len(cohort.units)} units)")
+            for r in results:
+                data = measure_figure_data(r)
+                if len(data):
+                    drawn.add(cached_figure(project, measure_figure_path(r.measure.key), draw_measure, data, cache, r.benchmark))
+            for uid in cohort.units.index:
+                data = unit_figure_data(uid, results)
+                if data is not None:
+                    drawn.add(cached_figure(project, unit_figure_path(slugs[uid]), draw_unit, data, cache))
         reporter.stage("writing results and pages")
         (project / MARKER).write_text(json.dumps(manifest, indent=2), encoding="utf-8")
         (project / "downloads").mkdir(parents=True)
@@ -196,7 +207,7 @@ def build_site(
         (project / "downloads" / "results.json").write_text(results_json(table, results, manifest), encoding="utf-8")
         (project / "assets").mkdir()
         shutil.copyfile(templates_path() / "static" / "fairgauge.css", project / "assets" / "fairgauge.css")
-        for page in render_pages(config, results, cohort.units, slugs, has_figure, past, {**manifest, "dictionary": DICTIONARY}):
+        for page in render_pages(config, results, cohort.units, slugs, drawn, past, {**manifest, "dictionary": DICTIONARY}):
             target = project / page.path
             target.parent.mkdir(parents=True, exist_ok=True)
             target.write_text(page.text, encoding="utf-8")

@@ -25,6 +25,7 @@ MARKS = {
 }
 _LABELS = {k: POSITION[k] for k in MARKS}
 DPI = 110
+MAX_FIGURE_UNITS = 300  # above this a chart with one row per unit is unreadable and slow to draw
 
 
 LEGEND = "Where the credible interval sits"
@@ -53,16 +54,26 @@ def _save(plot, path: Path) -> None:
 _SOURCE = hashlib.sha256(Path(__file__).read_bytes()).hexdigest()  # drawing code changes redraw
 
 
-def cached_figure(path: Path, draw, data: pd.DataFrame, cache: Cache, *extra) -> None:
-    """Draw ``data`` with ``draw`` into ``path``, or copy the same figure from the cache."""
+def measure_figure_path(measure_key: str) -> str:
+    return f"figures/measure-{measure_key}.png"
+
+
+def unit_figure_path(unit_slug: str) -> str:
+    return f"figures/unit-{unit_slug}.png"
+
+
+def cached_figure(project: Path, relative: str, draw, data: pd.DataFrame, cache: Cache, *extra) -> str:
+    """Draw ``data`` with ``draw`` into ``project/relative`` (or copy it from the cache); return ``relative``."""
+    path = project / relative
     name = key("figure", draw.__name__, data.to_csv(), extra, _SOURCE) + ".png"
     hit = cache.file(name)
     path.parent.mkdir(parents=True, exist_ok=True)
     if hit is not None:
         shutil.copyfile(hit, path)
-        return
-    draw(data, *extra, path)
-    cache.store_file(name, path)
+    else:
+        draw(data, *extra, path)
+        cache.store_file(name, path)
+    return relative
 
 
 def measure_figure_data(result: MeasureResult) -> pd.DataFrame:

@@ -17,6 +17,7 @@ import pandas as pd
 
 from . import templates_path
 from .config import CycleConfig
+from .figures import measure_figure_path, unit_figure_path
 from .history import PastCycle, changes
 from .results import POSITION, STATUS, MeasureResult
 from .shrinkage import LIMITS, ShrinkageSpec
@@ -192,8 +193,12 @@ def _cell(m: MeasureResult, row: pd.Series, level: str, min_cases: int) -> Cell:
     )
 
 
+def _if_drawn(path: str, drawn: set[str]) -> str:
+    return path if path in drawn else ""
+
+
 def views(
-    config: CycleConfig, results: list[MeasureResult], units: pd.DataFrame, slugs: dict[str, str], has_figure: dict[str, bool]
+    config: CycleConfig, results: list[MeasureResult], units: pd.DataFrame, slugs: dict[str, str], drawn: set[str]
 ) -> tuple[list[MeasureView], list[UnitView]]:
     """Format every number once; return the measure and unit views the templates lay out."""
     level = f"{config.reporting.interval * 100:g}%"
@@ -207,7 +212,7 @@ def views(
         ]
         view = MeasureView(
             key=m.measure.key, name=md(m.measure.name), definition=md(m.measure.definition), better=m.measure.better,
-            href=f"measures/{m.measure.key}.qmd", figure=f"figures/measure-{m.measure.key}.png",
+            href=f"measures/{m.measure.key}.qmd", figure=_if_drawn(measure_figure_path(m.measure.key), drawn),
             patients=f"{m.casemix.patients:,}", events=f"{m.casemix.events:,}", network_rate=pct(m.network_rate),
             benchmark=pct(m.benchmark), benchmark_is_network=config.reporting.benchmark == "network",
             c_statistic=num(m.casemix.c_statistic, 3), units_in_fit=m.casemix.units_in_fit, formula=code(m.casemix.formula),
@@ -222,7 +227,7 @@ def views(
         measures.append(view)
     unit_views = [
         UnitView(id=md(uid), name=md(u["name"]), kind=md(u["kind"]), href=f"units/{slugs[uid]}.qmd",
-                 figure=f"figures/unit-{slugs[uid]}.png" if has_figure.get(uid) else "", cells=cells[uid])
+                 figure=_if_drawn(unit_figure_path(slugs[uid]), drawn), cells=cells[uid])
         for uid, u in units.iterrows()
     ]
     return measures, unit_views
@@ -285,12 +290,12 @@ def change_views(results: list[MeasureResult], previous: PastCycle | None, slugs
 
 
 def render_pages(
-    config: CycleConfig, results: list[MeasureResult], units: pd.DataFrame, slugs: dict[str, str], has_figure: dict[str, bool],
+    config: CycleConfig, results: list[MeasureResult], units: pd.DataFrame, slugs: dict[str, str], drawn: set[str],
     past: list[PastCycle], site: dict,
 ) -> list[Page]:
     """All pages of the site plus ``_quarto.yml``, as text."""
     env = environment()
-    measures, unit_views = views(config, results, units, slugs, has_figure)
+    measures, unit_views = views(config, results, units, slugs, drawn)
     unit_trends = trends(config, results, past, slugs)
     common = {
         "cycle": config.cycle, "site": site, "measures": measures, "units": unit_views, "limits": LIMITS,

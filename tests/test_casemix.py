@@ -94,3 +94,19 @@ def test_no_events_and_unbuildable_formula_are_explained():
     rows["y"] = [0, 1, 0]
     with pytest.raises(FitError, match="the case-mix formula 'nosuchfunction\\(x\\)' cannot be built"):
         fit_casemix(_measure("nosuchfunction(x)"), rows, np.zeros(3, dtype=int))
+
+
+def test_block_newton_solver_gives_statsmodels_estimates_for_many_units(monkeypatch):
+    """The large-network path must agree with statsmodels' dummy-column fit (the reference)."""
+    rng = np.random.default_rng(8)
+    rows, unit = _network(rng, n_units=60, per_unit=80, confounded=True)
+    dense = fit_casemix(_measure("x + C(sex)"), rows, unit)
+    monkeypatch.setattr("pipeline.casemix.DENSE_LIMIT", 0)
+    blocked = fit_casemix(_measure("x + C(sex)"), rows, unit)
+    assert (dense.solver, blocked.solver) == ("statsmodels", "block-newton")
+    assert blocked.units_in_fit == dense.units_in_fit
+    assert blocked.coefficients["estimate"].to_numpy() == pytest.approx(dense.coefficients["estimate"].to_numpy(), abs=1e-7)
+    assert blocked.coefficients["std_error"].to_numpy() == pytest.approx(dense.coefficients["std_error"].to_numpy(), rel=1e-5)
+    monkeypatch.setattr("pipeline.casemix.DENSE_LIMIT", 0)
+    no_terms = fit_casemix(_measure("1"), rows, unit)
+    assert len(no_terms.coefficients) == 0 and no_terms.expected.sum() == pytest.approx(rows["y"].sum())
