@@ -86,21 +86,25 @@ def within_logit(y: np.ndarray, x: np.ndarray, unit: np.ndarray, n_units: int, t
     Every unit must have both outcomes (otherwise its intercept has no finite estimate).
     """
     k = x.shape[1]
-    counts = np.bincount(unit, minlength=n_units)
-    mean = np.bincount(unit, weights=y, minlength=n_units) / counts
-    a, b = np.log(mean / (1 - mean)), np.zeros(k)
+
+    def blocks(a_: np.ndarray, b_: np.ndarray):
+        """Score and Hessian blocks: g_a, residuals, h_aa (diagonal), h_ab, Schur complement of h_aa."""
+        p = expit(a_[unit] + x @ b_)
+        w, r = p * (1 - p), y - p
+        h_aa = np.bincount(unit, weights=w, minlength=n_units)
+        h_ab = np.column_stack([np.bincount(unit, weights=w * x[:, c], minlength=n_units) for c in range(k)]) if k else np.zeros((n_units, 0))
+        schur = (x * w[:, None]).T @ x - h_ab.T @ (h_ab / h_aa[:, None])
+        return np.bincount(unit, weights=r, minlength=n_units), r, h_aa, h_ab, schur
 
     def loglik(a_: np.ndarray, b_: np.ndarray) -> float:
         eta = a_[unit] + x @ b_
         return float(np.sum(y * eta - np.logaddexp(0.0, eta)))
 
+    mean = np.bincount(unit, weights=y, minlength=n_units) / np.bincount(unit, minlength=n_units)
+    a, b = np.log(mean / (1 - mean)), np.zeros(k)
     current = loglik(a, b)
     for _ in range(max_iter):
-        p = expit(a[unit] + x @ b)
-        w, r = p * (1 - p), y - p
-        g_a, h_aa = np.bincount(unit, weights=r, minlength=n_units), np.bincount(unit, weights=w, minlength=n_units)
-        h_ab = np.column_stack([np.bincount(unit, weights=w * x[:, c], minlength=n_units) for c in range(k)]) if k else np.zeros((n_units, 0))
-        schur = (x * w[:, None]).T @ x - h_ab.T @ (h_ab / h_aa[:, None])
+        g_a, r, h_aa, h_ab, schur = blocks(a, b)
         db = np.linalg.solve(schur, x.T @ r - h_ab.T @ (g_a / h_aa)) if k else b
         da = (g_a - h_ab @ db) / h_aa
         step = 1.0
@@ -112,11 +116,7 @@ def within_logit(y: np.ndarray, x: np.ndarray, unit: np.ndarray, n_units: int, t
         a, b, current = a + step * da, b + step * db, trial
         if max(np.abs(step * da).max(initial=0), np.abs(step * db).max(initial=0)) < tol:
             break
-    p = expit(a[unit] + x @ b)
-    w = p * (1 - p)
-    h_aa = np.bincount(unit, weights=w, minlength=n_units)
-    h_ab = np.column_stack([np.bincount(unit, weights=w * x[:, c], minlength=n_units) for c in range(k)]) if k else np.zeros((n_units, 0))
-    schur = (x * w[:, None]).T @ x - h_ab.T @ (h_ab / h_aa[:, None])
+    schur = blocks(a, b)[4]
     se = np.sqrt(np.diag(np.linalg.inv(schur))) if k else np.zeros(0)
     return b, se
 
