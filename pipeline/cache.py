@@ -21,10 +21,11 @@ from typing import Any
 
 from . import __version__
 
-_LIBRARIES = ("numpy", "pandas", "statsmodels", "pymc", "nutpie", "plotnine", "matplotlib")
+_LIBRARIES = ("numpy", "pandas", "statsmodels", "pymc", "nutpie", "arviz", "plotnine", "matplotlib")
 
 
-def _versions() -> dict[str, str]:
+def library_versions() -> dict[str, str]:
+    """fairgauge and the libraries its numbers and figures depend on (manifest and cache keys)."""
     found = {"fairgauge": __version__}
     for name in _LIBRARIES:
         try:
@@ -43,7 +44,7 @@ def key(*parts: Any) -> str:
             return x.as_posix()
         return x
 
-    text = json.dumps([_versions(), *map(plain, parts)], sort_keys=True, default=str)
+    text = json.dumps([library_versions(), *map(plain, parts)], sort_keys=True, default=str)
     return hashlib.sha256(text.encode()).hexdigest()
 
 

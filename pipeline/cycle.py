@@ -15,7 +15,6 @@ import tempfile
 import time
 from dataclasses import dataclass, field
 from datetime import datetime, timezone
-from importlib import metadata
 from pathlib import Path
 from typing import Protocol
 
@@ -27,7 +26,7 @@ from .casemix import fit_casemix
 from .config import CycleConfig, MeasureSection
 from .data import Cohort, load_cohort
 from .errors import RenderError, StrictError
-from .cache import Cache, key
+from .cache import Cache, key, library_versions
 from .figures import (
     MAX_FIGURE_UNITS, cached_figure, draw_measure, draw_unit, measure_figure_data, measure_figure_path, unit_figure_data, unit_figure_path,
 )
@@ -38,7 +37,6 @@ from .results import DICTIONARY, MeasureResult, public_table, results_json, summ
 from .shrinkage import Cells, Sampler, ShrinkageSpec, fit_failed, unit_draws
 
 MARKER = "fairgauge-manifest.json"  # every site's provenance; only folders holding it are ever replaced
-PACKAGES = ("numpy", "pandas", "statsmodels", "pymc", "nutpie", "arviz", "plotnine")
 
 
 class Reporter(Protocol):
@@ -152,18 +150,12 @@ def fit_measure(
 
 def about(config: CycleConfig, cohort: Cohort, renderer: Renderer, results: list[MeasureResult]) -> dict:
     """The manifest: what this build is and how it was made (site root, results.json, methods page)."""
-    versions = {}
-    for name in PACKAGES:
-        try:
-            versions[name] = metadata.version(name)
-        except metadata.PackageNotFoundError:
-            pass
     return {
         "title": config.cycle.title, "publisher": config.cycle.publisher, "period": config.cycle.period,
         "invented_data": config.cycle.invented_data, "version": __version__,
         "built": datetime.now(timezone.utc).strftime("%Y-%m-%d %H:%M UTC"),
         "config_sha256": config.sha256, "input_sha256": cohort.sha256, "seed": config.sampler.seed,
-        "renderer": f"{renderer.name} {renderer.version}", "versions": versions,
+        "renderer": f"{renderer.name} {renderer.version}", "versions": {k: v for k, v in library_versions().items() if k != "fairgauge"},
         "sampler": {k: getattr(config.sampler, k) for k in ("engine", "chains", "draws", "tune", "target_accept")},
         "diagnostics": {
             r.measure.key: {"rhat_max": round(r.diagnostics.rhat_max, 4), "ess_bulk_min": round(r.diagnostics.ess_bulk_min),

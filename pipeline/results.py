@@ -15,7 +15,7 @@ import pandas as pd
 
 from .casemix import CaseMixFit
 from .config import CycleConfig, MeasureSection
-from .shrinkage import Diagnostics, UnitDraws
+from .shrinkage import Diagnostics, UnitDraws, thin
 
 # Unit states, in our own words (the key is stored; the words are shown).
 STATUS = {
@@ -114,7 +114,7 @@ def summarise_measure(
         benchmark=benchmark,
         tau=(float(np.median(tau_draws)), float(np.quantile(tau_draws, lo_q)), float(np.quantile(tau_draws, hi_q))),
         table=table,
-        rsr_draws=pd.DataFrame(rsr[np.linspace(0, len(rsr) - 1, min(len(rsr), HISTORY_DRAWS)).round().astype(int)], columns=unit_ids),
+        rsr_draws=pd.DataFrame(rsr[thin(len(rsr), HISTORY_DRAWS)], columns=unit_ids),
     )
 
 

@@ -218,12 +218,16 @@ class UnitDraws:
     effect: np.ndarray  # (draws, units) u_i on the log-odds scale
 
 
+def thin(n: int, keep: int) -> np.ndarray:
+    """Indexes of at most ``keep`` draws spread evenly over ``n``."""
+    return np.linspace(0, n - 1, min(n, keep)).round().astype(int)
+
+
 def unit_draws(cells: Cells, draws: dict[str, np.ndarray], max_draws: int = 4000) -> UnitDraws:
     """Predicted over expected events per unit, draw by draw (the Krumholz ratio P/E)."""
     mu, u = draws["mu"], draws["u"]
-    if len(mu) > max_draws:  # evenly thinned: the summaries need no more
-        keep = np.linspace(0, len(mu) - 1, max_draws).round().astype(int)
-        mu, u = mu[keep], u[keep]
+    keep = thin(len(mu), max_draws)  # evenly thinned: the summaries need no more
+    mu, u = mu[keep], u[keep]
     ratio = np.full(u.shape, np.nan)
     order = np.argsort(cells.unit, kind="stable")
     bounds = np.searchsorted(cells.unit[order], np.arange(cells.n_units + 1))
