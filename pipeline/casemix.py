@@ -1,22 +1,28 @@
-"""Case-mix fit: how likely each patient's outcome was, given their risk factors alone.
+"""Case-mix fit: each patient's expected outcome, given their risk factors alone.
 
-Binary measures use logistic regression (statsmodels GLM, binomial family, logit link).
-The risk coefficients are estimated *within units* (unit indicators in the model), so a
-unit that both treats sicker patients and has worse care cannot make sickness look
-more dangerous than it is; this is the fixed-effects ("within") estimator of
-econometrics, and it is what the methods page explains. Units whose patients all had the
-same outcome carry no information about the coefficients under the conditional
-likelihood (Chamberlain 1980) and are left out of this step only.
+Binary measures use logistic regression; continuous measures (length of stay, cost) a Gamma
+GLM with log link or a log-normal model (least squares on the log scale) with Duan's (1983,
+JASA 78:605) smearing retransformation. The risk coefficients are estimated *within units*
+(one intercept per unit), so a unit that both treats sicker patients and has worse care
+cannot make sickness look more dangerous than it is; this is the fixed-effects ("within")
+estimator. Units whose patients all had the same binary outcome carry no information about
+the coefficients under the conditional likelihood (Chamberlain 1980) and are left out of
+that step only.
 
-Each patient's expected risk then uses those coefficients with one network intercept
-chosen so that expected events equal observed events across the network
-(calibration-in-the-large).
+Each patient's expected value then uses those coefficients with one network intercept:
+for logistic and Gamma fits chosen so that expected totals equal observed totals across the
+network (calibration-in-the-large); for the log-normal fit the mean log residual, then the
+smearing factor.
+
+Before fitting, the design is checked and problems are explained in words: missing values
+(by the measure's policy, every dropped or filled row counted), categories with no patients,
+risk factors that never vary, perfect separation and exact or near collinearity.
 """
 
 from __future__ import annotations
 
 import warnings
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 
 import numpy as np
 import pandas as pd
@@ -24,27 +30,51 @@ import patsy
 import statsmodels.api as sm
 from scipy.optimize import brentq
 from scipy.special import expit
+from scipy.special import logit as _logit
 from scipy.stats import rankdata
 
-from .config import MeasureSection
+from .config import MeasureSection, family_of
 from .errors import FitError
+
+
+def logit(p):
+    """log(p / (1 - p)), for formulas that use a risk supplied from elsewhere as a covariate."""
+    return _logit(np.asarray(p, dtype=float))
 
 
 @dataclass(frozen=True)
 class CaseMixFit:
-    """A measure's case-mix fit: coefficients, per-patient linear risk and expected risk."""
+    """A measure's case-mix fit: coefficients, per-patient linear predictor and expected value."""
 
     measure: str
     formula: str
+    family: str  # logistic, gamma, lognormal; "supplied" or "unit summary" when nothing was fitted here
     patients: int
-    events: int
-    coefficients: pd.DataFrame  # index term; estimate, std_error, odds_ratio, or_lower, or_upper
-    linear: np.ndarray  # b'x per patient, no intercept (the shrinkage fit's offset)
-    intercept: float  # network intercept after calibration-in-the-large
-    expected: np.ndarray  # expected risk per patient
-    c_statistic: float
-    units_in_fit: int  # units with both outcomes present (used to estimate the coefficients)
-    solver: str  # "statsmodels" (dummy columns) or "block-newton" (same estimates, for many units)
+    events: float  # binary: patients with the outcome; continuous: the outcome's total
+    coefficients: pd.DataFrame  # index term; estimate, std_error, ratio, lower, upper (ratio = odds ratio or mean ratio)
+    linear: np.ndarray  # b'x per patient, no intercept (with the intercept: the shrinkage fit's offset)
+    intercept: float  # network intercept
+    expected: np.ndarray  # expected value per patient (risk, or mean on the outcome's scale)
+    c_statistic: float  # binary only (nan otherwise)
+    units_in_fit: int  # units used to estimate the coefficients
+    solver: str  # statsmodels, block-newton, within-ols, none
+    used: np.ndarray  # boolean mask over the cohort rows: the patients of this measure
+    smearing: float = 1.0  # Duan's factor (log-normal); 1 otherwise
+    dispersion: float = 1.0  # Gamma: Pearson dispersion; log-normal: residual variance on the log scale
+    exclusions: dict = field(default_factory=dict)  # {"dropped": {var: n}, "imputed": {var: n}, "dropped_rows": n, "by_unit": {code: n}}
+    warnings: tuple[str, ...] = ()
+
+    @property
+    def fitted(self) -> bool:
+        return self.family in FAMILIES
+
+
+# Built-in case-mix families: a data table (name -> what is fitted, what the ratio means).
+FAMILIES = {
+    "logistic": ("logistic regression (binomial, logit link)", "odds ratio"),
+    "gamma": ("Gamma GLM with log link", "ratio of means"),
+    "lognormal": ("least squares on log(outcome), Duan's smearing back to the outcome's scale", "ratio of geometric means"),
+}
 
 
 def c_statistic(outcome: np.ndarray, score: np.ndarray) -> float:
@@ -72,25 +102,33 @@ def calibrate_intercept(linear: np.ndarray, observed_events: float) -> float:
 
 
 # Above this many cells in the dense design (patients x (risk terms + unit indicators)), the
-# within-unit fit uses the block Newton solver below instead of statsmodels with dummy columns.
+# within-unit logistic fit uses the block Newton solver below instead of statsmodels with dummy columns.
 DENSE_LIMIT = 20_000_000
 
 
-def within_logit(y: np.ndarray, x: np.ndarray, unit: np.ndarray, n_units: int, tol: float = 1e-10, max_iter: int = 100):
-    """Logistic regression with one intercept per unit, by Newton's method on the block system.
+def within_glm(
+    y: np.ndarray, x: np.ndarray, unit: np.ndarray, n_units: int, family: str = "logistic", tol: float = 1e-10, max_iter: int = 100
+):
+    """A GLM with one intercept per unit, by Newton's method (Fisher scoring) on the block system.
 
-    The unit intercepts form a diagonal block of the Hessian, so each Newton step solves the
-    small risk-factor block through its Schur complement and then the intercepts in closed
-    form: the same maximum-likelihood estimates as a fit with a dummy column per unit, in
-    memory proportional to patients x risk terms. Returns (coefficients, standard errors).
-    Every unit must have both outcomes (otherwise its intercept has no finite estimate).
+    Logistic (logit link) or Gamma (log link). The unit intercepts form a diagonal block of the
+    information matrix, so each step solves the small risk-factor block through its Schur
+    complement and then the intercepts in closed form: the same maximum-likelihood estimates as
+    a fit with a dummy column per unit, in memory proportional to patients x risk terms.
+    Returns (coefficients, standard errors, dispersion); Gamma standard errors use the Pearson
+    dispersion, as statsmodels does. For the logistic family every unit must have both outcomes.
     """
     k = x.shape[1]
+    logistic = family == "logistic"
 
     def blocks(a_: np.ndarray, b_: np.ndarray):
-        """Score and Hessian blocks: g_a, residuals, h_aa (diagonal), h_ab, Schur complement of h_aa."""
-        p = expit(a_[unit] + x @ b_)
-        w, r = p * (1 - p), y - p
+        """Score and information blocks: g_a, residuals, h_aa (diagonal), h_ab, Schur complement of h_aa."""
+        eta = a_[unit] + x @ b_
+        if logistic:
+            p = expit(eta)
+            w, r = p * (1 - p), y - p
+        else:  # Gamma, log link: score (y - m)/m per unit of eta, Fisher weight 1
+            w, r = np.ones_like(y), y * np.exp(-eta) - 1.0
         h_aa = np.bincount(unit, weights=w, minlength=n_units)
         h_ab = np.column_stack([np.bincount(unit, weights=w * x[:, c], minlength=n_units) for c in range(k)]) if k else np.zeros((n_units, 0))
         schur = (x * w[:, None]).T @ x - h_ab.T @ (h_ab / h_aa[:, None])
@@ -98,10 +136,13 @@ def within_logit(y: np.ndarray, x: np.ndarray, unit: np.ndarray, n_units: int, t
 
     def loglik(a_: np.ndarray, b_: np.ndarray) -> float:
         eta = a_[unit] + x @ b_
-        return float(np.sum(y * eta - np.logaddexp(0.0, eta)))
+        if logistic:
+            return float(np.sum(y * eta - np.logaddexp(0.0, eta)))
+        return float(-np.sum(y * np.exp(-eta) + eta))
 
-    mean = np.bincount(unit, weights=y, minlength=n_units) / np.bincount(unit, minlength=n_units)
-    a, b = np.log(mean / (1 - mean)), np.zeros(k)
+    counts = np.bincount(unit, minlength=n_units)
+    mean = np.bincount(unit, weights=y, minlength=n_units) / counts
+    a, b = (np.log(mean / (1 - mean)) if logistic else np.log(mean)), np.zeros(k)
     current = loglik(a, b)
     for _ in range(max_iter):
         g_a, r, h_aa, h_ab, schur = blocks(a, b)
@@ -116,46 +157,178 @@ def within_logit(y: np.ndarray, x: np.ndarray, unit: np.ndarray, n_units: int, t
         a, b, current = a + step * da, b + step * db, trial
         if max(np.abs(step * da).max(initial=0), np.abs(step * db).max(initial=0)) < tol:
             break
-    schur = blocks(a, b)[4]
-    se = np.sqrt(np.diag(np.linalg.inv(schur))) if k else np.zeros(0)
-    return b, se
+    _, r, _, _, schur = blocks(a, b)
+    dispersion = 1.0 if logistic else float(np.sum(r**2) / max(len(y) - k - n_units, 1))
+    se = np.sqrt(np.diag(np.linalg.inv(schur)) * dispersion) if k else np.zeros(0)
+    return b, se, dispersion
 
 
-def design(measure: MeasureSection, rows: pd.DataFrame) -> pd.DataFrame:
+def within_ols(y: np.ndarray, x: np.ndarray, unit: np.ndarray, n_units: int):
+    """Least squares with one intercept per unit (demeaning within units): (b, se, residual variance)."""
+    counts = np.bincount(unit, minlength=n_units)
+    demean = lambda v: v - (np.bincount(unit, weights=v, minlength=n_units) / counts)[unit]  # noqa: E731
+    yd = demean(y)
+    xd = np.column_stack([demean(x[:, c]) for c in range(x.shape[1])]) if x.shape[1] else np.zeros((len(y), 0))
+    b = np.linalg.solve(xd.T @ xd, xd.T @ yd) if x.shape[1] else np.zeros(0)
+    resid = yd - xd @ b
+    sigma2 = float(resid @ resid / max(len(y) - x.shape[1] - n_units, 1))
+    se = np.sqrt(np.diag(np.linalg.inv(xd.T @ xd)) * sigma2) if x.shape[1] else np.zeros(0)
+    return b, se, sigma2
+
+
+def prepare(measure: MeasureSection, rows: pd.DataFrame, variables: list[str], unit_codes: np.ndarray) -> tuple[pd.DataFrame, np.ndarray, dict]:
+    """Apply the measure's missing-value policy: (rows to fit, mask of rows used, counts of what was done)."""
+    frame = rows[[measure.outcome, *variables]]
+    missing = frame[variables].isna()
+    counts = {"policy": measure.missing, "dropped": {}, "imputed": {}, "dropped_rows": 0, "imputed_rows": 0, "by_unit": {}}
+    used = np.ones(len(rows), dtype=bool)
+    if not missing.to_numpy().any():
+        return frame, used, counts
+    if measure.missing == "drop":
+        used = ~missing.any(axis=1).to_numpy()
+        counts["dropped"] = {v: int(n) for v, n in missing.sum().items() if n}
+        counts["dropped_rows"] = int((~used).sum())
+        counts["by_unit"] = {int(c): int(n) for c, n in zip(*np.unique(unit_codes[~used], return_counts=True))}
+        return frame[used], used, counts
+    if measure.missing == "impute":
+        frame = frame.copy()
+        for v in variables:
+            gaps = missing[v]
+            if not gaps.any():
+                continue
+            column = frame[v]
+            numeric = pd.api.types.is_numeric_dtype(column)
+            fill = column.median() if numeric else column.mode().iloc[0]
+            frame[v] = column.fillna(fill)
+            counts["imputed"][v] = int(gaps.sum())
+        counts["imputed_rows"] = int(missing.any(axis=1).sum())
+        return frame, used, counts
+    raise FitError(f"measure '{measure.key}': risk factors have missing values and missing = \"stop\".")  # data checks catch this first
+
+
+def design(measure: MeasureSection, rows: pd.DataFrame, casemix: str | None = None) -> pd.DataFrame:
     """The case-mix design matrix without its intercept column (may have no columns)."""
+    formula = measure.casemix if casemix is None else casemix
     try:
-        matrix = patsy.dmatrix(measure.casemix, rows, return_type="dataframe", NA_action="raise")
+        matrix = patsy.dmatrix(formula, rows, return_type="dataframe", NA_action="raise")
     except patsy.PatsyError as exc:
-        raise FitError(f"measure '{measure.key}': the case-mix formula '{measure.casemix}' cannot be built: {exc.message}") from None
+        raise FitError(f"measure '{measure.key}': the case-mix formula '{formula}' cannot be built: {exc.message}") from None
     return matrix.drop(columns=[c for c in matrix.columns if c == "Intercept"])
 
 
-def fit_casemix(measure: MeasureSection, rows: pd.DataFrame, unit_codes: np.ndarray) -> CaseMixFit:
-    """Fit the logistic case-mix model of a binary measure (within-unit coefficients)."""
-    y = rows[measure.outcome].to_numpy(dtype=float)
-    events = int(y.sum())
-    if events == 0 or events == len(y):
-        word = "no patient had" if events == 0 else "every patient had"
-        raise FitError(f"measure '{measure.key}': {word} the outcome '{measure.outcome}', so risks cannot be compared between units.")
-    x = design(measure, rows)
+def check_design(measure: MeasureSection, x: pd.DataFrame, y: np.ndarray, binary: bool) -> list[str]:
+    """Explain, in words, what would make the fit fail or mislead. Raises for fatal problems; returns warnings."""
+    values = x.to_numpy()
+    problems: list[str] = []
+    spread = np.ptp(values, axis=0) if len(values) else np.zeros(x.shape[1])
+    for name, col, width in zip(x.columns, values.T, spread):
+        if not np.any(col):
+            problems.append(f"'{name}' has no patients (an empty category): merge it with a neighbouring category or drop it")
+        elif width == 0:
+            problems.append(f"'{name}' is the same for every patient, so its effect cannot be estimated: remove it from the formula")
+        elif binary and np.isin(col, (0.0, 1.0)).all():
+            n, events = col.sum(), y[col == 1].sum()
+            if events == 0 or events == n:
+                who = "none" if events == 0 else "all"
+                problems.append(
+                    f"{who} of the {n:,.0f} patients with '{name}' had the outcome (perfect separation), so its odds ratio "
+                    "would be infinite: merge that category with a neighbour or drop the term"
+                )
+    if not problems and x.shape[1] > 1:
+        sample = values[:: max(1, len(values) // 200_000)]  # a systematic sample is plenty for rank and correlation
+        centred = (sample - sample.mean(axis=0)) / sample.std(axis=0)
+        _, singular, vt = np.linalg.svd(centred / np.sqrt(len(centred)), full_matrices=False)
+        if singular[-1] < 1e-6 * singular[0]:
+            involved = [x.columns[j] for j in np.flatnonzero(np.abs(vt[-1]) > 0.05)]
+            problems.append(
+                f"the terms {', '.join(repr(t) for t in involved)} carry the same information (one is an exact combination of "
+                "the others), so their separate effects cannot be estimated: remove one of them"
+            )
+    if problems:
+        raise FitError(f"measure '{measure.key}': the case-mix model cannot be fitted as written: " + "; ".join(problems) + ".")
+    notes = []
+    if x.shape[1] > 1:
+        corr = np.corrcoef(centred, rowvar=False)
+        for i, j in zip(*np.triu_indices(x.shape[1], 1)):
+            if abs(corr[i, j]) > 0.98 and x.columns[i].split("[")[0] != x.columns[j].split("[")[0]:
+                notes.append(
+                    f"measure '{measure.key}': risk factors '{x.columns[i]}' and '{x.columns[j]}' are almost the same "
+                    f"(correlation {corr[i, j]:.3f}); the expected values are fine, but their separate coefficients are unstable and should not be read alone."
+                )
+    return notes
+
+
+def estimate(family: str, y: np.ndarray, x: np.ndarray, unit_codes: np.ndarray) -> tuple[np.ndarray, np.ndarray, float, int, str]:
+    """Within-unit coefficients: (b, se, dispersion, units used, solver)."""
+    k = x.shape[1]
+    if family == "lognormal":
+        units = np.unique(unit_codes)
+        b, se, sigma2 = within_ols(np.log(y), x, np.searchsorted(units, unit_codes), len(units))
+        return b, se, sigma2, len(units), "within-ols"
+    if family == "gamma":
+        units = np.unique(unit_codes)
+        b, se, phi = within_glm(y, x, np.searchsorted(units, unit_codes), len(units), "gamma")
+        return b, se, phi, len(units), "block-newton"
     sums = np.bincount(unit_codes, weights=y)
     counts = np.bincount(unit_codes)
     informative = (sums > 0) & (sums < counts)
     keep = informative[unit_codes]
     kept_units = np.flatnonzero(informative)
-    k = x.shape[1]
-    solver = "statsmodels" if keep.sum() * (1 + k + len(kept_units)) <= DENSE_LIMIT else "block-newton"
+    if keep.sum() * (1 + k + len(kept_units)) <= DENSE_LIMIT:
+        dummies = (unit_codes[keep, None] == kept_units[None, 1:]).astype(float)  # first kept unit is the reference
+        exog = np.column_stack([np.ones(keep.sum()), x[keep], dummies])
+        result = sm.GLM(y[keep], exog, family=sm.families.Binomial()).fit()
+        return np.asarray(result.params[1 : 1 + k]), np.asarray(result.bse[1 : 1 + k]), 1.0, len(kept_units), "statsmodels"
+    b, se, _ = within_glm(y[keep], x[keep], np.searchsorted(kept_units, unit_codes[keep]), len(kept_units), "logistic")
+    return b, se, 1.0, len(kept_units), "block-newton"
+
+
+def network_intercept(family: str, y: np.ndarray, linear: np.ndarray) -> tuple[float, float]:
+    """(intercept, smearing factor) that put the expected values on the outcome's scale."""
+    if family == "logistic":
+        return calibrate_intercept(linear, float(y.sum())), 1.0
+    if family == "gamma":  # calibration-in-the-large: sum of exp(c + linear) equals sum of y
+        return float(np.log(y.sum()) - np.log(np.exp(linear).sum())), 1.0
+    residual = np.log(y) - linear
+    c = float(residual.mean())
+    return c, float(np.mean(np.exp(residual - c)))  # Duan (1983): mean of the exponentiated residuals
+
+
+def expected_values(family: str, intercept: float, linear: np.ndarray, smearing: float = 1.0) -> np.ndarray:
+    if family == "logistic":
+        return expit(intercept + linear)
+    return np.exp(intercept + linear) * smearing
+
+
+def fit_casemix(measure: MeasureSection, rows: pd.DataFrame, unit_codes: np.ndarray, casemix: str | None = None) -> CaseMixFit:
+    """Fit the measure's case-mix model (within-unit coefficients) and each patient's expected value."""
+    return fit_with_design(measure, rows, unit_codes, casemix)[0]
+
+
+def fit_with_design(
+    measure: MeasureSection, rows: pd.DataFrame, unit_codes: np.ndarray, casemix: str | None = None
+) -> tuple[CaseMixFit, np.ndarray | None, np.ndarray]:
+    """:func:`fit_casemix`, also returning the design matrix (None when nothing was fitted) and the outcome of the rows used."""
+    from .data import formula_variables
+
+    if measure.expected_column:
+        fit = supplied_casemix(measure, rows, unit_codes)
+        return fit, None, rows[measure.outcome].to_numpy(dtype=float)
+    family = family_of(measure)
+    binary = family == "logistic"
+    formula = measure.casemix if casemix is None else casemix
+    frame, used, exclusions = prepare(measure, rows, formula_variables(formula), unit_codes)
+    codes = unit_codes[used]
+    y = frame[measure.outcome].to_numpy(dtype=float)
+    if binary and (y.sum() == 0 or y.sum() == len(y)):
+        word = "no patient had" if y.sum() == 0 else "every patient had"
+        raise FitError(f"measure '{measure.key}': {word} the outcome '{measure.outcome}', so risks cannot be compared between units.")
+    x = design(measure, frame, formula)
+    notes = check_design(measure, x, y, binary)
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")  # convergence problems are checked below, in words
         try:
-            if solver == "statsmodels":
-                dummies = (unit_codes[keep, None] == kept_units[None, 1:]).astype(float)  # first kept unit is the reference
-                exog = np.column_stack([np.ones(keep.sum()), x.to_numpy()[keep], dummies])
-                result = sm.GLM(y[keep], exog, family=sm.families.Binomial()).fit()
-                b, se = np.asarray(result.params[1 : 1 + k]), np.asarray(result.bse[1 : 1 + k])
-            else:
-                dense_codes = np.searchsorted(kept_units, unit_codes[keep])
-                b, se = within_logit(y[keep], x.to_numpy()[keep], dense_codes, len(kept_units))
+            b, se, dispersion, units_in_fit, solver = estimate(family, y, x.to_numpy(), codes)
         except (np.linalg.LinAlgError, ValueError) as exc:
             raise FitError(f"measure '{measure.key}': the case-mix fit failed ({exc}). Check for risk factors that never vary or that copy each other.") from None
     if not (np.all(np.isfinite(b)) and np.all(np.isfinite(se))) or np.any(np.abs(b) > 15):
@@ -164,23 +337,60 @@ def fit_casemix(measure: MeasureSection, rows: pd.DataFrame, unit_codes: np.ndar
             f"measure '{measure.key}': the case-mix coefficients for {', '.join(bad)} could not be estimated "
             "(a risk factor that almost perfectly predicts the outcome, or that is constant). Remove or group it."
         )
-    linear = x.to_numpy() @ b if k else np.zeros(len(y))
-    intercept = calibrate_intercept(linear, events)
-    coefficients = pd.DataFrame(
-        {"estimate": b, "std_error": se, "odds_ratio": np.exp(b), "or_lower": np.exp(b - 1.959964 * se), "or_upper": np.exp(b + 1.959964 * se)},
-        index=pd.Index(x.columns, name="term"),
+    linear = x.to_numpy() @ b if x.shape[1] else np.zeros(len(y))
+    intercept, smearing = network_intercept(family, y, linear)
+    fit = CaseMixFit(
+        measure=measure.key, formula=f"{measure.outcome} ~ {formula}", family=family, patients=len(y), events=float(y.sum()),
+        coefficients=coefficient_table(x.columns, b, se), linear=linear, intercept=intercept,
+        expected=expected_values(family, intercept, linear, smearing), c_statistic=c_statistic(y, linear) if binary else float("nan"),
+        units_in_fit=units_in_fit, solver=solver, used=used, smearing=smearing, dispersion=dispersion,
+        exclusions=exclusions, warnings=tuple(notes),
     )
-    expected = expit(intercept + linear)
+    return fit, x.to_numpy(), y
+
+
+def coefficient_table(terms, b: np.ndarray, se: np.ndarray) -> pd.DataFrame:
+    """Estimates with Wald 95% intervals, also as ratios (odds ratios or ratios of means)."""
+    return pd.DataFrame(
+        {"estimate": b, "std_error": se, "ratio": np.exp(b), "lower": np.exp(b - 1.959964 * se), "upper": np.exp(b + 1.959964 * se)},
+        index=pd.Index(list(terms), name="term"),
+    )
+
+
+def supplied_casemix(measure: MeasureSection, rows: pd.DataFrame, unit_codes: np.ndarray) -> CaseMixFit:
+    """Expected values supplied per patient (a risk model fitted elsewhere): used as they are."""
+    y = rows[measure.outcome].to_numpy(dtype=float)
+    expected = rows[measure.expected_column].to_numpy(dtype=float)
+    binary = measure.type == "binary"
+    linear = _logit(expected) if binary else np.log(expected)
     return CaseMixFit(
-        measure=measure.key,
-        formula=f"{measure.outcome} ~ {measure.casemix}",
-        patients=len(y),
-        events=events,
-        coefficients=coefficients,
-        linear=linear,
-        intercept=intercept,
-        expected=expected,
-        c_statistic=c_statistic(y, linear),
-        units_in_fit=len(kept_units),
-        solver=solver,
+        measure=measure.key, formula=f"expected value supplied in column '{measure.expected_column}'", family="supplied",
+        patients=len(y), events=float(y.sum()), coefficients=coefficient_table([], np.zeros(0), np.zeros(0)), linear=linear,
+        intercept=0.0, expected=expected, c_statistic=c_statistic(y, linear) if binary else float("nan"),
+        units_in_fit=len(np.unique(unit_codes)), solver="none", used=np.ones(len(y), dtype=bool),
+        exclusions={"policy": measure.missing, "dropped": {}, "imputed": {}, "dropped_rows": 0, "imputed_rows": 0, "by_unit": {}},
+    )
+
+
+def without_terms(casemix: str, variables: tuple[str, ...]) -> str:
+    """The case-mix formula with every term that uses one of ``variables`` removed ("1" if none is left).
+
+    Terms are expanded by patsy first, so in ``age * deprivation`` only ``deprivation`` and
+    ``age:deprivation`` go and ``age`` stays.
+    """
+    from .data import formula_variables
+
+    terms = patsy.ModelDesc.from_formula(casemix).rhs_termlist
+    kept = [t for t in terms if t.factors and not set(formula_variables(" + ".join(f.code for f in t.factors))) & set(variables)]
+    return " + ".join(":".join(f.code for f in t.factors) for t in kept) if kept else "1"
+
+
+def unit_summary_fit(measure: MeasureSection, summary: pd.DataFrame) -> CaseMixFit:
+    """Stands in for a case-mix fit when expected events per unit were supplied (unit-level input)."""
+    return CaseMixFit(
+        measure=measure.key, formula=f"expected events per unit supplied in {measure.summary}", family="unit summary",
+        patients=int(summary["cases"].sum()), events=float(summary["observed"].sum()),
+        coefficients=coefficient_table([], np.zeros(0), np.zeros(0)), linear=np.zeros(0), intercept=0.0,
+        expected=summary["expected"].to_numpy(float), c_statistic=float("nan"), units_in_fit=0, solver="none",
+        used=np.zeros(0, dtype=bool),
     )

@@ -129,25 +129,78 @@ class SamplerSection:
 
 
 @dataclass(frozen=True)
+class ValidationSection:
+    """[validation]: how the case-mix models are checked out of sample."""
+
+    folds: int = option(
+        5, doc="k of k-fold cross-validation of every fitted case-mix model (the coefficients are refitted k times).", check=_between(2, 20)
+    )
+    deciles: int = option(10, doc="Risk groups for the calibration table and the Hosmer-Lemeshow test.", check=_between(4, 20))
+
+
+def _threshold(value: str | float) -> str | None:
+    if isinstance(value, str):
+        return None if value == "network" else f"must be \"network\" or a risk between 0 and 1; got '{value}'"
+    return None if 0 < value < 1 else f"a risk threshold must be strictly between 0 and 1; got {value}"
+
+
+def _rhs(value: str) -> str | None:
+    if "~" in value:
+        return "give only the right-hand side of the formula (no '~'); the outcome comes from 'outcome'"
+    return _nonempty(value)
+
+
+@dataclass(frozen=True)
 class MeasureSection:
     """[[measures]]: one outcome measure reported for every unit."""
 
     key: str = option(doc="Short id used in file names and downloads.", check=_slug)
     name: str = option(doc="Plain-language name, e.g. \"Readmission within 30 days\".", check=_nonempty)
     definition: str = option(doc="One or two plain sentences saying who is counted and what counts as the outcome.", check=_nonempty)
-    outcome: str = option(doc="Cohort column holding the outcome (0/1 for binary measures).", check=_nonempty)
-    type: str = option("binary", doc="Outcome type: binary.", check=lambda v: _outcome_type(v))
+    outcome: str = option(
+        doc="Cohort column holding the outcome: 0/1 for binary measures, a positive number for continuous ones "
+        "(for a unit summary: the column of observed events).",
+        check=_nonempty,
+    )
+    type: str = option("binary", doc="Outcome type: binary or continuous.", check=lambda v: _outcome_type(v))
+    family: str = option(
+        "", doc="Case-mix model family; empty = the type's default. binary: logistic; continuous: gamma or lognormal.",
+    )
+    unit_label: str = option("", doc="What a continuous outcome is measured in, e.g. \"days\" (required for continuous measures).")
     better: Literal["lower", "higher"] = option("lower", doc="Which direction is better for patients.")
     casemix: str = option(
         "1",
-        doc="Right-hand side of the case-mix formula (patsy syntax), e.g. \"C(age_band) + diabetes\"; \"1\" = no adjustment.",
-        check=lambda v: "give only the right-hand side of the formula (no '~'); the outcome comes from 'outcome'" if "~" in v else _nonempty(v),
+        doc="Right-hand side of the case-mix formula (patsy syntax: C() categories, bs()/cr() splines, a:b interactions), "
+        "e.g. \"C(age_band) + diabetes\"; \"1\" = no adjustment. logit(p) turns a supplied risk into a covariate.",
+        check=_rhs,
+    )
+    missing: Literal["stop", "drop", "impute"] = option(
+        "stop",
+        doc="Rows with a missing risk factor: stop (the cycle fails and lists them), drop (left out of this measure, counted "
+        "per unit) or impute (median of a numeric factor, most common value of a category; counted).",
+    )
+    expected_column: str = option(
+        "", doc="Cohort column with each patient's expected value from a risk model fitted elsewhere (a risk for binary "
+        "measures); it is used as the expected value itself and no case-mix model is fitted.",
+    )
+    summary: str = option(
+        "", doc="Unit-level input: a CSV or Parquet file (relative to the config file) with the unit column and columns "
+        "cases, <outcome> and expected; no patient rows are read for this measure. Binary measures only.",
+    )
+    social_risk: tuple = option(
+        (), doc="Social-risk variables of the case-mix formula; the cycle also fits without them and reports which units' "
+        "position changes.",
+    )
+    risk_threshold: str | float = option(
+        "network", doc="Risk above which a patient counts as predicted to have the outcome (sensitivity, specificity, "
+        "PPV); \"network\" = the network rate.", check=_threshold,
     )
 
 
-# Built-in outcome types: a data table, one row per type (later types add a row).
-OUTCOME_TYPES: dict[str, str] = {
-    "binary": "0/1 outcome; logistic case-mix fit; hierarchical logistic shrinkage fit",
+# Built-in outcome types: a data table, one row per type; the first family is the default.
+OUTCOME_TYPES: dict[str, tuple[str, ...]] = {
+    "binary": ("logistic",),
+    "continuous": ("gamma", "lognormal"),
 }
 
 def _outcome_type(value: str) -> str | None:
@@ -156,11 +209,17 @@ def _outcome_type(value: str) -> str | None:
     return f"'{value}' is not an outcome type fairgauge fits. Allowed: {', '.join(OUTCOME_TYPES)}.{_hint(value, OUTCOME_TYPES)}"
 
 
+def family_of(measure: MeasureSection) -> str:
+    """The measure's case-mix family, after applying the type's default."""
+    return measure.family or OUTCOME_TYPES[measure.type][0]
+
+
 SECTIONS: dict[str, type] = {
     "cycle": CycleSection,
     "inputs": InputsSection,
     "reporting": ReportingSection,
     "sampler": SamplerSection,
+    "validation": ValidationSection,
 }
 
 
@@ -174,6 +233,7 @@ class CycleConfig:
     inputs: InputsSection
     reporting: ReportingSection
     sampler: SamplerSection
+    validation: ValidationSection
     measures: tuple[MeasureSection, ...]
 
     def measure(self, key: str) -> MeasureSection:
@@ -198,6 +258,9 @@ def _type_problem(value: Any, hint: Any) -> str | None:
         if any(_type_problem(value, o) is None for o in options):
             return None
         return f"must be {' or '.join(o.__name__ for o in options)}; got {type(value).__name__} {value!r}"
+    if hint is tuple:
+        ok = isinstance(value, list) and all(isinstance(v, str) and v.strip() for v in value)
+        return None if ok else f"must be a list of column names (text); got {value!r}"
     if hint is Path:
         return None if isinstance(value, str) and value.strip() else f"must be a path (text); got {value!r}"
     if hint is float:
@@ -242,6 +305,8 @@ def _build_section(cls: type, table: Any, where: str, base: Path, problems: list
             value = (base / value).resolve()
         elif hints[f.name] is float:
             value = float(value)
+        elif hints[f.name] is tuple:
+            value = tuple(value)
         values[f.name] = value
     try:
         return cls(**values)
@@ -257,6 +322,29 @@ def _check_measures(measures: list[MeasureSection], problems: list[Problem]) -> 
         if m.key in seen:
             problems.append(Problem(f"{where}.key", f"'{m.key}' is already used by measures[{seen[m.key]}]; keys must be unique"))
         seen.setdefault(m.key, i)
+        families = OUTCOME_TYPES.get(m.type, ())
+        if m.family and families and m.family not in families:
+            problems.append(Problem(f"{where}.family", f"'{m.family}' does not fit a {m.type} measure. Allowed: {', '.join(families)}.{_hint(m.family, families)}"))
+        if m.type == "continuous" and not m.unit_label.strip():
+            problems.append(Problem(f"{where}.unit_label", "is required for a continuous measure: say what the outcome is measured in, e.g. \"days\"."))
+        if m.expected_column and m.casemix != "1":
+            problems.append(Problem(f"{where}.expected_column", "is set, so the expected values are supplied; leave casemix out (or \"1\"), or use the supplied risk as a covariate in casemix instead."))
+        if m.summary:
+            for other, default in (("casemix", "1"), ("expected_column", ""), ("social_risk", ())):
+                if getattr(m, other) != default:
+                    problems.append(Problem(f"{where}.{other}", f"cannot be used with summary (unit-level input has no patient rows to fit); remove it."))
+            if m.type != "binary":
+                problems.append(Problem(f"{where}.summary", "unit-level input is supported for binary measures only (observed events and expected events per unit)."))
+        if m.social_risk:
+            try:
+                from .data import formula_variables
+
+                used = formula_variables(m.casemix)
+            except ValueError:
+                used = []
+            for v in m.social_risk:
+                if v not in used:
+                    problems.append(Problem(f"{where}.social_risk", f"'{v}' is not a variable of the case-mix formula '{m.casemix}'; list only variables the formula uses."))
 
 
 def load_config(path: str | Path) -> CycleConfig:

@@ -22,19 +22,21 @@ import numpy as np
 import pandas as pd
 
 from . import __version__, templates_path
-from .casemix import fit_casemix
-from .config import CycleConfig, MeasureSection
+from .casemix import fit_with_design, unit_summary_fit, without_terms
+from .config import CycleConfig, MeasureSection, family_of
 from .data import Cohort, load_cohort
 from .errors import RenderError, StrictError
 from .cache import Cache, key, library_versions
 from .figures import (
-    MAX_FIGURE_UNITS, cached_figure, draw_measure, draw_unit, measure_figure_data, measure_figure_path, unit_figure_data, unit_figure_path,
+    MAX_FIGURE_UNITS, axis, cached_figure, calibration_figure_data, draw_calibration, draw_measure, draw_roc, draw_unit,
+    measure_figure_data, measure_figure_path, model_figure_path, roc_figure_data, unit_figure_data, unit_figure_path,
 )
 from .history import PastCycle, past_cycles, record_cycle
 from .pages import render_pages, unit_slugs
 from .render import Renderer, choose_renderer, render_site
-from .results import DICTIONARY, MeasureResult, public_table, results_json, summarise_measure
-from .shrinkage import Cells, Sampler, ShrinkageSpec, fit_failed, unit_draws
+from .results import DICTIONARY, MeasureFits, MeasureResult, public_table, results_json, summarise_measure
+from .shrinkage import Cells, Sampler, ShrinkageSpec, unit_draws
+from .validation import validate
 
 MARKER = "fairgauge-manifest.json"  # every site's provenance; only folders holding it are ever replaced
 
@@ -101,51 +103,78 @@ def run_cycle(
 
 
 def fit_measures(config: CycleConfig, cohort: Cohort, cache: Cache, reporter: Reporter) -> list[MeasureResult]:
-    """Case-mix fit then shrinkage fit for every measure (one compiled model for all)."""
+    """Case-mix fit, validation and shrinkage fit for every measure (one compiled model per likelihood)."""
     rows = cohort.rows
-    present = set(rows[cohort.unit_column])
+    present = set(rows[cohort.unit_column]) | {u for t in (cohort.summaries or {}).values() if t is not None for u in t.index}
     fitted_units = [u for u in cohort.units.index if u in present]
     codes = pd.Categorical(rows[cohort.unit_column], categories=fitted_units).codes.astype(np.int64)
-    sampler = Sampler(ShrinkageSpec(), config.sampler, engine=config.sampler.engine)
+    samplers: dict[str, Sampler] = {}
     results = []
     for i, measure in enumerate(config.measures):
         seed = config.sampler.seed + i
-        fit_key = key("fit", cohort.sha256, cohort.unit_column, fitted_units, measure.outcome, measure.type, measure.casemix, config.sampler, seed, sampler.spec)
+        settings = (measure.type, measure.outcome, measure.casemix, family_of(measure), measure.missing, measure.expected_column,
+                    measure.summary, measure.social_risk, measure.risk_threshold)
+        fit_key = key("fit", cohort.sha256, cohort.unit_column, fitted_units, settings, config.sampler, config.validation, seed, ShrinkageSpec())
         fits = cache.load(fit_key)
         if fits is None:
-            fits = fit_measure(config, cohort, measure, codes, fitted_units, sampler, seed, reporter)
+            fits = fit_measure(config, cohort, measure, codes, fitted_units, samplers, seed, reporter)
             cache.store(fit_key, fits)
         else:
             reporter.stage(f"{measure.key}: data and model settings unchanged; reusing the cached fits")
-        results.append(summarise_measure(config, measure, cohort.units, fitted_units, *fits))
+        for note in fits.casemix.warnings:
+            reporter.warn(note)
+        results.append(summarise_measure(config, measure, cohort.units, fitted_units, fits))
     return results
 
 
 def fit_measure(
     config: CycleConfig, cohort: Cohort, measure: MeasureSection, codes: np.ndarray, fitted_units: list[str],
-    sampler: Sampler, seed: int, reporter: Reporter,
-) -> tuple:
-    """Case-mix fit and shrinkage fit of one measure: (counts, case-mix fit, unit draws, tau draws, diagnostics)."""
-    reporter.stage(f"{measure.key}: case-mix fit ({measure.casemix})")
-    casemix = fit_casemix(measure, cohort.rows, codes)
-    y = cohort.rows[measure.outcome].to_numpy(dtype=float)
-    cells = Cells.from_patients(codes, casemix.intercept + casemix.linear, y, len(fitted_units))
+    samplers: dict[str, Sampler], seed: int, reporter: Reporter, casemix_formula: str | None = None,
+) -> MeasureFits:
+    """Case-mix fit, its validation and the shrinkage fit of one measure (and, with social risk, the refit without it)."""
+    n_units = len(fitted_units)
+    validation = None
+    if measure.summary:
+        reporter.stage(f"{measure.key}: unit-level input; no case-mix fit")
+        summary = cohort.summaries[measure.key]
+        unit_codes = np.array([fitted_units.index(u) for u in summary.index], dtype=np.int64)
+        casemix = unit_summary_fit(measure, summary)
+        cells, likelihood = Cells.from_units(unit_codes, summary["observed"], summary["expected"], n_units), "poisson"
+        counts = pd.DataFrame({"cases": summary["cases"].to_numpy(), "observed": summary["observed"].to_numpy(),
+                               "expected": summary["expected"].to_numpy()}, index=unit_codes).reindex(range(n_units))
+    else:
+        reporter.stage(f"{measure.key}: case-mix fit ({casemix_formula or measure.casemix})")
+        casemix, x, y = fit_with_design(measure, cohort.rows, codes, casemix_formula)
+        casemix.exclusions["by_unit"] = {fitted_units[c]: n for c, n in casemix.exclusions.get("by_unit", {}).items()}
+        used_codes = codes[casemix.used]
+        if casemix_formula is None:
+            threshold = casemix.events / casemix.patients if measure.risk_threshold == "network" else float(measure.risk_threshold)
+            v = config.validation
+            reporter.stage(f"{measure.key}: validating the case-mix model ({v.folds}-fold cross-validation)")
+            validation = validate(casemix, measure.type == "binary", y, x, used_codes, v.folds, v.deciles, threshold, seed)
+        likelihood = {"binary": "binomial", "continuous": family_of(measure)}[measure.type]
+        offset = casemix.intercept + casemix.linear
+        cells = (Cells.from_patients(used_codes, offset, y, n_units) if likelihood == "binomial"
+                 else Cells.from_continuous(used_codes, offset, y, n_units, likelihood))
+        counts = pd.DataFrame({"code": used_codes, "y": y, "e": casemix.expected}).groupby("code").agg(
+            cases=("y", "size"), observed=("y", "sum"), expected=("e", "sum")
+        ).reindex(range(n_units))
+    if likelihood not in samplers:
+        samplers[likelihood] = Sampler(ShrinkageSpec(likelihood=likelihood), config.sampler, engine=config.sampler.engine)
+    sampler = samplers[likelihood]
     s = config.sampler
-    reporter.stage(
-        f"{measure.key}: C-statistic {casemix.c_statistic:.3f} (case-mix solver: {casemix.solver}); shrinkage fit on {len(cells.n):,} cells "
-        f"({s.chains} chains x {s.draws} draws, {s.engine})"
-    )
-    draws, diagnostics = sampler.run(cells, seed)
-    if diagnostics.failures():
-        raise fit_failed(measure.key, diagnostics)
+    reporter.stage(f"{measure.key}: shrinkage fit ({likelihood}) on {len(cells.n):,} cells ({s.chains} chains x {s.draws} draws, {s.engine})")
+    draws, diagnostics = sampler.run_checked(cells, seed, measure.key, reporter.warn)
     reporter.stage(
         f"{measure.key}: sampled in {diagnostics.seconds:.1f} s; R-hat max {diagnostics.rhat_max:.3f}, "
         f"bulk ESS min {diagnostics.ess_bulk_min:.0f}, divergences {diagnostics.divergences}"
     )
-    counts = pd.DataFrame({"code": codes, "y": y, "e": casemix.expected}).groupby("code").agg(
-        cases=("y", "size"), observed=("y", "sum"), expected=("e", "sum")
-    ).reindex(range(len(fitted_units)))
-    return counts, casemix, unit_draws(cells, draws), draws["tau"], diagnostics
+    without = None
+    if measure.social_risk and casemix_formula is None:
+        reduced = without_terms(measure.casemix, measure.social_risk)
+        reporter.stage(f"{measure.key}: equity sensitivity: refitting without {', '.join(measure.social_risk)}")
+        without = fit_measure(config, cohort, measure, codes, fitted_units, samplers, seed, reporter, casemix_formula=reduced)
+    return MeasureFits(counts, casemix, unit_draws(cells, draws, likelihood=likelihood), draws["tau"], diagnostics, validation, without)
 
 
 def about(config: CycleConfig, cohort: Cohort, renderer: Renderer, results: list[MeasureResult]) -> dict:
@@ -186,8 +215,14 @@ def build_site(
             reporter.stage(f"drawing figures ({len(results)} measures, {len(cohort.units)} units)")
             for r in results:
                 data = measure_figure_data(r)
+                scale, label = axis(r)
                 if len(data):
-                    drawn.add(cached_figure(project, measure_figure_path(r.measure.key), draw_measure, data, cache, r.benchmark))
+                    drawn.add(cached_figure(project, measure_figure_path(r.measure.key), draw_measure, data, cache, r.benchmark * scale, label))
+                if r.validation is not None:
+                    drawn.add(cached_figure(project, model_figure_path(r.measure.key, "calibration"), draw_calibration,
+                                            calibration_figure_data(r), cache, "%" if r.validation.binary else r.measure.unit_label))
+                    if r.validation.binary:
+                        drawn.add(cached_figure(project, model_figure_path(r.measure.key, "roc"), draw_roc, roc_figure_data(r), cache))
             for uid in cohort.units.index:
                 data = unit_figure_data(uid, results)
                 if data is not None:

@@ -41,6 +41,7 @@ class Cohort:
     unit_column: str
     sha256: dict[str, str]  # file name -> SHA-256 of its bytes, for provenance
     warnings: tuple[str, ...]
+    summaries: dict[str, pd.DataFrame] = None  # measure key -> unit-level input (index unit id; cases, observed, expected)
 
 
 def _sha256(path: Path) -> str:
@@ -142,14 +143,39 @@ def _check_outcome(rows: pd.DataFrame, column: str, kind: str, where: str, probl
         if bad.any():
             sample = numeric[bad].iloc[0]
             problems.append(Problem(f"{where}, column '{column}'", f"must be 0 or 1 for a binary measure; found {sample:g} at {_rows(bad)}."))
+    elif kind == "continuous":
+        bad = numeric.notna() & ~(numeric > 0) | ~np.isfinite(numeric.fillna(1.0))
+        if bad.any():
+            sample = numeric[bad].iloc[0]
+            problems.append(Problem(
+                f"{where}, column '{column}'",
+                f"must be a positive number for a continuous measure (gamma and log-normal models need values above 0); found {sample:g} at {_rows(bad)}. "
+                "For stays shorter than a day, record the fraction of a day (e.g. 0.5).",
+            ))
 
 
-def _check_risk_factor(rows: pd.DataFrame, column: str, where: str, problems: list[Problem]) -> None:
+def _check_expected(rows: pd.DataFrame, column: str, kind: str, where: str, problems: list[Problem]) -> None:
+    """A supplied expected value: a risk strictly between 0 and 1 (binary) or a positive number."""
+    values = pd.to_numeric(rows[column], errors="coerce")
+    if kind == "binary":
+        bad, allowed = ~((values > 0) & (values < 1)), "a risk strictly between 0 and 1"
+    else:
+        bad, allowed = ~((values > 0) & np.isfinite(values)), "a positive number"
+    if bad.any():
+        sample = rows[column][bad].iloc[0]
+        problems.append(Problem(f"{where}, column '{column}'", f"must hold {allowed} for every row (a supplied expected value); found '{sample}' at {_rows(bad)}."))
+
+
+def _check_risk_factor(rows: pd.DataFrame, column: str, where: str, problems: list[Problem], stop_on_missing: bool = True) -> None:
     values = rows[column]
     missing = values.isna()
-    if missing.any():
+    if missing.any() and stop_on_missing:
         problems.append(
-            Problem(f"{where}, column '{column}'", f"has no value at {_rows(missing)}. Risk factors must be complete; fill or remove those rows before the cycle.")
+            Problem(
+                f"{where}, column '{column}'",
+                f"has no value at {_rows(missing)}. Fill or remove those rows, or set the measure's missing = \"drop\" or \"impute\" "
+                "(the rows left out or filled in are then counted on the model report).",
+            )
         )
     if values.dtype.kind in "O" or pd.api.types.is_string_dtype(values):
         as_number = pd.to_numeric(values, errors="coerce")
@@ -168,6 +194,8 @@ def _check_comparable(config: CycleConfig, rows: pd.DataFrame, unit_col: str, wh
     if n_units < 2:
         problems.append(Problem(f"{where}, column '{unit_col}'", f"all rows belong to one unit ('{rows[unit_col].iloc[0]}'); fairgauge compares units, so at least two are needed."))
     for m in config.measures:
+        if m.summary:
+            continue
         values = pd.to_numeric(rows[m.outcome], errors="coerce")
         if m.type == "binary" and values.isin([0, 1]).all():
             events = int(values.sum())
@@ -194,8 +222,14 @@ def load_cohort(config: CycleConfig) -> Cohort:
     if inputs.record_column:
         needed[inputs.record_column] = "[inputs].record_column"
     risk_factors: list[str] = []
+    stop_on_missing: dict[str, bool] = {}
+    patient_measures = [m for m in config.measures if not m.summary]
     for i, m in enumerate(config.measures):
+        if m.summary:
+            continue
         needed.setdefault(m.outcome, f"measures[{i}].outcome")
+        if m.expected_column:
+            needed.setdefault(m.expected_column, f"measures[{i}].expected_column")
         try:
             variables = formula_variables(m.casemix)
         except ValueError as exc:
@@ -204,6 +238,7 @@ def load_cohort(config: CycleConfig) -> Cohort:
         for v in variables:
             needed.setdefault(v, f"measures[{i}].casemix")
             risk_factors.append(v)
+            stop_on_missing[v] = stop_on_missing.get(v, False) or m.missing == "stop"
     absent = [c for c in needed if c not in rows.columns]
     for c in absent:
         close = difflib.get_close_matches(c, [str(x) for x in rows.columns], n=1)
@@ -226,8 +261,10 @@ def load_cohort(config: CycleConfig) -> Cohort:
         dup = rows.duplicated(keep=False)
         if dup.any():
             warnings.append(f"{c_where}: {int(dup.sum())} rows are exact copies of another row ({_rows(dup)}); set [inputs].record_column to check ids properly.")
-    for m in config.measures:
+    for m in patient_measures:
         _check_outcome(rows, m.outcome, m.type, c_where, problems)
+        if m.expected_column:
+            _check_expected(rows, m.expected_column, m.type, c_where, problems)
     _check_comparable(config, rows, unit_col, c_where, problems)
     looks_identifying = [str(c) for c in rows.columns if _IDENTIFIER.search(str(c))]
     if looks_identifying:
@@ -236,18 +273,64 @@ def load_cohort(config: CycleConfig) -> Cohort:
             "or publish them, but they should not be in the extract at all: remove them at the source."
         )
     for v in dict.fromkeys(risk_factors):
-        _check_risk_factor(rows, v, c_where, problems)
+        _check_risk_factor(rows, v, c_where, problems, stop_on_missing[v])
     if problems:
         raise InputError(problems)
 
     idle = units.index[~units.index.isin(rows[unit_col])]
     if len(idle):
         warnings.append(f"{len(idle)} unit(s) in {u_where} have no cases this cycle and are listed without results: {', '.join(idle[:5])}.")
-    keep = [unit_col, *dict.fromkeys([m.outcome for m in config.measures] + risk_factors)]
+    keep = [unit_col, *dict.fromkeys([m.outcome for m in patient_measures] + [m.expected_column for m in patient_measures if m.expected_column] + risk_factors)]
+    hashes = {inputs.cohort.name: _sha256(inputs.cohort), inputs.units.name: _sha256(inputs.units)}
+    summaries = {}
+    for i, m in enumerate(config.measures):
+        if m.summary:
+            path = (config.source.parent / m.summary).resolve()
+            summaries[m.key] = load_summary(path, m.outcome, unit_col, units.index, problems)
+            hashes[path.name] = _sha256(path) if path.is_file() else ""
+    if problems:
+        raise InputError(problems)
     return Cohort(
         rows=rows[keep].reset_index(drop=True),
         units=units[["name", "kind"]].astype("string"),
         unit_column=unit_col,
-        sha256={inputs.cohort.name: _sha256(inputs.cohort), inputs.units.name: _sha256(inputs.units)},
+        sha256=hashes,
         warnings=tuple(warnings),
+        summaries=summaries,
     )
+
+
+def load_summary(path: Path, observed: str, unit_col: str, unit_ids: pd.Index, problems: list[Problem]) -> pd.DataFrame | None:
+    """Unit-level input of one measure: per unit its cases, observed events and expected events."""
+    where = str(path)
+    try:
+        frame = read_table(path, text_columns=(unit_col,))
+    except InputError as exc:
+        problems.extend(exc.problems)
+        return None
+    columns = {unit_col: "the unit id", "cases": "patients counted", observed: "observed events", "expected": "expected events"}
+    absent = [c for c in columns if c not in frame.columns]
+    for c in absent:
+        problems.append(Problem(f"{where}, column '{c}'", f"is missing ({columns[c]}). A unit summary needs columns {', '.join(columns)}."))
+    if absent:
+        return None
+    ids = frame[unit_col].astype("string").str.strip()
+    unknown = ~ids.isin(unit_ids)
+    if unknown.any():
+        problems.append(Problem(f"{where}, column '{unit_col}'", f"has unit ids not in the unit table, such as '{ids[unknown].iloc[0]}', at {_rows(unknown)}."))
+    dup = ids.duplicated(keep=False)
+    if dup.any():
+        problems.append(Problem(f"{where}, column '{unit_col}'", f"repeats unit ids at {_rows(dup)}; each unit appears once in a unit summary."))
+    numbers = {c: pd.to_numeric(frame[c], errors="coerce") for c in ("cases", observed, "expected")}
+    cases, events, expected = numbers["cases"], numbers[observed], numbers["expected"]
+    checks = [
+        ("cases", ~((cases >= 1) & (cases == cases.round())), "must be a whole number of at least 1"),
+        (observed, ~((events >= 0) & (events == events.round()) & (events <= cases)), "must be a whole number from 0 to the unit's cases"),
+        ("expected", ~((expected > 0) & (expected < cases)), "must be a number above 0 and below the unit's cases"),
+    ]
+    for column, bad, allowed in checks:
+        if bad.any():
+            problems.append(Problem(f"{where}, column '{column}'", f"{allowed}; found '{frame[column][bad].iloc[0]}' at {_rows(bad)}."))
+    if events.sum() <= 0 or events.sum() >= cases.sum():
+        problems.append(Problem(f"{where}, column '{observed}'", "needs at least one event and one non-event across the network to compare units."))
+    return pd.DataFrame({"cases": cases.to_numpy(), "observed": events.to_numpy(), "expected": expected.to_numpy()}, index=pd.Index(ids, name="id"))

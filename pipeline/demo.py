@@ -56,6 +56,13 @@ _TRUTH = {
         heart_failure=0.3, copd=0.3, diabetes=0.35, renal_disease=0.4, cancer=0.3, tau=0.35,
     ),
 }
+# Length of stay (days): Gamma with log link, shape 1.8; log-scale coefficients in the same coding.
+_STAY = dict(intercept=1.25, age=[0.0, 0.1, 0.2, 0.3, 0.35], male=0.0, emergency=0.3, heart_failure=0.25, copd=0.2,
+             diabetes=0.08, renal_disease=0.2, cancer=0.3, deprivation=0.03, tau=0.12, shape=1.8)
+# Hospital-acquired pressure injury, reported per unit with expected events from an invented external model.
+_PRESSURE = dict(intercept=-4.6, age=[0.0, 0.3, 0.6, 0.9, 1.2], tau=0.3)
+MISSING_DEPRIVATION = 0.004  # share of stays whose deprivation fifth was not recorded
+
 MEASURES = [
     dict(key="readmit30", name="Readmission within 30 days", outcome="readmit30",
          definition="Adults discharged alive who were admitted again, unplanned, to any unit of the network within 30 days of going home."),
@@ -64,6 +71,10 @@ MEASURES = [
     dict(key="complication", name="Serious complication after surgery", outcome="complication",
          definition="Adults who had a serious complication (such as a return to theatre, a blood clot in the lung or a deep wound infection) within 30 days of an operation."),
 ]
+STAY_MEASURE = dict(key="stay", name="Length of stay", outcome="los_days",
+                    definition="Days from admission to discharge for adults discharged alive (part days count as fractions).")
+PRESSURE_MEASURE = dict(key="pressure", name="Pressure injury acquired in hospital", outcome="pressure_injury",
+                        definition="Adults who developed a new pressure injury during their stay, counted by each unit and sent with the expected number from the network's own risk tool.")
 
 
 @dataclass(frozen=True)
@@ -125,7 +136,30 @@ def invent_network(seed: int = 7, n_units: int = 44, smallest: int = 10, largest
                 {"measure": key, "unit_id": unit_ids, "true_effect": effect, "true_ratio": (sums["p"] / sums["e"]).to_numpy()}
             )
         )
-    return units, cohort, pd.concat(truth_rows, ignore_index=True)
+    # Length of stay: continuous, Gamma-distributed around a case-mix mean and a unit effect.
+    t = _STAY
+    raw = 0.4 * severity / 0.5 * t["tau"] + rng.normal(0.0, t["tau"] * np.sqrt(1 - 0.4**2), n_units)
+    effect = raw - raw.mean()
+    linear = (
+        np.array(t["age"])[age_band] + t["emergency"] * cohort["emergency"] + sum(t[c] * cohort[c] for c in CONDITIONS)
+        + t["deprivation"] * cohort["deprivation_fifth"]
+    ).to_numpy()
+    mean = np.exp(t["intercept"] + linear + effect[unit_of])
+    cohort["los_days"] = np.maximum(np.round(rng.gamma(t["shape"], mean / t["shape"]), 1), 0.1)
+    truth_rows.append(pd.DataFrame({"measure": "stay", "unit_id": unit_ids, "true_effect": effect, "true_ratio": np.exp(effect)}))
+    # Pressure injury: only unit totals leave the units, with expected events from an (invented) external tool.
+    t = _PRESSURE
+    raw = rng.normal(0.0, t["tau"], n_units)
+    effect = raw - raw.mean()
+    base = expit(t["intercept"] + np.array(t["age"])[age_band])
+    events = rng.random(n) < expit(t["intercept"] + np.array(t["age"])[age_band] + effect[unit_of])
+    sums = pd.DataFrame({"u": unit_of, "e": base, "y": events}).groupby("u").sum()
+    summary = pd.DataFrame({"unit_id": unit_ids, "cases": sizes, "pressure_injury": sums["y"].astype(int).to_numpy(),
+                            "expected": sums["e"].round(2).to_numpy()})
+    truth_rows.append(pd.DataFrame({"measure": "pressure", "unit_id": unit_ids, "true_effect": effect, "true_ratio": np.exp(effect)}))
+    gaps = rng.random(n) < MISSING_DEPRIVATION
+    cohort["deprivation_fifth"] = cohort["deprivation_fifth"].astype("Int64").mask(gaps)
+    return units, cohort, pd.concat(truth_rows, ignore_index=True), summary
 
 
 CONFIG_TEMPLATE = """# Demonstration cycle of an invented network. Every name and number in it is made up.
@@ -159,14 +193,23 @@ seed = {seed}
 def write_demo(folder: Path, site: Path, seed: int = 7, n_units: int = 44, largest: int = 4000) -> DemoFiles:
     """Write the invented network's inputs, its truth and a cycle config into ``folder``."""
     folder.mkdir(parents=True, exist_ok=True)
-    units, cohort, truth = invent_network(seed=seed, n_units=n_units, largest=largest)
+    units, cohort, truth, summary = invent_network(seed=seed, n_units=n_units, largest=largest)
     files = DemoFiles(folder / "cycle.toml", folder / "cohort.csv", folder / "units.csv", folder / "truth.csv")
     units.to_csv(files.units, index=False)
     cohort.to_csv(files.cohort, index=False)
     truth.to_csv(files.truth, index=False)
+    summary.to_csv(folder / "pressure_by_unit.csv", index=False)
     text = CONFIG_TEMPLATE.format(network=NETWORK, output=site.resolve().as_posix(), seed=seed)
     for m in MEASURES:
         text += "\n[[measures]]\n" + "".join(f'{k} = "{v}"\n' for k, v in m.items())
-        text += f'type = "binary"\nbetter = "lower"\ncasemix = "{CASEMIX}"\n'
+        if m["key"] == "readmit30":  # social risk: also fitted without it, and the difference shown
+            text += (f'type = "binary"\nbetter = "lower"\ncasemix = "{CASEMIX} + C(deprivation_fifth)"\n'
+                     'social_risk = ["deprivation_fifth"]\nmissing = "drop"\n')
+        else:
+            text += f'type = "binary"\nbetter = "lower"\ncasemix = "{CASEMIX}"\n'
+    text += "\n[[measures]]\n" + "".join(f'{k} = "{v}"\n' for k, v in STAY_MEASURE.items())
+    text += f'type = "continuous"\nfamily = "gamma"\nunit_label = "days"\nbetter = "lower"\ncasemix = "{CASEMIX} + deprivation_fifth"\nmissing = "impute"\n'
+    text += "\n[[measures]]\n" + "".join(f'{k} = "{v}"\n' for k, v in PRESSURE_MEASURE.items())
+    text += 'type = "binary"\nbetter = "lower"\nsummary = "pressure_by_unit.csv"\n'
     files.config.write_text(text, encoding="utf-8")
     return files

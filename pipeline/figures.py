@@ -76,26 +76,34 @@ def cached_figure(project: Path, relative: str, draw, data: pd.DataFrame, cache:
     return relative
 
 
+def axis(result: MeasureResult) -> tuple[float, str]:
+    """(multiplier, axis label) for a measure's adjusted values: percent for rates, the outcome's unit otherwise."""
+    if result.measure.type == "continuous":
+        return 1.0, f"Adjusted mean, {result.measure.unit_label}"
+    return 100.0, "Risk-standardised rate, %"
+
+
 def measure_figure_data(result: MeasureResult) -> pd.DataFrame:
-    """What the measure figure shows: reported units, lowest adjusted rate first."""
+    """What the measure figure shows: reported units, lowest adjusted value first."""
     t = result.table[result.table["status"] == "reported"].sort_values("rsr_median")
+    k = axis(result)[0]
     return pd.DataFrame(
-        {"unit_name": t["unit_name"], "rsr": t["rsr_median"] * 100, "lo": t["rsr_lower"] * 100, "hi": t["rsr_upper"] * 100, "position": t["position"]}
+        {"unit_name": t["unit_name"], "rsr": t["rsr_median"] * k, "lo": t["rsr_lower"] * k, "hi": t["rsr_upper"] * k, "position": t["position"]}
     )
 
 
-def draw_measure(data: pd.DataFrame, benchmark: float, path: Path) -> None:
-    """All reported units' risk-standardised rates with credible intervals against the benchmark."""
+def draw_measure(data: pd.DataFrame, benchmark: float, label: str, path: Path) -> None:
+    """All reported units' adjusted values with credible intervals against the benchmark (both already scaled)."""
     order = list(data["unit_name"])
     data = data.assign(unit=pd.Categorical(data["unit_name"], categories=order, ordered=True))
     plot = (
         p9.ggplot(data, p9.aes(x="unit", y="rsr", ymin="lo", ymax="hi", colour="position", shape="position"))
-        + p9.geom_hline(yintercept=benchmark * 100, linetype="dashed", colour="#000000")
+        + p9.geom_hline(yintercept=benchmark, linetype="dashed", colour="#000000")
         + p9.geom_linerange(size=0.8)
         + p9.geom_point(size=2.6, fill="white")
         + p9.coord_flip()
         + _scales()
-        + p9.labs(x="", y=f"Risk-standardised rate, % (dashed line: benchmark {benchmark * 100:.1f}%)")
+        + p9.labs(x="", y=f"{label} (dashed line: benchmark {benchmark:.1f})")
         + _theme(max(3.0, 1.6 + 0.19 * len(order)))
     )
     _save(plot, path)
@@ -126,5 +134,71 @@ def draw_unit(data: pd.DataFrame, path: Path) -> None:
         + _scales()
         + p9.labs(x="", y="Adjusted ratio to the network\n(1 = as many events as expected for these patients; black bar: benchmark)")
         + _theme(1.9 + 0.45 * len(data))
+    )
+    _save(plot, path)
+
+
+def model_figure_path(measure_key: str, kind: str) -> str:
+    return f"figures/model-{measure_key}-{kind}.png"
+
+
+def roc_figure_data(result: MeasureResult) -> pd.DataFrame:
+    """ROC curves, in-sample and cross-validated, one row per point."""
+    v = result.validation
+    parts = [v.in_sample.roc.assign(fit="In sample")]
+    if v.cross_validated is not None:
+        parts.append(v.cross_validated.roc.assign(fit=f"Cross-validated ({v.folds} folds)"))
+    return pd.concat(parts, ignore_index=True)
+
+
+FITS = {"In sample": ("#0072B2", "solid"), "Cross-validated": ("#D55E00", "dashed")}  # Okabe-Ito blue, vermillion
+
+
+def _fit_scales(data: pd.DataFrame):
+    names = list(dict.fromkeys(data["fit"]))
+    colours = {n: FITS["In sample" if n == "In sample" else "Cross-validated"][0] for n in names}
+    lines = {n: FITS["In sample" if n == "In sample" else "Cross-validated"][1] for n in names}
+    return [p9.scale_color_manual(values=colours, name=""), p9.scale_linetype_manual(values=lines, name="")]
+
+
+def draw_roc(data: pd.DataFrame, path: Path) -> None:
+    """ROC curve(s) with the diagonal of a coin toss."""
+    plot = (
+        p9.ggplot(data, p9.aes(x="false_positive_rate", y="true_positive_rate", colour="fit", linetype="fit"))
+        + p9.geom_abline(intercept=0, slope=1, colour="#767676", linetype="dotted")
+        + p9.geom_line(size=0.9)
+        + _fit_scales(data)
+        + p9.coord_equal()
+        + p9.labs(x="False-positive rate (1 - specificity)", y="True-positive rate (sensitivity)")
+        + _theme(5.0) + p9.theme(figure_size=(5.0, 5.0))
+    )
+    _save(plot, path)
+
+
+def calibration_figure_data(result: MeasureResult) -> pd.DataFrame:
+    """Observed against expected mean per risk group, in-sample and cross-validated (percent for rates)."""
+    v = result.validation
+    k = 100.0 if v.binary else 1.0
+    parts = [("In sample", v.in_sample)] + ([(f"Cross-validated ({v.folds} folds)", v.cross_validated)] if v.cross_validated else [])
+    return pd.concat(
+        [pd.DataFrame({"group": m.groups["group"], "expected": m.groups["expected_mean"] * k, "observed": m.groups["observed_mean"] * k, "fit": name})
+         for name, m in parts],
+        ignore_index=True,
+    )
+
+
+def draw_calibration(data: pd.DataFrame, label: str, path: Path) -> None:
+    """Observed against expected by risk group; points on the diagonal are perfectly calibrated."""
+    top = float(max(data["expected"].max(), data["observed"].max())) * 1.05
+    plot = (
+        p9.ggplot(data, p9.aes(x="expected", y="observed", colour="fit", shape="fit"))
+        + p9.geom_abline(intercept=0, slope=1, colour="#767676", linetype="dotted")
+        + p9.geom_line(p9.aes(linetype="fit"), size=0.6)
+        + p9.geom_point(size=2.6)
+        + _fit_scales(data)
+        + p9.scale_shape_manual(values={n: ("o" if n == "In sample" else "^") for n in data["fit"].unique()}, name="")
+        + p9.coord_equal(xlim=(0, top), ylim=(0, top))
+        + p9.labs(x=f"Expected ({label})", y=f"Observed ({label})")
+        + _theme(5.0) + p9.theme(figure_size=(5.0, 5.0))
     )
     _save(plot, path)

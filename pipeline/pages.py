@@ -19,6 +19,7 @@ from . import templates_path
 from .config import CycleConfig
 from .figures import measure_figure_path, unit_figure_path
 from .history import PastCycle, changes
+from .report import model_view
 from .results import POSITION, STATUS, MeasureResult
 from .shrinkage import LIMITS, ShrinkageSpec
 
@@ -73,6 +74,19 @@ def span(lo: float, hi: float, digits: int = 1) -> str:
     return "" if pd.isna(lo) else f"{lo * 100:.{digits}f}% to {hi * 100:.{digits}f}%"
 
 
+def value(measure, x: float) -> str:
+    """An adjusted or raw value of ``measure``: a percentage for rates, the outcome's unit otherwise."""
+    if measure.type == "continuous":
+        return "" if pd.isna(x) else f"{x:,.1f} {md(measure.unit_label)}"
+    return pct(x)
+
+
+def value_span(measure, lo: float, hi: float) -> str:
+    if measure.type == "continuous":
+        return "" if pd.isna(lo) else f"{lo:,.1f} to {hi:,.1f} {md(measure.unit_label)}"
+    return span(lo, hi)
+
+
 def num(x: float, digits: int = 2) -> str:
     return "" if pd.isna(x) else f"{x:.{digits}f}"
 
@@ -95,6 +109,13 @@ def natural_frequency(rate: float) -> str:
 
 
 SYMBOLS = {"above": "▲", "spans": "●", "below": "▼", "": ""}
+# Words that differ between rate measures and mean measures (column heads, sentences).
+WORDS = {
+    "binary": {"raw": "Raw rate", "adjusted": "Adjusted rate", "network": "Network rate", "events": "Events",
+               "observed": "Observed", "expected": "Expected", "chance": "Chance above benchmark"},
+    "continuous": {"raw": "Raw mean", "adjusted": "Adjusted mean", "network": "Network mean", "events": "Total",
+                   "observed": "Observed total", "expected": "Expected total", "chance": "Chance above network mean"},
+}
 
 
 @dataclass(frozen=True)
@@ -126,6 +147,9 @@ class MeasureView:
     definition: str
     better: str
     href: str
+    model_href: str
+    kind: str  # binary or continuous
+    words: dict[str, str]  # column and sentence words that differ between rates and means
     figure: str
     patients: str
     events: str
@@ -163,6 +187,12 @@ def _sentence(name: str, m: MeasureResult, row: pd.Series, level: str, min_cases
             "This unit's numbers are withheld so that a smaller unit's numbers cannot be worked out "
             "by subtracting the published numbers from the network totals."
         )
+    if m.measure.type == "continuous":
+        return (
+            f"After allowing for how ill its patients were, the average at {name} is about {value(m.measure, row['rsr_median'])} "
+            f"(we are {level} sure it lies between {value_span(m.measure, row['rsr_lower'], row['rsr_upper'])}). "
+            f"The network average is {value(m.measure, m.benchmark)}. The chance that this unit's adjusted average is above it is {chance(row['prob_above_benchmark'])}."
+        )
     return (
         f"After allowing for how ill its patients were, {natural_frequency(row['rsr_median'])} at {name} "
         f"would be expected to have this outcome (we are {level} sure it lies between {span(row['rsr_lower'], row['rsr_upper'])}). "
@@ -177,12 +207,12 @@ def _cell(m: MeasureResult, row: pd.Series, level: str, min_cases: int) -> Cell:
         status=row["status"],
         status_words=STATUS[row["status"]],
         cases=f"{int(row['cases']):,}" if reported else {"too_few": f"fewer than {min_cases}", "withheld": "withheld"}.get(row["status"], "0"),
-        observed=show(f"{int(row['observed']):,}") if reported else "",
-        expected=show(f"{row['expected']:.1f}") if reported else "",
-        raw_rate=show(pct(row["raw_rate"])),
+        observed=show(f"{row['observed']:,.0f}") if reported else "",
+        expected=show(f"{row['expected']:,.1f}" if m.measure.type == "binary" else f"{row['expected']:,.0f}") if reported else "",
+        raw_rate=show(value(m.measure, row["raw_rate"])),
         oe_ratio=show(num(row["oe_ratio"])),
-        rate=show(pct(row["rsr_median"])),
-        interval=show(span(row["rsr_lower"], row["rsr_upper"])),
+        rate=show(value(m.measure, row["rsr_median"])),
+        interval=show(value_span(m.measure, row["rsr_lower"], row["rsr_upper"])),
         ratio=show(num(row["ratio_median"])),
         ratio_interval=show(f"{num(row['ratio_lower'])} to {num(row['ratio_upper'])}"),
         chance_above=show(chance(row["prob_above_benchmark"])),
@@ -207,15 +237,19 @@ def views(
     for m in results:
         d = m.diagnostics
         coefs = [
-            {"term": md(term), "odds_ratio": num(r["odds_ratio"]), "interval": f"{num(r['or_lower'])} to {num(r['or_upper'])}"}
+            {"term": md(term), "ratio": num(r["ratio"]), "interval": f"{num(r['lower'])} to {num(r['upper'])}"}
             for term, r in m.casemix.coefficients.iterrows()
         ]
+        continuous = m.measure.type == "continuous"
         view = MeasureView(
             key=m.measure.key, name=md(m.measure.name), definition=md(m.measure.definition), better=m.measure.better,
-            href=f"measures/{m.measure.key}.qmd", figure=_if_drawn(measure_figure_path(m.measure.key), drawn),
-            patients=f"{m.casemix.patients:,}", events=f"{m.casemix.events:,}", network_rate=pct(m.network_rate),
-            benchmark=pct(m.benchmark), benchmark_is_network=config.reporting.benchmark == "network",
-            c_statistic=num(m.casemix.c_statistic, 3), units_in_fit=m.casemix.units_in_fit, formula=code(m.casemix.formula),
+            href=f"measures/{m.measure.key}.qmd", model_href=f"models/{m.measure.key}.qmd", kind=m.measure.type,
+            words=WORDS["continuous" if continuous else "binary"], figure=_if_drawn(measure_figure_path(m.measure.key), drawn),
+            patients=f"{m.casemix.patients:,}", events=f"{m.casemix.events:,.0f}" + (f" {md(m.measure.unit_label)}" if continuous else ""),
+            network_rate=value(m.measure, m.network_rate), benchmark=value(m.measure, m.benchmark),
+            benchmark_is_network=config.reporting.benchmark == "network" or continuous,
+            c_statistic=num(m.casemix.c_statistic, 3) if not continuous and m.casemix.patients and m.casemix.c_statistic == m.casemix.c_statistic else "not applicable",
+            units_in_fit=m.casemix.units_in_fit, formula=code(m.casemix.formula),
             tau=f"{num(m.tau[0])} ({num(m.tau[1])} to {num(m.tau[2])})", rhat=num(d.rhat_max, 3), ess=f"{d.ess_bulk_min:,.0f}",
             divergences=d.divergences, coefficients=coefs,
         )
@@ -266,7 +300,7 @@ def trends(config: CycleConfig, results: list[MeasureResult], past: list[PastCyc
         for period, table in cycles:
             for _, row in table[table["status"] == "reported"].iterrows():
                 if row["unit_id"] in out:
-                    out[row["unit_id"]].append({"measure": md(r.measure.name), "period": md(period), "rate": pct(row["rsr_median"]), "interval": span(row["rsr_lower"], row["rsr_upper"])})
+                    out[row["unit_id"]].append({"measure": md(r.measure.name), "period": md(period), "rate": value(r.measure, row["rsr_median"]), "interval": value_span(r.measure, row["rsr_lower"], row["rsr_upper"])})
     return out
 
 
@@ -281,8 +315,8 @@ def change_views(results: list[MeasureResult], previous: PastCycle | None, slugs
         blocks.append({
             "name": md(r.measure.name),
             "rows": [
-                {"name": md(x["unit_name"]), "href": f"units/{slugs[x['unit_id']]}.qmd", "before": f"{pct(x['before'])} ({span(x['before_lower'], x['before_upper'])})",
-                 "now": f"{pct(x['now'])} ({span(x['now_lower'], x['now_upper'])})", "chance": chance(x["p_higher"]), "words": x["words"]}
+                {"name": md(x["unit_name"]), "href": f"units/{slugs[x['unit_id']]}.qmd", "before": f"{value(r.measure, x['before'])} ({value_span(r.measure, x['before_lower'], x['before_upper'])})",
+                 "now": f"{value(r.measure, x['now'])} ({value_span(r.measure, x['now_lower'], x['now_upper'])})", "chance": chance(x["p_higher"]), "words": x["words"]}
                 for _, x in rows.sort_values("p_higher", ascending=False).iterrows()
             ],
         })
@@ -299,7 +333,7 @@ def render_pages(
     unit_trends = trends(config, results, past, slugs)
     common = {
         "cycle": config.cycle, "site": site, "measures": measures, "units": unit_views, "limits": LIMITS,
-        "priors": ShrinkageSpec().describe(), "reporting": config.reporting, "sampler": config.sampler,
+        "priors": ShrinkageSpec().describe(), "reporting": config.reporting, "sampler": config.sampler, "validation": config.validation,
         "level": f"{config.reporting.interval * 100:g}%", "positions": POSITION, "symbols": SYMBOLS,
     }
     pages = [
@@ -308,6 +342,7 @@ def render_pages(
         *[(m.href, "measure.qmd.j2", {"m": m}) for m in measures],
         *[(u.href, "unit.qmd.j2", {"u": u, "trend": unit_trends[uid] if past else []}) for uid, u in zip(units.index, unit_views)],
         ("changes.qmd", "changes.qmd.j2", {"previous": md(past[-1].period) if past else "", "blocks": change_views(results, past[-1] if past else None, slugs)}),
+        *[(f"models/{m.measure.key}.qmd", "model.qmd.j2", {"mv": model_view(m, drawn, md, code)}) for m in results],
         ("methods.qmd", "methods.qmd.j2", {}),
         ("cautions.qmd", "cautions.qmd.j2", {}),
         ("downloads.qmd", "downloads.qmd.j2", {}),

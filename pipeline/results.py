@@ -16,6 +16,7 @@ import pandas as pd
 from .casemix import CaseMixFit
 from .config import CycleConfig, MeasureSection
 from .shrinkage import Diagnostics, UnitDraws, thin
+from .validation import Validation
 
 # Unit states, in our own words (the key is stored; the words are shown).
 STATUS = {
@@ -40,38 +41,61 @@ HISTORY_DRAWS = 1000  # draws kept per unit for comparing cycles
 
 
 @dataclass(frozen=True)
+class MeasureFits:
+    """Everything fitted for one measure (what the cache keeps)."""
+
+    counts: pd.DataFrame  # per fitted unit code: cases, observed, expected
+    casemix: CaseMixFit
+    draws: UnitDraws
+    tau: np.ndarray
+    diagnostics: Diagnostics
+    validation: Validation | None  # None for unit-level input
+    without_social_risk: "MeasureFits | None" = None  # the equity sensitivity refit
+
+
+@dataclass(frozen=True)
 class MeasureResult:
     """One measure's fitted results and the figures that describe the fits."""
 
     measure: MeasureSection
     casemix: CaseMixFit
     diagnostics: Diagnostics
-    network_rate: float
+    network_rate: float  # binary: the network's observed rate; continuous: the network's mean
     benchmark: float
     tau: tuple[float, float, float]  # posterior median, lower, upper of the between-unit SD
     table: pd.DataFrame  # full internal table, one row per unit in the unit table
     rsr_draws: pd.DataFrame  # thinned posterior draws of the risk-standardised rate, one column per fitted unit
+    validation: Validation | None = None
+    equity: pd.DataFrame | None = None  # reported units: position with and without the social-risk factors
 
 
 def summarise_measure(
-    config: CycleConfig,
-    measure: MeasureSection,
-    units: pd.DataFrame,
-    unit_ids: list[str],
-    counts: pd.DataFrame,
-    casemix: CaseMixFit,
-    draws: UnitDraws,
-    tau_draws: np.ndarray,
-    diagnostics: Diagnostics,
+    config: CycleConfig, measure: MeasureSection, units: pd.DataFrame, unit_ids: list[str], fits: MeasureFits
 ) -> MeasureResult:
-    """Posterior summaries per unit for one measure.
+    """Posterior summaries per unit for one measure (``fits.counts`` in the order of ``unit_ids``)."""
+    result = _summarise(config, measure, units, unit_ids, fits)
+    if fits.without_social_risk is None:
+        return result
+    other = _summarise(config, measure, units, unit_ids, fits.without_social_risk).table.set_index("unit_id")
+    mine = result.table[result.table["status"] == "reported"].set_index("unit_id")
+    equity = pd.DataFrame({
+        "unit_name": mine["unit_name"],
+        "position_with": mine["position"], "rsr_with": mine["rsr_median"],
+        "position_without": other.loc[mine.index, "position"], "rsr_without": other.loc[mine.index, "rsr_median"],
+    })
+    equity["changed"] = equity["position_with"] != equity["position_without"]
+    from dataclasses import replace
 
-    ``counts`` has, per fitted unit (same order as ``unit_ids``), cases, observed and expected.
-    """
+    return replace(result, equity=equity.reset_index())
+
+
+def _summarise(config: CycleConfig, measure: MeasureSection, units: pd.DataFrame, unit_ids: list[str], fits: MeasureFits) -> MeasureResult:
+    counts, casemix, draws, tau_draws, diagnostics = fits.counts, fits.casemix, fits.draws, fits.tau, fits.diagnostics
     level = config.reporting.interval
     lo_q, hi_q = (1 - level) / 2, 1 - (1 - level) / 2
     network_rate = casemix.events / casemix.patients
-    benchmark = network_rate if config.reporting.benchmark == "network" else float(config.reporting.benchmark)
+    fixed = config.reporting.benchmark != "network" and measure.type == "binary"  # a fixed rate applies to binary measures
+    benchmark = float(config.reporting.benchmark) if fixed else network_rate
     rsr = draws.ratio * network_rate
     fitted = pd.DataFrame(
         {
@@ -115,6 +139,7 @@ def summarise_measure(
         tau=(float(np.median(tau_draws)), float(np.quantile(tau_draws, lo_q)), float(np.quantile(tau_draws, hi_q))),
         table=table,
         rsr_draws=pd.DataFrame(rsr[thin(len(rsr), HISTORY_DRAWS)], columns=unit_ids),
+        validation=fits.validation,
     )
 
 
@@ -167,7 +192,16 @@ def results_json(table: pd.DataFrame, results: list[MeasureResult], about: dict)
             "events": r.casemix.events,
             "network_rate": r.network_rate,
             "benchmark": r.benchmark,
+            "type": r.measure.type,
+            "casemix_family": r.casemix.family,
             "c_statistic": r.casemix.c_statistic,
+            "validation": None if r.validation is None else {
+                "folds": r.validation.folds,
+                "in_sample": r.validation.in_sample.values,
+                "cross_validated": None if r.validation.cross_validated is None else r.validation.cross_validated.values,
+            },
+            "excluded_patients": (r.casemix.exclusions or {}).get("dropped_rows", 0),
+            "imputed_patients": (r.casemix.exclusions or {}).get("imputed_rows", 0),
             "between_unit_sd": dict(zip(["median", "lower", "upper"], r.tau)),
             "diagnostics": {
                 "rhat_max": r.diagnostics.rhat_max,
@@ -178,7 +212,16 @@ def results_json(table: pd.DataFrame, results: list[MeasureResult], about: dict)
         for r in results
     ]
     rows = [{k: _clean(v) for k, v in row.items()} for row in table.to_dict(orient="records")]
-    return json.dumps({"about": about, "measures": measures, "results": rows}, indent=2, ensure_ascii=False)
+    return json.dumps(_plain({"about": about, "measures": measures, "results": rows}), indent=2, ensure_ascii=False, allow_nan=False)
+
+
+def _plain(value):
+    """JSON-safe copy: NaN becomes null, numpy numbers become Python numbers."""
+    if isinstance(value, dict):
+        return {k: _plain(v) for k, v in value.items()}
+    if isinstance(value, (list, tuple)):
+        return [_plain(v) for v in value]
+    return _clean(value)
 
 
 # Meaning of every downloadable column (shown on the downloads page).

@@ -1,4 +1,4 @@
-"""Shrinkage fit: a hierarchical logistic model with one random intercept per unit.
+"""Shrinkage fit: a hierarchical model with one random intercept per unit.
 
 Spec, build, run (three steps, each testable alone):
 
@@ -14,6 +14,20 @@ Model (binary measure; patient j in unit i, case-mix linear risk x_ij from the c
 
 Patients of one unit with the same linear risk are pooled into one binomial cell, which
 changes no likelihood value (the binomial is the sum of its Bernoullis).
+
+The same random-intercept structure serves the other likelihoods (the ``LIKELIHOODS`` table),
+each written through exact per-unit sufficient statistics, so cost grows with units, not
+patients:
+
+* ``poisson`` (unit-level input): observed events O_i ~ Poisson(E_i exp(mu + u_i)), with the
+  supplied expected events E_i as the offset;
+* ``gamma`` (continuous, log link): y_ij ~ Gamma(shape k, mean exp(c + x_ij + mu + u_i)); the
+  likelihood depends on the data only through n_i, sum_j y_ij exp(-(c + x_ij)) and
+  sum_j (log y_ij - c - x_ij);
+* ``lognormal``: log y_ij - c - x_ij ~ Normal(mu + u_i, sigma); sufficient statistics n_i and
+  the sum and sum of squares of those residuals.
+
+For all three the predicted-over-expected ratio of a unit is exactly exp(u_i).
 
 Per unit the risk-standardised rate (Krumholz et al. 2006, Circulation 113:1683; Normand &
 Shahian 2007, Statistical Science 22:206) is, draw by draw,
@@ -39,10 +53,19 @@ PRIORS: dict[str, tuple[str, dict[str, float]]] = {
     "mu": ("Normal", {"mu": 0.0, "sigma": 1.0}),
     "tau": ("HalfNormal", {"sigma": 1.0}),
 }
+# Likelihoods: name -> (what it models, extra priors for its own parameters).
+LIKELIHOODS: dict[str, tuple[str, dict[str, tuple[str, dict[str, float]]]]] = {
+    "binomial": ("binary outcomes per patient, pooled into (unit, risk) cells", {}),
+    "poisson": ("observed events per unit, with the supplied expected events as offset", {}),
+    "gamma": ("a positive outcome per patient, Gamma with log link", {"shape": ("HalfNormal", {"sigma": 5.0})}),
+    "lognormal": ("a positive outcome per patient, normal on the log scale", {"sigma": ("HalfNormal", {"sigma": 1.0})}),
+}
 
-# Diagnostic limits (Vehtari et al. 2021, Bayesian Analysis 16:667: R-hat below 1.01 and a
-# bulk effective sample size of at least 100 per chain; divergences must be absent).
-LIMITS = {"rhat_max": 1.01, "ess_bulk_per_chain_min": 100, "divergences_max": 0}
+# Diagnostic limits (Vehtari et al. 2021, Bayesian Analysis 16:667: R-hat below 1.01 and bulk
+# and tail effective sample sizes of at least 100 per chain; divergences must be absent; an
+# E-BFMI below 0.3 flags poor exploration of the energy distribution (Betancourt 2016,
+# arXiv:1604.00695; the 0.3 threshold is common practice, no source)).
+LIMITS = {"rhat_max": 1.01, "ess_bulk_per_chain_min": 100, "ess_tail_per_chain_min": 100, "divergences_max": 0, "bfmi_min": 0.3}
 LOW_RANK_MAX_UNITS = 1000  # nutpie's low-rank mass matrix up to this many units, diagonal above
 
 
@@ -60,15 +83,21 @@ class ShrinkageSpec:
 
     priors: dict[str, tuple[str, dict[str, float]]] = field(default_factory=lambda: dict(PRIORS))
     pooling: str = "partial"
+    likelihood: str = "binomial"
 
     def __post_init__(self) -> None:
         if self.pooling not in POOLING:
             raise ValueError(f"pooling must be one of {', '.join(POOLING)}; got {self.pooling!r}")
+        if self.likelihood not in LIKELIHOODS:
+            raise ValueError(f"likelihood must be one of {', '.join(LIKELIHOODS)}; got {self.likelihood!r}")
+        for name, prior in LIKELIHOODS[self.likelihood][1].items():
+            self.priors.setdefault(name, prior)
 
     @property
     def sampled(self) -> list[str]:
         """Names of the sampled parameters (the ones diagnostics are computed on)."""
-        return ["mu", "tau", "z"] if self.pooling == "partial" else ["a"]
+        own = list(LIKELIHOODS[self.likelihood][1])
+        return (["mu", "tau", "z"] if self.pooling == "partial" else ["a"]) + own
 
     def describe(self) -> list[str]:
         """One line per prior, in the notation of the methods page."""
@@ -80,10 +109,11 @@ class Cells:
     """Patients pooled by (unit, linear risk): the exact sufficient statistics of the fit."""
 
     unit: np.ndarray  # unit code 0..n_units-1
-    offset: np.ndarray  # calibrated intercept + linear risk
+    offset: np.ndarray  # calibrated intercept + linear risk (binomial), log expected events (poisson), 0 otherwise
     n: np.ndarray  # patients in the cell
-    r: np.ndarray  # events in the cell
+    r: np.ndarray  # events (binomial, poisson); gamma: sum y exp(-offset); lognormal: sum of log residuals
     n_units: int
+    q: np.ndarray | None = None  # gamma: sum of (log y - offset); lognormal: sum of squared log residuals
 
     @classmethod
     def from_patients(cls, unit_codes: np.ndarray, offset: np.ndarray, y: np.ndarray, n_units: int) -> "Cells":
@@ -97,8 +127,31 @@ class Cells:
             n_units=n_units,
         )
 
+    @classmethod
+    def from_units(cls, unit_codes: np.ndarray, observed: np.ndarray, expected: np.ndarray, n_units: int) -> "Cells":
+        """Unit-level input: one Poisson cell per unit with log(expected) as its offset."""
+        order = np.argsort(unit_codes)
+        return cls(unit=np.asarray(unit_codes, np.int64)[order], offset=np.log(np.asarray(expected, float))[order],
+                   n=np.ones(len(order)), r=np.asarray(observed, float)[order], n_units=n_units)
+
+    @classmethod
+    def from_continuous(cls, unit_codes: np.ndarray, offset: np.ndarray, y: np.ndarray, n_units: int, likelihood: str) -> "Cells":
+        """Per-unit sufficient statistics of a positive outcome (gamma or lognormal)."""
+        frame = pd.DataFrame({"unit": unit_codes, "n": 1.0})
+        if likelihood == "gamma":
+            frame["r"], frame["q"] = y * np.exp(-offset), np.log(y) - offset
+        else:
+            d = np.log(y) - offset
+            frame["r"], frame["q"] = d, d * d
+        sums = frame.groupby("unit", sort=True).sum()
+        return cls(unit=sums.index.to_numpy(np.int64), offset=np.zeros(len(sums)), n=sums["n"].to_numpy(float),
+                   r=sums["r"].to_numpy(float), n_units=n_units, q=sums["q"].to_numpy(float))
+
     def data(self) -> dict[str, np.ndarray]:
-        return {"unit": self.unit, "offset": self.offset, "n": self.n, "r": self.r}
+        out = {"unit": self.unit, "offset": self.offset, "n": self.n, "r": self.r}
+        if self.q is not None:
+            out["q"] = self.q
+        return out
 
 
 def build_model(spec: ShrinkageSpec, cells: Cells):
@@ -120,9 +173,24 @@ def build_model(spec: ShrinkageSpec, cells: Cells):
         else:
             a = pm.Logistic("a", 0.0, 1.0, shape=cells.n_units)
             eta = data["offset"] + a[data["unit"]]
-        # Binomial log-likelihood without its constant: r*eta - n*log(1 + exp(eta)).
-        pm.Potential("loglik", pt.sum(data["r"] * eta - data["n"] * pt.softplus(eta)))
+        pm.Potential("loglik", pt.sum(_loglik(spec, prior, data, eta)))
     return model
+
+
+def _loglik(spec: ShrinkageSpec, prior, data: dict, eta):
+    """Per-cell log-likelihood, without terms that are constant in the parameters."""
+    import pytensor.tensor as pt
+
+    n, r = data["n"], data["r"]
+    if spec.likelihood == "binomial":  # r*eta - n*log(1 + exp(eta))
+        return r * eta - n * pt.softplus(eta)
+    if spec.likelihood == "poisson":  # r*eta - exp(eta), eta = log E + mu + u
+        return r * eta - n * pt.exp(eta)
+    if spec.likelihood == "gamma":  # sum over patients of the Gamma(k, k/m) log density, m = exp(offset + eta)
+        k = prior("shape")
+        return n * (k * pt.log(k) - pt.gammaln(k)) + k * data["q"] - k * n * eta - k * r * pt.exp(-eta)
+    sigma = prior("sigma")  # lognormal: residuals d ~ Normal(eta, sigma)
+    return -n * pt.log(sigma) - (data["q"] - 2 * eta * r + n * eta**2) / (2 * sigma**2)
 
 
 @dataclass(frozen=True)
@@ -133,6 +201,9 @@ class Diagnostics:
     chains: int
     draws: int
     seconds: float
+    ess_tail_min: float = float("inf")
+    bfmi_min: float = float("inf")
+    retried: bool = False  # True when the first fit failed its checks and this is the safer refit
 
     def failures(self) -> list[str]:
         out = []
@@ -140,9 +211,20 @@ class Diagnostics:
             out.append(f"largest R-hat {self.rhat_max:.3f} is above {LIMITS['rhat_max']}")
         if not self.ess_bulk_min >= LIMITS["ess_bulk_per_chain_min"] * self.chains:
             out.append(f"smallest bulk ESS {self.ess_bulk_min:.0f} is below {LIMITS['ess_bulk_per_chain_min'] * self.chains}")
+        if not self.ess_tail_min >= LIMITS["ess_tail_per_chain_min"] * self.chains:
+            out.append(f"smallest tail ESS {self.ess_tail_min:.0f} is below {LIMITS['ess_tail_per_chain_min'] * self.chains}")
         if self.divergences > LIMITS["divergences_max"]:
             out.append(f"{self.divergences} divergent transitions")
+        if not self.bfmi_min >= LIMITS["bfmi_min"]:
+            out.append(f"lowest E-BFMI {self.bfmi_min:.2f} is below {LIMITS['bfmi_min']}")
         return out
+
+
+def safer(settings: SamplerSection) -> SamplerSection:
+    """Settings for the one retry after failed checks: twice the warm-up, smaller steps."""
+    from dataclasses import replace
+
+    return replace(settings, tune=settings.tune * 2, target_accept=max(settings.target_accept, 0.99))
 
 
 class Sampler:
@@ -153,11 +235,11 @@ class Sampler:
         self._compiled = None
         self._compiled_units = -1
 
-    def run(self, cells: Cells, seed: int):
+    def run(self, cells: Cells, seed: int, settings: SamplerSection | None = None):
         """Sample the posterior for ``cells``; return (posterior draws, diagnostics)."""
         import arviz as az
 
-        s = self.settings
+        s = settings or self.settings
         start = time.perf_counter()
         with warnings.catch_warnings():
             warnings.simplefilter("ignore")
@@ -187,6 +269,8 @@ class Sampler:
             names = self.spec.sampled
             rhat = az.rhat(idata, var_names=names)
             ess = az.ess(idata, var_names=names, method="bulk")
+            tail = az.ess(idata, var_names=names, method="tail")
+            bfmi = az.bfmi(idata)
         diagnostics = Diagnostics(
             rhat_max=float(max(rhat[v].max() for v in names)),
             ess_bulk_min=float(min(ess[v].min() for v in names)),
@@ -194,8 +278,22 @@ class Sampler:
             chains=s.chains,
             draws=s.draws,
             seconds=time.perf_counter() - start,
+            ess_tail_min=float(min(tail[v].min() for v in names)),
+            bfmi_min=float(np.min(bfmi)),
+            retried=settings is not None,
         )
         return posterior_draws(self.spec, idata.posterior, cells.n_units), diagnostics
+
+    def run_checked(self, cells: Cells, seed: int, measure: str, warn=lambda text: None):
+        """:meth:`run`; if the checks fail, warn and run once more with :func:`safer` settings; then raise."""
+        draws, diagnostics = self.run(cells, seed)
+        if diagnostics.failures():
+            warn(f"{measure}: the shrinkage fit failed its checks ({'; '.join(diagnostics.failures())}); retrying once with "
+                 "twice the warm-up and target acceptance 0.99")
+            draws, diagnostics = self.run(cells, seed + 1_000_003, safer(self.settings))
+            if diagnostics.failures():
+                raise fit_failed(measure, diagnostics)
+        return draws, diagnostics
 
 
 def posterior_draws(spec: ShrinkageSpec, post, n_units: int) -> dict[str, np.ndarray]:
@@ -223,11 +321,15 @@ def thin(n: int, keep: int) -> np.ndarray:
     return np.linspace(0, n - 1, min(n, keep)).round().astype(int)
 
 
-def unit_draws(cells: Cells, draws: dict[str, np.ndarray], max_draws: int = 4000) -> UnitDraws:
-    """Predicted over expected events per unit, draw by draw (the Krumholz ratio P/E)."""
+def unit_draws(cells: Cells, draws: dict[str, np.ndarray], max_draws: int = 4000, likelihood: str = "binomial") -> UnitDraws:
+    """Predicted over expected per unit, draw by draw (the Krumholz ratio P/E; exp(u) for log links)."""
     mu, u = draws["mu"], draws["u"]
     keep = thin(len(mu), max_draws)  # evenly thinned: the summaries need no more
     mu, u = mu[keep], u[keep]
+    if likelihood != "binomial":
+        ratio = np.exp(u)
+        ratio[:, np.setdiff1d(np.arange(cells.n_units), cells.unit)] = np.nan  # units without data have no ratio
+        return UnitDraws(ratio=ratio, effect=u)
     ratio = np.full(u.shape, np.nan)
     order = np.argsort(cells.unit, kind="stable")
     bounds = np.searchsorted(cells.unit[order], np.arange(cells.n_units + 1))
@@ -246,6 +348,6 @@ def unit_draws(cells: Cells, draws: dict[str, np.ndarray], max_draws: int = 4000
 def fit_failed(measure: str, diagnostics: Diagnostics) -> FitError:
     reasons = "; ".join(diagnostics.failures())
     return FitError(
-        f"measure '{measure}': the shrinkage fit did not pass its checks ({reasons}). Nothing was published. "
-        "Try more warm-up draws ([sampler].tune) or a higher [sampler].target_accept, then run the cycle again."
+        f"measure '{measure}': the shrinkage fit did not pass its checks ({reasons}){', also on the retry with safer settings' if diagnostics.retried else ''}. "
+        "Nothing was published. Try more warm-up draws ([sampler].tune) or a higher [sampler].target_accept, then run the cycle again."
     )

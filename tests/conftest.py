@@ -108,6 +108,13 @@ name = "Readmission"
 definition = "Readmitted within 30 days."
 outcome = "readmit30"
 casemix = "C(age_band) + emergency + frailty"
+
+[[measures]]
+key = "death30"
+name = "Death"
+definition = "Died within 30 days."
+outcome = "death30"
+expected_column = "vendor_risk"
 """
 
 
@@ -124,7 +131,7 @@ def hostile_cycle(tmp_path_factory):
     from pipeline.demo import invent_network
 
     folder = tmp_path_factory.mktemp("hostile")
-    units, cohort, _ = invent_network(seed=3, n_units=16, smallest=10, largest=500)
+    units, cohort, *_ = invent_network(seed=3, n_units=16, smallest=10, largest=500)
     for i, name in HOSTILE_NAMES.items():
         units.loc[i, "name"] = name
     n = len(cohort)
@@ -136,6 +143,8 @@ def hostile_cycle(tmp_path_factory):
     cohort["frailty"] = np.round(rng.normal(0, 1, n), 9) + np.arange(n) * 1e-9
     markers = {c: list(cohort[c]) for c in ("stay_id", "patient_name", "date_of_birth", "phone")}
     markers["frailty"] = [f"{v:.9f}" for v in cohort["frailty"]]
+    # A risk supplied by an (invented) model fitted elsewhere, used as the expected value itself.
+    cohort["vendor_risk"] = np.round(1 / (1 + np.exp(5.0 - 1.0 * cohort["emergency"] - 0.5 * (cohort["age_band"] == "85+"))), 4)
     units.to_csv(folder / "units.csv", index=False)
     cohort.to_csv(folder / "cohort.csv", index=False, float_format="%.9f")
     (folder / "cycle.toml").write_text(HOSTILE_CONFIG)

@@ -110,3 +110,97 @@ def test_block_newton_solver_gives_statsmodels_estimates_for_many_units(monkeypa
     monkeypatch.setattr("pipeline.casemix.DENSE_LIMIT", 0)
     no_terms = fit_casemix(_measure("1"), rows, unit)
     assert len(no_terms.coefficients) == 0 and no_terms.expected.sum() == pytest.approx(rows["y"].sum())
+
+
+def _stays(rng, n_units=12, per_unit=150):
+    unit = np.repeat(np.arange(n_units), per_unit)
+    x = rng.normal(size=len(unit))
+    mean = np.exp(1.5 + 0.3 * x + rng.normal(0, 0.2, n_units)[unit])
+    return pd.DataFrame({"x": x, "los": rng.gamma(2.0, mean / 2.0)}), unit
+
+
+def _continuous(family: str, casemix: str = "x") -> MeasureSection:
+    return MeasureSection(key="los", name="Stay", definition="d", outcome="los", type="continuous", family=family, unit_label="days", casemix=casemix)
+
+
+def test_gamma_within_unit_fit_matches_statsmodels_gamma_glm_with_unit_dummies():
+    import statsmodels.api as sm  # reference: statsmodels GLM, Gamma family, log link, Pearson scale
+
+    rng = np.random.default_rng(12)
+    rows, unit = _stays(rng)
+    fit = fit_casemix(_continuous("gamma"), rows, unit)
+    exog = np.column_stack([np.ones(len(rows)), rows["x"], (unit[:, None] == np.arange(1, 12)).astype(float)])
+    ref = sm.GLM(rows["los"], exog, family=sm.families.Gamma(sm.families.links.Log())).fit()
+    assert fit.coefficients.loc["x", "estimate"] == pytest.approx(ref.params.iloc[1], abs=1e-7)
+    assert fit.coefficients.loc["x", "std_error"] == pytest.approx(ref.bse.iloc[1], rel=1e-4)
+    assert fit.expected.sum() == pytest.approx(rows["los"].sum(), rel=1e-9)  # calibration-in-the-large
+
+
+def test_lognormal_fit_matches_least_squares_with_unit_dummies_and_duan_smearing():
+    import statsmodels.api as sm  # reference: statsmodels OLS
+
+    rng = np.random.default_rng(13)
+    rows, unit = _stays(rng)
+    fit = fit_casemix(_continuous("lognormal"), rows, unit)
+    exog = np.column_stack([np.ones(len(rows)), rows["x"], (unit[:, None] == np.arange(1, 12)).astype(float)])
+    ref = sm.OLS(np.log(rows["los"]), exog).fit()
+    assert fit.coefficients.loc["x", "estimate"] == pytest.approx(ref.params.iloc[1], abs=1e-9)
+    assert fit.coefficients.loc["x", "std_error"] == pytest.approx(ref.bse.iloc[1], rel=1e-9)
+    # Duan (1983): smearing factor = mean of exp(residual) around the network intercept.
+    resid = np.log(rows["los"]) - fit.intercept - fit.linear
+    assert fit.smearing == pytest.approx(np.mean(np.exp(resid)))
+    assert fit.smearing > 1.0
+    assert fit.expected == pytest.approx(np.exp(fit.intercept + fit.linear) * fit.smearing)
+
+
+def test_missing_values_follow_the_policy_and_are_counted():
+    rng = np.random.default_rng(3)
+    rows, unit = _network(rng, n_units=4, per_unit=200, confounded=False)
+    rows.loc[[3, 10, 450], "x"] = np.nan
+    rows.loc[[10, 700], "sex"] = None
+    dropped = fit_casemix(MeasureSection(key="m", name="M", definition="d", outcome="y", casemix="x + C(sex)", missing="drop"), rows, unit)
+    assert dropped.patients == 800 - 4 and dropped.used.sum() == 796
+    assert dropped.exclusions["dropped"] == {"x": 3, "sex": 2} and dropped.exclusions["dropped_rows"] == 4
+    assert dropped.exclusions["by_unit"] == {0: 2, 2: 1, 3: 1}
+    imputed = fit_casemix(MeasureSection(key="m", name="M", definition="d", outcome="y", casemix="x + C(sex)", missing="impute"), rows, unit)
+    assert imputed.patients == 800 and imputed.exclusions["imputed"] == {"x": 3, "sex": 2} and imputed.exclusions["imputed_rows"] == 4
+
+
+def test_design_problems_are_explained_in_words():
+    rng = np.random.default_rng(6)
+    rows, unit = _network(rng, n_units=3, per_unit=200, confounded=False)
+    rows["rare"] = 0
+    rows.loc[:4, "rare"] = 1
+    rows.loc[:4, "y"] = 0  # nobody with the rare condition had the outcome
+    with pytest.raises(FitError, match=r"none of the 5 patients with 'rare' had the outcome \(perfect separation\)"):
+        fit_casemix(_measure("x + rare"), rows, unit)
+    rows["x_again"] = 2 * rows["x"] + 1
+    with pytest.raises(FitError, match=r"the terms 'x', 'x_again' carry the same information"):
+        fit_casemix(_measure("x + x_again"), rows, unit)
+    rows["band"] = pd.Categorical(np.where(rows["x"] > 0, "high", "low"), categories=["high", "low", "none"])
+    with pytest.raises(FitError, match=r"'C\(band\)\[T.none\]' has no patients \(an empty category\)"):
+        fit_casemix(_measure("C(band)"), rows, unit)
+    rows["flat"] = 7.0
+    with pytest.raises(FitError, match=r"'flat' is the same for every patient"):
+        fit_casemix(_measure("x + flat"), rows, unit)
+    rows["x_close"] = rows["x"] + rng.normal(0, 0.1, len(rows))
+    fit = fit_casemix(_measure("x + x_close"), rows, unit)
+    assert len(fit.warnings) == 1 and "are almost the same (correlation 0.99" in fit.warnings[0]
+
+
+def test_formula_terms_splines_interactions_and_supplied_risk():
+    from pipeline.casemix import without_terms
+
+    rng = np.random.default_rng(7)
+    rows, unit = _network(rng, n_units=5, per_unit=300, confounded=False)
+    rows["z"] = rng.normal(size=len(rows))
+    fit = fit_casemix(_measure("bs(x, df=4) + C(sex) * z"), rows, unit)
+    assert list(fit.coefficients.index) == ["C(sex)[T.M]", *[f"bs(x, df=4)[{i}]" for i in range(4)], "z", "C(sex)[T.M]:z"]
+    with pytest.raises(FitError, match="carry the same information"):  # a spline basis already holds the straight line
+        fit_casemix(_measure("bs(x, df=4) + x:C(sex)"), rows, unit)
+    assert without_terms("C(age) + x * dep + bs(z, df=3)", ("dep",)) == "C(age) + x + bs(z, df=3)"
+    rows["risk"] = expit(-2 + 0.8 * rows["x"])
+    supplied = fit_casemix(MeasureSection(key="m", name="M", definition="d", outcome="y", expected_column="risk"), rows, unit)
+    assert supplied.family == "supplied" and supplied.expected == pytest.approx(rows["risk"].to_numpy())
+    as_covariate = fit_casemix(_measure("logit(risk)"), rows, unit)
+    assert as_covariate.coefficients.loc["logit(risk)", "estimate"] == pytest.approx(1.0, abs=0.15)

@@ -39,7 +39,7 @@ def test_every_problem_is_reported_at_once_with_hints(tmp_path):
         "reporting.minimum_case: unknown key. Did you mean 'minimum_cases'? Allowed: benchmark, interval, minimum_cases.",
         "reporting.interval: must be strictly between 0.5 and 1; got 1.5",
         "sampler.chians: unknown key. Did you mean 'chains'? Allowed: chains, cores, draws, engine, seed, target_accept, tune.",
-        "measures[0].type: 'binari' is not an outcome type fairgauge fits. Allowed: binary. Did you mean 'binary'?",
+        "measures[0].type: 'binari' is not an outcome type fairgauge fits. Allowed: binary, continuous. Did you mean 'binary'?",
     ]
     assert "6 problem(s) in the cycle config; no data were read" in str(caught.value)
 
@@ -51,7 +51,7 @@ def test_wrong_types_unknown_sections_and_duplicate_measures(tmp_path):
         load_config(tmp_path / "cycle.toml")
     found = [str(p) for p in caught.value.problems]
     assert "sampler.draws: must be a whole number; got str 'many'" in found
-    assert "reportng: unknown section. Did you mean 'reporting'? Allowed: cycle, inputs, measures, reporting, sampler." in found
+    assert "reportng: unknown section. Did you mean 'reporting'? Allowed: cycle, inputs, measures, reporting, sampler, validation." in found
     assert "measures[1].key: 'readmit' is already used by measures[0]; keys must be unique" in found
 
 

@@ -21,10 +21,11 @@ def test_bad_input_gives_exact_message(scenario, tmp_path):
     for f in (SCENARIOS / scenario).iterdir():
         shutil.copy(f, tmp_path / f.name)
     cohort_file = "cohort.parquet" if (tmp_path / "cohort.parquet").exists() else "cohort.csv"
-    (tmp_path / "cycle.toml").write_text(BASE_CONFIG.replace('"cohort.csv"', f'"{cohort_file}"'))
+    if not (SCENARIOS / scenario / "cycle.toml").exists():  # a scenario may bring its own config
+        (tmp_path / "cycle.toml").write_text(BASE_CONFIG.replace('"cohort.csv"', f'"{cohort_file}"'))
     config = load_config(tmp_path / "cycle.toml")
     expected = (SCENARIOS / scenario / "expected.txt").read_text().strip().format(
-        cohort=tmp_path / cohort_file, units=tmp_path / "units.csv"
+        cohort=tmp_path / cohort_file, units=tmp_path / "units.csv", summary=tmp_path / "summary.csv"
     )
     with pytest.raises(InputError) as caught:
         load_cohort(config)

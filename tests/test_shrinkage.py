@@ -94,3 +94,21 @@ def test_no_pooling_reproduces_the_exact_beta_posterior(engine):
             # Monte Carlo tolerance: about 4 standard errors of a quantile from ~2,000 effective draws.
             se = np.sqrt(q * (1 - q) / 2000) / exact.pdf(exact.ppf(q))
             assert abs(np.quantile(rate[:, i], q) - exact.ppf(q)) < 4 * se, (i, q)
+
+
+def test_a_failed_fit_is_retried_once_with_safer_settings(monkeypatch):
+    settings = SamplerSection(chains=4, draws=1000, tune=500, target_accept=0.9)
+    sampler = Sampler(ShrinkageSpec(), settings)
+    bad = Diagnostics(rhat_max=1.05, ess_bulk_min=900, divergences=2, chains=4, draws=1000, seconds=1.0)
+    good = Diagnostics(rhat_max=1.001, ess_bulk_min=900, divergences=0, chains=4, draws=1000, seconds=1.0, retried=True)
+    calls, warned = [], []
+    monkeypatch.setattr(Sampler, "run", lambda self, cells, seed, s=None: (calls.append((seed, s)), ({"ok": s is not None}, good if s else bad))[1])
+    draws, diagnostics = sampler.run_checked(cells=None, seed=5, measure="m", warn=warned.append)
+    assert draws == {"ok": True} and diagnostics.retried
+    assert calls[0] == (5, None) and (calls[1][1].tune, calls[1][1].target_accept) == (1000, 0.99)
+    assert len(warned) == 1 and "retrying once" in warned[0] and "2 divergent transitions" in warned[0]
+
+
+def test_tail_ess_and_energy_checks_are_named():
+    d = Diagnostics(rhat_max=1.0, ess_bulk_min=900, divergences=0, chains=4, draws=1000, seconds=1.0, ess_tail_min=200, bfmi_min=0.2)
+    assert d.failures() == ["smallest tail ESS 200 is below 400", "lowest E-BFMI 0.20 is below 0.3"]
