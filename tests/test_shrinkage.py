@@ -14,7 +14,7 @@ from pipeline.shrinkage import Cells, Diagnostics, Sampler, ShrinkageSpec, build
 def test_spec_is_plain_and_printable():
     spec = ShrinkageSpec()
     assert spec.describe() == ["mu ~ Normal(mu=0, sigma=1)", "tau ~ HalfNormal(sigma=1)"]
-    assert spec.sampled == ["mu", "tau", "z"]
+    assert spec.sampled == ["mu", "tau", "v"]
     assert ShrinkageSpec(pooling="none").sampled == ["a"]
     with pytest.raises(ValueError, match="pooling must be one of partial, none"):
         ShrinkageSpec(pooling="some")
@@ -36,26 +36,56 @@ def test_cells_keep_every_patient_and_event():
     assert np.bincount(cells.unit, weights=cells.n).tolist() == np.bincount(unit, minlength=5).tolist()
 
 
-def test_pooled_cells_give_the_per_patient_bernoulli_likelihood():
-    """Cell pooling changes no likelihood difference (built model vs. scipy per patient, no sampling)."""
-    unit, offset, y = _patients()
-    model = build_model(ShrinkageSpec(), Cells.from_patients(unit, offset, y, 5))
-    assert sorted(v.name for v in model.free_RVs) == ["mu", "tau", "z"]
+@pytest.mark.parametrize("seed", [4, 8])
+def test_model_gives_the_per_patient_bernoulli_likelihood(seed, monkeypatch):
+    """Cells, unit curves and the parameterisation change no log-density difference (vs. scipy per patient, no sampling)."""
+    from pipeline.shrinkage import model_data
+
+    monkeypatch.setattr("pipeline.shrinkage.CENTRE_BELOW", 1.2)  # so that both parameterisations occur here
+    unit, offset, y = _patients(seed)
+    unit[:150] = 0  # one unit with many patients, so both parameterisations occur
+    cells = Cells.from_patients(unit, offset, y, 5)
+    data, _ = model_data(ShrinkageSpec(), cells)
+    centred = data["centred"].astype(bool)
+    assert centred.any() and not centred.all()
+    model = build_model(ShrinkageSpec(), cells)
+    assert sorted(v.name for v in model.free_RVs) == ["mu", "tau", "v"]
     logp = model.compile_logp()
     rng = np.random.default_rng(0)
 
-    def point(mu, tau, z):
-        return {"mu": mu, "tau_log__": np.log(tau), "z": z}
+    def point(mu, tau, v):
+        return {"mu": mu, "tau_log__": np.log(tau), "v": v}
 
-    def reference(mu, tau, z):
-        eta = offset + mu + tau * z[unit]
-        loglik = stats.bernoulli.logpmf(y, expit(eta)).sum()
-        prior = stats.norm.logpdf(mu, 0, 1) + stats.halfnorm.logpdf(tau, scale=1) + np.log(tau) + stats.norm.logpdf(z).sum()
+    def reference(mu, tau, v):
+        a = np.where(centred, v, mu + tau * v)  # each unit's intercept
+        loglik = stats.bernoulli.logpmf(y, expit(offset + a[unit])).sum()
+        units = np.where(centred, stats.norm.logpdf(v, mu, tau), stats.norm.logpdf(v))
+        prior = stats.norm.logpdf(mu, 0, 1) + stats.halfnorm.logpdf(tau, scale=1) + np.log(tau) + units.sum()
         return loglik + prior
 
-    a = (0.1, 0.4, rng.normal(size=5))
-    b = (-0.3, 0.9, rng.normal(size=5))
-    assert logp(point(*a)) - logp(point(*b)) == pytest.approx(reference(*a) - reference(*b), abs=1e-8)
+    a = (0.1, 0.4, rng.normal(size=5) * 0.5)
+    b = (-0.3, 0.9, rng.normal(size=5) * 0.5)
+    # The unit curves are a degree-32 series: agreement to 1e-6 (curves.py, measured).
+    assert logp(point(*a)) - logp(point(*b)) == pytest.approx(reference(*a) - reference(*b), abs=1e-6)
+
+
+def test_unit_curves_match_the_exact_likelihood_and_ratio():
+    from pipeline.curves import build_curves, curve_values, max_error
+
+    rng = np.random.default_rng(5)
+    unit = np.repeat(np.arange(30), rng.integers(1, 3000, 30))
+    offset = rng.normal(-2.0, 1.0, len(unit))
+    y = (rng.random(len(unit)) < expit(offset)).astype(float)
+    ones = np.ones(len(unit))
+    curves = build_curves(unit, offset, ones, y, 30)
+    assert max_error(unit, offset, ones, y, 30, curves) < 1e-6
+    a = rng.normal(0, 0.5, 30)
+    exact = np.bincount(unit, weights=expit(offset + a[unit]))
+    assert np.exp(curves.log_predicted(a)) == pytest.approx(exact, rel=1e-8)
+    # outside its window a unit's curve continues as a concave quadratic
+    far = curves.centre + 3 * curves.width
+    slope = curve_values(far, curves.coef, curves.centre, curves.width, curves.edges, True)
+    assert np.all(slope < 0)
 
 
 def test_risk_standardised_ratio_on_a_constructed_example():
