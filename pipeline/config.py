@@ -109,7 +109,16 @@ class ReportingSection:
         check=_between(1, 10_000),
     )
     benchmark: str | float = option(
-        "network", doc="\"network\" (the network's observed rate) or a fixed rate between 0 and 1.", check=_benchmark
+        "network", doc="\"network\" (the network's observed rate, or mean for continuous measures) or a fixed rate between 0 "
+        "and 1 (binary measures; continuous measures always use the network mean).", check=_benchmark
+    )
+    grouping: Literal["interval", "probability"] = option(
+        "interval",
+        doc="Rule for the three groups: interval (the credible interval lies wholly on one side of the benchmark) or "
+        "probability (the posterior probability of being on one side is at least grouping_probability).",
+    )
+    grouping_probability: float = option(
+        0.95, doc="Threshold of the probability rule (ignored by the interval rule).", check=_between(0.5, 1, inclusive=False)
     )
 
 

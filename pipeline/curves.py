@@ -61,10 +61,31 @@ def unit_sums(unit: np.ndarray, offset: np.ndarray, n: np.ndarray, r: np.ndarray
     return value, slope, curvature
 
 
+@numba.njit(cache=True, nogil=True)
+def _at_points(unit, offset, n, r, points, shared):
+    """L_i at each unit's own points (units, m) and P_i at the shared points (q,), in one pass over the cells."""
+    k, m = points.shape
+    value = np.zeros((k, m))
+    predicted = np.zeros((k, len(shared)))
+    for j in range(len(unit)):
+        i = unit[j]
+        for c in range(m):
+            eta = offset[j] + points[i, c]
+            soft = eta + np.log1p(np.exp(-eta)) if eta > 0 else np.log1p(np.exp(eta))
+            value[i, c] += r[j] * eta - n[j] * soft
+        for c in range(len(shared)):
+            predicted[i, c] += n[j] / (1.0 + np.exp(-(offset[j] + shared[c])))
+    return value, predicted
+
+
 def build_curves(unit: np.ndarray, offset: np.ndarray, n: np.ndarray, r: np.ndarray, n_units: int) -> Curves:
     """Fit each unit's series at Chebyshev points of a window centred on its (lightly penalised) maximum."""
     sums = lambda a: unit_sums(unit, offset, n, r, n_units, a)  # noqa: E731
-    centre = np.zeros(n_units)
+    cases = np.bincount(unit, weights=n, minlength=n_units)
+    events = np.bincount(unit, weights=r, minlength=n_units)
+    mean_offset = np.bincount(unit, weights=n * offset, minlength=n_units) / np.maximum(cases, 1)
+    p = (events + 0.5) / (cases + 1)
+    centre = np.log(p / (1 - p)) - mean_offset  # a close start: few Newton steps are needed
     for _ in range(100):  # Newton on L_i(a) - a^2/8, finite even for units with no events
         _, slope, curvature = sums(centre)
         step = (slope - centre / 4) / (curvature - 0.25)
@@ -75,12 +96,12 @@ def build_curves(unit: np.ndarray, offset: np.ndarray, n: np.ndarray, r: np.ndar
     se = 1 / np.sqrt(0.25 - curvature)
     width = np.clip(WINDOW_SE * se, 0.5, 8.0)
     nodes = np.cos(np.pi * (np.arange(DEGREE + 1) + 0.5) / (DEGREE + 1))
-    values = np.array([sums(centre + width * x)[0] for x in nodes])
-    coef = np.ascontiguousarray(chebyshev.chebfit(nodes, values, DEGREE).T)
-    edges = np.array([*sums(centre - width), *sums(centre + width)])
     grid = np.cos(np.pi * (np.arange(RATIO_DEGREE + 1) + 0.5) / (RATIO_DEGREE + 1))
-    predicted = np.array([np.bincount(unit, weights=n * expit(offset + RATIO_RANGE * x), minlength=n_units) for x in grid])
-    ratio_coef = chebyshev.chebfit(grid, np.log(np.maximum(predicted, 1e-300)), RATIO_DEGREE)
+    points = centre[:, None] + width[:, None] * nodes[None, :]
+    values, predicted = _at_points(unit.astype(np.int64), offset.astype(float), n.astype(float), r.astype(float), points, RATIO_RANGE * grid)
+    coef = np.ascontiguousarray(chebyshev.chebfit(nodes, values.T, DEGREE).T)
+    edges = np.array([*sums(centre - width), *sums(centre + width)])
+    ratio_coef = chebyshev.chebfit(grid, np.log(np.maximum(predicted.T, 1e-300)), RATIO_DEGREE)
     return Curves(centre, width, coef, edges, ratio_coef, se)
 
 

@@ -34,8 +34,8 @@ from .figures import (
 from .history import PastCycle, past_cycles, record_cycle
 from .pages import render_pages, unit_slugs
 from .render import Renderer, choose_renderer, render_site
-from .results import DICTIONARY, MeasureFits, MeasureResult, public_table, results_json, summarise_measure
-from .shrinkage import Cells, Sampler, ShrinkageSpec, unit_draws
+from .results import DICTIONARY, MeasureFits, MeasureResult, PriorAlternative, public_table, results_json, summarise_measure
+from .shrinkage import SENSITIVITY_SCALES, K_HAT_MAX, Cells, Sampler, ShrinkageSpec, reweight_tau, thin, unit_draws, with_tau_scale
 from .validation import validate
 
 MARKER = "fairgauge-manifest.json"  # every site's provenance; only folders holding it are ever replaced
@@ -169,12 +169,32 @@ def fit_measure(
         f"{measure.key}: sampled in {diagnostics.seconds:.1f} s; R-hat max {diagnostics.rhat_max:.3f}, "
         f"bulk ESS min {diagnostics.ess_bulk_min:.0f}, divergences {diagnostics.divergences}"
     )
+    sensitivity = prior_sensitivity(config, sampler, samplers, cells, draws, seed, likelihood, reporter, measure.key) if casemix_formula is None else ()
     without = None
     if measure.social_risk and casemix_formula is None:
         reduced = without_terms(measure.casemix, measure.social_risk)
         reporter.stage(f"{measure.key}: equity sensitivity: refitting without {', '.join(measure.social_risk)}")
         without = fit_measure(config, cohort, measure, codes, fitted_units, samplers, seed, reporter, casemix_formula=reduced)
-    return MeasureFits(counts, casemix, unit_draws(cells, draws, likelihood=likelihood), draws["tau"], diagnostics, validation, without)
+    return MeasureFits(counts, casemix, unit_draws(cells, draws, likelihood=likelihood), draws["tau"], diagnostics, validation, without, sensitivity)
+
+
+def prior_sensitivity(config, sampler: Sampler, samplers: dict, cells: Cells, draws: dict, seed: int, likelihood: str, reporter: Reporter, key: str) -> tuple:
+    """The posterior under a narrower and a wider tau prior: reweighted draws, or a refit when the weights are unreliable."""
+    out = []
+    tau = draws["tau"][thin(len(draws["tau"]), 4000)]  # the draws unit_draws keeps
+    base = sampler.spec.priors["tau"][1]["sigma"]
+    for scale in SENSITIVITY_SCALES:
+        log_weights, k_hat = reweight_tau(tau, scale * base, base)
+        if k_hat <= K_HAT_MAX:
+            out.append(PriorAlternative(scale * base, k_hat, "reweighted", log_weights, None))
+            continue
+        reporter.stage(f"{key}: prior sensitivity: importance weights unreliable (k-hat {k_hat:.2f}); refitting with tau ~ HalfNormal({scale * base:g})")
+        name = f"{likelihood}-tau{scale}"
+        if name not in samplers:
+            samplers[name] = Sampler(with_tau_scale(sampler.spec, scale * base), config.sampler, engine=config.sampler.engine)
+        refit, _ = samplers[name].run_checked(cells, seed, key, reporter.warn)
+        out.append(PriorAlternative(scale * base, k_hat, "refitted", None, unit_draws(cells, refit, likelihood=likelihood)))
+    return tuple(out)
 
 
 def about(config: CycleConfig, cohort: Cohort, renderer: Renderer, results: list[MeasureResult]) -> dict:

@@ -20,8 +20,8 @@ from .config import CycleConfig
 from .figures import measure_figure_path, unit_figure_path
 from .history import PastCycle, changes
 from .report import model_view
-from .results import POSITION, STATUS, MeasureResult
-from .shrinkage import LIMITS, ShrinkageSpec
+from .results import GROUPS, POSITION, STATUS, MeasureResult
+from .shrinkage import K_HAT_MAX, LIMITS, ShrinkageSpec
 
 _MD_SPECIAL = set("\\`*_{}[]()#+-.!|~^$@:\"'")
 _ENTITIES = {"&": "&amp;", "<": "&lt;", ">": "&gt;"}
@@ -109,6 +109,7 @@ def natural_frequency(rate: float) -> str:
 
 
 SYMBOLS = {"above": "▲", "spans": "●", "below": "▼", "": ""}
+GROUP_SYMBOLS = {"better": "+", "typical": "=", "worse": "−", "": ""}  # our own marks; the words are always shown too
 # Words that differ between rate measures and mean measures (column heads, sentences).
 WORDS = {
     "binary": {"raw": "Raw rate", "adjusted": "Adjusted rate", "network": "Network rate", "events": "Events",
@@ -138,6 +139,12 @@ class Cell:
     position_words: str
     symbol: str
     sentence: str
+    group: str = ""
+    group_words: str = ""
+    group_symbol: str = ""
+    rank: str = ""
+    weight: str = ""
+    other_side: str = ""
 
 
 @dataclass(frozen=True)
@@ -164,6 +171,7 @@ class MeasureView:
     ess: str
     divergences: int
     coefficients: list[dict[str, str]]
+    sensitivity: list[dict[str, str]] = field(default_factory=list)
     rows: list[dict] = field(default_factory=list)  # unit name, href, Cell
 
 
@@ -187,6 +195,23 @@ def _sentence(name: str, m: MeasureResult, row: pd.Series, level: str, min_cases
             "This unit's numbers are withheld so that a smaller unit's numbers cannot be worked out "
             "by subtracting the published numbers from the network totals."
         )
+    return _estimate_sentence(name, m, row, level) + " " + _group_sentence(m, row)
+
+
+def _group_sentence(m: MeasureResult, row: pd.Series) -> str:
+    """The unit's group, how sure we are of it, its rank and how much rests on its own patients."""
+    group, other = row["group"], chance(row["prob_other_side"])
+    if group == "typical":
+        text = f"It is {GROUPS['typical'].lower()}: the data cannot tell it apart from the benchmark."
+    else:
+        text = f"It {GROUPS[group].lower()} than the benchmark; the chance that it is really on the other side is {other}."
+    text += f" Among the {int(m.table['status'].eq('reported').sum())} units reported, its rank is probably between {row['rank_lower']:.0f} and {row['rank_upper']:.0f} (1 = best)."
+    if pd.notna(row["own_weight"]):
+        text += f" About {row['own_weight'] * 100:.0f}% of this estimate rests on the unit's own patients and the rest on the network."
+    return text
+
+
+def _estimate_sentence(name: str, m: MeasureResult, row: pd.Series, level: str) -> str:
     if m.measure.type == "continuous":
         return (
             f"After allowing for how ill its patients were, the average at {name} is about {value(m.measure, row['rsr_median'])} "
@@ -220,6 +245,12 @@ def _cell(m: MeasureResult, row: pd.Series, level: str, min_cases: int) -> Cell:
         position_words=POSITION.get(row["position"], STATUS[row["status"]]),
         symbol=SYMBOLS[row["position"]],
         sentence=_sentence(md(row["unit_name"]), m, row, level, min_cases),
+        group=row["group"] if reported else "",
+        group_words=GROUPS.get(row["group"], STATUS[row["status"]]) if reported else STATUS[row["status"]],
+        group_symbol=GROUP_SYMBOLS.get(row["group"], "") if reported else "",
+        rank=show(f"{row['rank_median']:.0f} ({row['rank_lower']:.0f} to {row['rank_upper']:.0f})") if reported else "",
+        weight=show(f"{row['own_weight'] * 100:.0f}%") if reported and pd.notna(row["own_weight"]) else "",
+        other_side=show(chance(row["prob_other_side"])) if reported else "",
     )
 
 
@@ -252,6 +283,12 @@ def views(
             units_in_fit=m.casemix.units_in_fit, formula=code(m.casemix.formula),
             tau=f"{num(m.tau[0])} ({num(m.tau[1])} to {num(m.tau[2])})", rhat=num(d.rhat_max, 3), ess=f"{d.ess_bulk_min:,.0f}",
             divergences=d.divergences, coefficients=coefs,
+            sensitivity=[
+                {"prior": f"HalfNormal({alt['scale']:g})", "method": f"{alt['method']} (k-hat {alt['k_hat']:.2f})",
+                 "changed": "; ".join(f"{md(name)}: {GROUPS[a].lower()} → {GROUPS[b].lower()}" for name, a, b in alt["changed"]) or "none",
+                 "count": str(len(alt["changed"]))}
+                for alt in m.sensitivity
+            ],
         )
         ordered = m.table.sort_values(["status", "rsr_median"], key=lambda s: s.map({"reported": 0, "too_few": 1, "withheld": 2, "no_cases": 3}) if s.name == "status" else s)
         for _, row in ordered.iterrows():
@@ -335,6 +372,7 @@ def render_pages(
         "cycle": config.cycle, "site": site, "measures": measures, "units": unit_views, "limits": LIMITS,
         "priors": ShrinkageSpec().describe(), "reporting": config.reporting, "sampler": config.sampler, "validation": config.validation,
         "level": f"{config.reporting.interval * 100:g}%", "positions": POSITION, "symbols": SYMBOLS,
+        "groups": GROUPS, "group_symbols": GROUP_SYMBOLS, "k_hat_max": K_HAT_MAX,
     }
     pages = [
         ("index.qmd", "index.qmd.j2", {}),

@@ -31,13 +31,20 @@ POSITION = {
     "spans": "Interval spans the benchmark",
     "below": "Interval sits below the benchmark",
 }
-PUBLIC_COLUMNS = [
-    "measure", "unit_id", "unit_name", "unit_kind", "status", "cases", "observed", "expected", "raw_rate",
-    "oe_ratio", "rsr_median", "rsr_lower", "rsr_upper", "ratio_median", "ratio_lower", "ratio_upper",
-    "prob_above_benchmark", "position",
+# The three groups, in our own words; the rule that assigns them is [reporting].grouping.
+GROUPS = {
+    "better": "Stands out as better",
+    "typical": "In line with the benchmark",
+    "worse": "Stands out as worse",
+}
+NUMERIC_PUBLIC = [
+    "cases", "observed", "expected", "raw_rate", "oe_ratio", "rsr_median", "rsr_lower", "rsr_upper", "ratio_median",
+    "ratio_lower", "ratio_upper", "prob_above_benchmark", "prob_below_benchmark", "rank_median", "rank_lower", "rank_upper",
+    "own_weight", "prob_other_side",
 ]
-NUMERIC_PUBLIC = PUBLIC_COLUMNS[5:-1]
+PUBLIC_COLUMNS = ["measure", "unit_id", "unit_name", "unit_kind", "status", *NUMERIC_PUBLIC, "position", "group"]
 HISTORY_DRAWS = 1000  # draws kept per unit for comparing cycles
+RANK_DRAWS = 1000  # draws used for ranks
 
 
 @dataclass(frozen=True)
@@ -51,7 +58,18 @@ class MeasureFits:
     diagnostics: Diagnostics
     validation: Validation | None  # None for unit-level input
     without_social_risk: "MeasureFits | None" = None  # the equity sensitivity refit
+    sensitivity: tuple = ()  # PriorAlternative per alternative between-unit prior
 
+
+@dataclass(frozen=True)
+class PriorAlternative:
+    """The posterior under another prior for tau: importance weights on the same draws, or a refit."""
+
+    scale: float  # HalfNormal scale of tau in the alternative
+    k_hat: float  # Pareto k of the smoothed importance weights (Vehtari et al. 2024, JMLR 25:72)
+    method: str  # "reweighted" or "refitted" (when k_hat > 0.7)
+    log_weights: np.ndarray | None  # per kept draw, normalised (reweighted)
+    draws: UnitDraws | None  # refitted
 
 @dataclass(frozen=True)
 class MeasureResult:
@@ -67,6 +85,7 @@ class MeasureResult:
     rsr_draws: pd.DataFrame  # thinned posterior draws of the risk-standardised rate, one column per fitted unit
     validation: Validation | None = None
     equity: pd.DataFrame | None = None  # reported units: position with and without the social-risk factors
+    sensitivity: tuple = ()  # per alternative prior: {"scale", "k_hat", "method", "changed": [(unit, group now, group then)]}
 
 
 def summarise_measure(
@@ -110,6 +129,7 @@ def _summarise(config: CycleConfig, measure: MeasureSection, units: pd.DataFrame
             "rsr_lower": np.quantile(rsr, lo_q, axis=0),
             "rsr_upper": np.quantile(rsr, hi_q, axis=0),
             "prob_above_benchmark": (rsr > benchmark).mean(axis=0),
+            "prob_below_benchmark": (rsr < benchmark).mean(axis=0),
             "effect_median": np.median(draws.effect, axis=0),
             "effect_lower": np.quantile(draws.effect, lo_q, axis=0),
             "effect_upper": np.quantile(draws.effect, hi_q, axis=0),
@@ -130,6 +150,31 @@ def _summarise(config: CycleConfig, measure: MeasureSection, units: pd.DataFrame
     )
     withhold_complement(table, config.reporting.minimum_cases)
     table.loc[table["status"] != "reported", "position"] = ""
+    reported = table.loc[table["status"] == "reported", "unit_id"].to_numpy()
+    position_of = {u: i for i, u in enumerate(unit_ids)}
+    columns = np.array([position_of[u] for u in reported], dtype=int)
+    rule = (config.reporting.grouping, config.reporting.grouping_probability, lo_q, hi_q)
+    where = table["status"] == "reported"
+    interval = (table.loc[where, "rsr_lower"].to_numpy(float), table.loc[where, "rsr_upper"].to_numpy(float))
+    groups, other = group_units(rsr[:, columns], benchmark, measure.better, *rule, interval=interval)
+    table["group"], table["prob_other_side"] = "", np.nan
+    table.loc[where, "group"], table.loc[where, "prob_other_side"] = groups, other
+    table[["rank_median", "rank_lower", "rank_upper"]] = np.nan
+    table.loc[where, ["rank_median", "rank_lower", "rank_upper"]] = rank_summary(rsr[:, columns], measure.better, lo_q, hi_q)
+    tau_median = float(np.median(tau_draws))
+    if draws.se is not None:
+        weight = tau_median**2 / (tau_median**2 + draws.se**2)
+        table["own_weight"] = table["unit_id"].map(dict(zip(unit_ids, weight)))
+    else:
+        table["own_weight"] = np.nan
+    changes = []
+    for alt in fits.sensitivity:
+        alt_rsr = (alt.draws.ratio * network_rate) if alt.draws is not None else rsr
+        weights = None if alt.log_weights is None else np.exp(alt.log_weights)
+        alt_groups, _ = group_units(alt_rsr[:, columns], benchmark, measure.better, *rule, weights=weights)
+        names = table.loc[where, "unit_name"].to_numpy()
+        changed = [(names[i], groups[i], alt_groups[i]) for i in np.flatnonzero(alt_groups != groups)]
+        changes.append({"scale": alt.scale, "k_hat": alt.k_hat, "method": alt.method, "changed": changed})
     return MeasureResult(
         measure=measure,
         casemix=casemix,
@@ -140,7 +185,53 @@ def _summarise(config: CycleConfig, measure: MeasureSection, units: pd.DataFrame
         table=table,
         rsr_draws=pd.DataFrame(rsr[thin(len(rsr), HISTORY_DRAWS)], columns=unit_ids),
         validation=fits.validation,
+        sensitivity=tuple(changes),
     )
+
+
+def _weighted_quantiles(values: np.ndarray, weights: np.ndarray, qs: tuple[float, ...]) -> list[np.ndarray]:
+    """Column-wise quantiles of ``values`` (draws, units) under normalised draw ``weights`` (one sort for all)."""
+    order = np.argsort(values, axis=0)
+    cumulative = np.cumsum(weights[order], axis=0)
+    ordered = np.take_along_axis(values, order, axis=0)
+    columns = np.arange(values.shape[1])
+    return [ordered[np.argmax(cumulative >= q * cumulative[-1], axis=0), columns] for q in qs]
+
+
+def group_units(rsr: np.ndarray, benchmark: float, better: str, rule: str, probability: float, lo_q: float, hi_q: float,
+                weights: np.ndarray | None = None, interval: tuple[np.ndarray, np.ndarray] | None = None) -> tuple[np.ndarray, np.ndarray]:
+    """Each unit's group (better, typical, worse) and the posterior probability that it is on the other side.
+
+    ``rule`` "interval": better or worse when the credible interval lies wholly on that side of the
+    benchmark; "probability": when the posterior probability of that side is at least ``probability``.
+    For a unit in line with the benchmark the "other side" is the less likely of the two.
+    """
+    if rsr.shape[1] == 0:
+        return np.array([], dtype=object), np.array([])
+    w = np.full(len(rsr), 1 / len(rsr)) if weights is None else weights / weights.sum()
+    above, below = w @ (rsr > benchmark), w @ (rsr < benchmark)
+    p_better, p_worse = (below, above) if better == "lower" else (above, below)
+    if rule == "interval":
+        lo, hi = interval if interval is not None else _weighted_quantiles(rsr, w, (lo_q, hi_q))
+        is_below, is_above = hi < benchmark, lo > benchmark
+        is_better, is_worse = (is_below, is_above) if better == "lower" else (is_above, is_below)
+    else:
+        is_better, is_worse = p_better >= probability, p_worse >= probability
+    groups = np.where(is_better, "better", np.where(is_worse, "worse", "typical")).astype(object)
+    other = np.where(is_better, p_worse, np.where(is_worse, p_better, np.minimum(p_better, p_worse)))
+    return groups, other
+
+
+def rank_summary(rsr: np.ndarray, better: str, lo_q: float, hi_q: float) -> np.ndarray:
+    """Median rank and rank interval per unit among the reported units (rank 1 = best for patients), draw by draw.
+
+    From at most RANK_DRAWS evenly spaced draws: enough for whole-number ranks, and fast at 10,000 units.
+    """
+    if rsr.shape[1] == 0:
+        return np.zeros((0, 3))
+    rsr = rsr[thin(len(rsr), RANK_DRAWS)]
+    ranks = np.argsort(np.argsort(rsr if better == "lower" else -rsr, axis=1), axis=1) + 1
+    return np.column_stack([np.median(ranks, axis=0), np.quantile(ranks, lo_q, axis=0, method="lower"), np.quantile(ranks, hi_q, axis=0, method="higher")])
 
 
 def withhold_complement(table: pd.DataFrame, minimum: int) -> None:
@@ -242,6 +333,13 @@ DICTIONARY = {
     "ratio_median": "Predicted / expected events (risk-standardised rate / network rate): posterior median.",
     "ratio_lower": "Lower end of the credible interval of that ratio.",
     "ratio_upper": "Upper end of the credible interval of that ratio.",
-    "prob_above_benchmark": "Posterior probability that the risk-standardised rate is above the benchmark.",
+    "prob_above_benchmark": "Posterior probability that the risk-standardised rate (or adjusted mean) is above the benchmark.",
+    "prob_below_benchmark": "Posterior probability that it is below the benchmark.",
+    "rank_median": "Median rank among the reported units, draw by draw (1 = best for patients).",
+    "rank_lower": "Lower end of the credible interval of the rank.",
+    "rank_upper": "Upper end of the credible interval of the rank.",
+    "own_weight": "Share of the estimate that rests on the unit's own patients (tau^2 / (tau^2 + se^2)); the rest comes from the network.",
+    "prob_other_side": "Posterior probability that the unit is really on the other side of the benchmark from its group (for 'typical': the less likely side).",
     "position": "above / spans / below: where the credible interval sits relative to the benchmark.",
+    "group": "better / typical / worse than the benchmark, by the rule in the methods ([reporting].grouping).",
 }

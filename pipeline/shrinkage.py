@@ -59,6 +59,7 @@ LIKELIHOODS: dict[str, tuple[str, dict[str, tuple[str, dict[str, float]]]]] = {
     "poisson": ("observed events per unit, with the supplied expected events as offset", {}),
     "gamma": ("a positive outcome per patient, Gamma with log link", {"shape": ("HalfNormal", {"sigma": 5.0})}),
     "lognormal": ("a positive outcome per patient, normal on the log scale", {"sigma": ("HalfNormal", {"sigma": 1.0})}),
+    "normal": ("one estimate per unit with a known standard error (r = estimate, n = 1 / se^2)", {}),
 }
 
 # Diagnostic limits (Vehtari et al. 2021, Bayesian Analysis 16:667: R-hat below 1.01 and bulk
@@ -73,6 +74,8 @@ POOLING = {
     "partial": "unit intercepts from a common Normal(mu, tau), non-centred: the published model",
     "none": "independent unit intercepts with a Logistic(0, 1) prior, which is a uniform prior on each "
     "unit's rate; nothing is borrowed between units (used to check the engine against exact results)",
+    "beta": "unit rates from a common Beta(alpha, beta) with p(alpha, beta) proportional to (alpha + beta)^(-5/2) "
+    "(Gelman et al., BDA3 section 5.3); binomial cells without case mix only (a published check of the engine)",
 }
 
 
@@ -96,7 +99,7 @@ class ShrinkageSpec:
     def sampled(self) -> list[str]:
         """Names of the sampled parameters (the ones diagnostics are computed on)."""
         own = list(LIKELIHOODS[self.likelihood][1])
-        return (["mu", "tau", "v"] if self.pooling == "partial" else ["a"]) + own
+        return {"partial": ["mu", "tau", "v"], "none": ["a"], "beta": ["phi", "kappa"]}[self.pooling] + own
 
     def describe(self) -> list[str]:
         """One line per prior, in the notation of the methods page."""
@@ -163,6 +166,18 @@ CENTRE_BELOW = 0.25
 LOW_RANK_MAX_UNITS = 100  # nutpie's low-rank mass matrix up to this many units, diagonal above
 
 
+def james_stein(y: np.ndarray, s2: float) -> tuple[np.ndarray, float]:
+    """Empirical-Bayes (James-Stein) estimates towards the grand mean for k means of common known variance s2.
+
+    Efron & Morris (1975, JASA 70:311): z_i = ybar + c (y_i - ybar), c = 1 - (k - 3) s2 / sum (y_i - ybar)^2.
+    Returns (estimates, c).
+    """
+    y = np.asarray(y, dtype=float)
+    ybar = y.mean()
+    c = 1 - (len(y) - 3) * s2 / np.sum((y - ybar) ** 2)
+    return ybar + c * (y - ybar), float(c)
+
+
 def rough_tau(estimate: np.ndarray, se: np.ndarray) -> float:
     """Method-of-moments between-unit SD (variance of the estimates minus their mean sampling variance), at least 0.05."""
     keep = np.isfinite(estimate) & (se < 5)
@@ -183,6 +198,11 @@ def unit_estimates(spec: ShrinkageSpec, cells: Cells, curves=None) -> tuple[np.n
         expected = np.bincount(cells.unit, weights=np.exp(cells.offset), minlength=k)
         return np.where(n > 0, np.log((events + 0.5) / np.maximum(expected, 1e-9)), np.nan), 1 / np.sqrt(np.maximum(events, 1.0))
     s1 = np.bincount(cells.unit, weights=cells.r, minlength=k)
+    if spec.likelihood == "normal":
+        return np.where(n > 0, s1, np.nan), 1 / np.sqrt(np.maximum(n, 1e-12))
+    if spec.likelihood == "binomial":
+        p = (s1 + 0.5) / (n + 1)
+        return np.where(n > 0, np.log(p / (1 - p)), np.nan), 1 / np.sqrt(np.maximum(n * p * (1 - p), 1e-12))
     if spec.likelihood == "lognormal" and cells.q is not None:
         s2 = np.bincount(cells.unit, weights=cells.q, minlength=k)
         var = np.where(n > 1, (s2 - s1**2 / safe) / np.maximum(n - 1, 1), 1.0)
@@ -190,11 +210,20 @@ def unit_estimates(spec: ShrinkageSpec, cells: Cells, curves=None) -> tuple[np.n
     return np.where(n > 0, np.log(np.maximum(s1, 1e-300) / safe), np.nan), 1 / np.sqrt(safe)  # gamma: shape about 1 (enough here)
 
 
+CURVE_DEGREE = 32  # curves.DEGREE, repeated here so that choosing does not import numba
+
+
 def model_data(spec: ShrinkageSpec, cells: Cells) -> tuple[dict[str, np.ndarray], object]:
-    """Arrays the model reads (swappable per measure) and, for binomial cells, their curves."""
+    """Arrays the model reads (swappable per measure) and, for binomial cells, their curves.
+
+    Binomial measures use each unit's likelihood curve when that is smaller than the cells
+    (more cells than units x series length), and the exact cells otherwise.
+    """
     curves = None
-    if spec.likelihood == "binomial":
-        from .curves import build_curves
+    if spec.pooling == "beta":
+        return {"n": cells.n, "r": cells.r}, None
+    if spec.likelihood == "binomial" and len(cells.n) > cells.n_units * (CURVE_DEGREE + 1):
+        from .curves import build_curves  # cheaper than the cells, and within 1e-6 of them (curves.py)
 
         curves = build_curves(cells.unit, cells.offset, cells.n, cells.r, cells.n_units)
         data = curves.data()
@@ -218,6 +247,14 @@ def build_model(spec: ShrinkageSpec, cells: Cells, data: dict[str, np.ndarray] |
     arrays = data if data is not None else model_data(spec, cells)[0]
     with pm.Model() as model:
         data = {k: pm.Data(k, v) for k, v in arrays.items()}
+        if spec.pooling == "beta":  # rates integrated out: the beta-binomial likelihood of each cell
+            phi, kappa = pm.Flat("phi"), pm.Flat("kappa")  # phi = log(alpha / beta), kappa = log(alpha + beta)
+            alpha, beta = pm.Deterministic("alpha", pt.exp(kappa) * pt.sigmoid(phi)), pm.Deterministic("beta", pt.exp(kappa) * pt.sigmoid(-phi))
+            pm.Potential("prior", pt.log(alpha) + pt.log(beta) - 2.5 * pt.log(alpha + beta))  # BDA3 eq. 5.10 with the Jacobian
+            r, n = data["r"], data["n"]
+            pm.Potential("loglik", pt.sum(pt.gammaln(alpha + r) + pt.gammaln(beta + n - r) - pt.gammaln(alpha + beta + n)
+                                          + pt.gammaln(alpha + beta) - pt.gammaln(alpha) - pt.gammaln(beta)))
+            return model
         if spec.pooling == "partial":
             mu = prior("mu")
             tau = prior("tau")
@@ -227,7 +264,7 @@ def build_model(spec: ShrinkageSpec, cells: Cells, data: dict[str, np.ndarray] |
             a = c * v + (1 - c) * (mu + tau * v)
         else:
             a = pm.Logistic("a", 0.0, 1.0, shape=cells.n_units)
-        if spec.likelihood == "binomial":
+        if "coef" in data:
             from .curves import curve_loglik
 
             pm.Potential("loglik", pt.sum(curve_loglik(a, data)))
@@ -249,6 +286,8 @@ def _loglik(spec: ShrinkageSpec, prior, data: dict, eta):
     if spec.likelihood == "gamma":  # sum over patients of the Gamma(k, k/m) log density, m = exp(offset + eta)
         k = prior("shape")
         return n * (k * pt.log(k) - pt.gammaln(k)) + k * data["q"] - k * n * eta - k * r * pt.exp(-eta)
+    if spec.likelihood == "normal":  # r = estimate, n = precision: Normal(r | eta, 1 / sqrt(n))
+        return -0.5 * n * (r - eta) ** 2
     sigma = prior("sigma")  # lognormal: residuals d ~ Normal(eta, sigma)
     return -n * pt.log(sigma) - (data["q"] - 2 * eta * r + n * eta**2) / (2 * sigma**2)
 
@@ -307,9 +346,10 @@ class Sampler:
             if self.engine == "nutpie":
                 import nutpie
 
-                if self._compiled is None or self._compiled_units != cells.n_units:  # compile once per cycle
+                shape = (cells.n_units, tuple(sorted(data)))
+                if self._compiled is None or self._compiled_units != shape:  # compile once per cycle and kind of data
                     self._compiled = nutpie.compile_pymc_model(build_model(self.spec, cells, data))
-                    self._compiled_units = cells.n_units
+                    self._compiled_units = shape
                 compiled = self._compiled.with_data(**data)
                 idata = nutpie.sample(
                     compiled, draws=s.draws, tune=s.tune, chains=s.chains, cores=s.cores,
@@ -359,6 +399,9 @@ class Sampler:
 
 def posterior_draws(spec: ShrinkageSpec, post, n_units: int, centred: np.ndarray | None) -> dict[str, np.ndarray]:
     """Flatten chains: mu (draws,), tau (draws,), u (draws, units) with intercept = mu + u."""
+    if spec.pooling == "beta":
+        alpha, beta = post["alpha"].values.reshape(-1), post["beta"].values.reshape(-1)
+        return {"alpha": alpha, "beta": beta, "mu": np.log(alpha / beta), "tau": np.full(len(alpha), np.nan), "u": np.zeros((len(alpha), n_units))}
     if spec.pooling == "partial":
         mu = post["mu"].values.reshape(-1)
         tau = post["tau"].values.reshape(-1)
@@ -376,6 +419,7 @@ class UnitDraws:
 
     ratio: np.ndarray  # (draws, units) P_i / E_i
     effect: np.ndarray  # (draws, units) u_i on the log-odds scale
+    se: np.ndarray | None = None  # (units,) standard error of each unit's intercept from its own data alone
 
 
 def thin(n: int, keep: int) -> np.ndarray:
@@ -389,15 +433,20 @@ def unit_draws(cells: Cells, draws: dict[str, np.ndarray], max_draws: int = 4000
     keep = thin(len(mu), max_draws)  # evenly thinned: the summaries need no more
     mu, u = mu[keep], u[keep]
     missing = np.setdiff1d(np.arange(cells.n_units), cells.unit)  # units without data have no ratio
+    curves = draws.get("curves")
+    if curves is not None:  # information at the centre, without the curves' small ridge
+        se = 1 / np.sqrt(np.maximum(1 / curves.se**2 - 0.25, 1e-12))
+    else:
+        se = unit_estimates(ShrinkageSpec(likelihood=likelihood), cells)[1]
+    se[missing] = np.inf
     if likelihood != "binomial":
         ratio = np.exp(u)
         ratio[:, missing] = np.nan
-        return UnitDraws(ratio=ratio, effect=u)
-    curves = draws.get("curves")
+        return UnitDraws(ratio=ratio, effect=u, se=se)
     if curves is not None:  # P_i(mu + u_i) / P_i(mu) from each unit's series of log P_i (curves.py)
         ratio = np.exp(curves.log_predicted(mu[:, None] + u) - curves.log_predicted(np.repeat(mu[:, None], u.shape[1], axis=1)))
         ratio[:, missing] = np.nan
-        return UnitDraws(ratio=ratio, effect=u)
+        return UnitDraws(ratio=ratio, effect=u, se=se)
     ratio = np.full(u.shape, np.nan)
     order = np.argsort(cells.unit, kind="stable")
     bounds = np.searchsorted(cells.unit[order], np.arange(cells.n_units + 1))
@@ -410,7 +459,28 @@ def unit_draws(cells: Cells, draws: dict[str, np.ndarray], max_draws: int = 4000
         predicted = expit(base + u[:, i, None]) @ n
         expected = expit(base) @ n
         ratio[:, i] = predicted / expected
-    return UnitDraws(ratio=ratio, effect=u)
+    return UnitDraws(ratio=ratio, effect=u, se=se)
+
+
+# Prior sensitivity: the between-unit SD prior made half and twice as wide (HalfNormal scales).
+SENSITIVITY_SCALES = (0.5, 2.0)
+K_HAT_MAX = 0.7  # above this, importance weights are unreliable and the fit is redone (Vehtari et al. 2024, JMLR 25:72)
+
+
+def with_tau_scale(spec: ShrinkageSpec, scale: float) -> ShrinkageSpec:
+    """The same spec with tau ~ HalfNormal(scale)."""
+    return ShrinkageSpec(priors={**spec.priors, "tau": ("HalfNormal", {"sigma": scale})}, pooling=spec.pooling, likelihood=spec.likelihood)
+
+
+def reweight_tau(tau: np.ndarray, scale: float, base: float = 1.0) -> tuple[np.ndarray, float]:
+    """Pareto-smoothed importance log-weights that turn tau ~ HalfNormal(base) draws into HalfNormal(scale) ones, and k-hat."""
+    import arviz as az
+
+    log_ratio = np.log(base / scale) - tau**2 / (2 * scale**2) + tau**2 / (2 * base**2)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        smoothed, k_hat = az.psislw(log_ratio)
+    return np.asarray(smoothed), float(k_hat)
 
 
 def fit_failed(measure: str, diagnostics: Diagnostics) -> FitError:

@@ -246,3 +246,23 @@ def test_expected_values_supplied_per_patient_flow_through_and_are_validated(hos
     page = (site / "models" / "death30.html").read_text()
     assert "Expected values were supplied for each patient" in page and "vendor\\_risk" not in page
     assert death.table.loc[death.table["status"] == "reported", "expected"].gt(0).all()
+
+
+def test_groups_ranks_and_weights_follow_their_rules(demo_cycle):
+    _, summary, site = demo_cycle
+    table = pd.read_csv(site / "downloads" / "results.csv")
+    for r in summary.results:
+        t = r.table[r.table["status"] == "reported"]
+        lower_better = r.measure.better == "lower"
+        better = t["rsr_upper"] < r.benchmark if lower_better else t["rsr_lower"] > r.benchmark
+        worse = t["rsr_lower"] > r.benchmark if lower_better else t["rsr_upper"] < r.benchmark
+        assert (t["group"] == np.where(better, "better", np.where(worse, "worse", "typical"))).all()  # the interval rule
+        assert t.loc[t["group"] != "typical", "prob_other_side"].lt(0.025 + 0.01).all()  # outside a 95% interval
+        assert t["rank_lower"].le(t["rank_median"]).all() and t["rank_median"].le(t["rank_upper"]).all()
+        assert t["rank_upper"].max() <= len(t) and t["rank_lower"].min() >= 1
+        assert t["own_weight"].between(0, 1).all()
+        big, small = t.loc[t["cases"].idxmax()], t.loc[t["cases"].idxmin()]
+        assert big["own_weight"] > small["own_weight"]  # large units rest on their own data
+        assert [alt["scale"] for alt in r.sensitivity] == [0.5, 2.0]
+    hidden = table[table["status"] != "reported"]
+    assert hidden[["rank_median", "own_weight", "prob_other_side"]].isna().all().all() and hidden["group"].isna().all()

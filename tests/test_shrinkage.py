@@ -36,16 +36,23 @@ def test_cells_keep_every_patient_and_event():
     assert np.bincount(cells.unit, weights=cells.n).tolist() == np.bincount(unit, minlength=5).tolist()
 
 
-@pytest.mark.parametrize("seed", [4, 8])
-def test_model_gives_the_per_patient_bernoulli_likelihood(seed, monkeypatch):
+@pytest.mark.parametrize("seed,representation", [(4, "cells"), (8, "cells"), (4, "curves"), (8, "curves")])
+def test_model_gives_the_per_patient_bernoulli_likelihood(seed, representation, monkeypatch):
     """Cells, unit curves and the parameterisation change no log-density difference (vs. scipy per patient, no sampling)."""
     from pipeline.shrinkage import model_data
 
-    monkeypatch.setattr("pipeline.shrinkage.CENTRE_BELOW", 1.2)  # so that both parameterisations occur here
+    from pipeline.shrinkage import rough_tau, unit_estimates
+
     unit, offset, y = _patients(seed)
-    unit[:150] = 0  # one unit with many patients, so both parameterisations occur
+    unit[:150] = 0  # one unit with many patients
     cells = Cells.from_patients(unit, offset, y, 5)
-    data, _ = model_data(ShrinkageSpec(), cells)
+    if representation == "curves":  # force the series even though the cells are fewer here
+        monkeypatch.setattr("pipeline.shrinkage.CURVE_DEGREE", 0)
+    estimate, se = unit_estimates(ShrinkageSpec(), cells, model_data(ShrinkageSpec(), cells)[1])
+    smallest = np.sort(se)[:2].mean() / rough_tau(estimate, se)  # so that both parameterisations occur here
+    monkeypatch.setattr("pipeline.shrinkage.CENTRE_BELOW", smallest)
+    data, built = model_data(ShrinkageSpec(), cells)
+    assert ("coef" in data) == (representation == "curves")
     centred = data["centred"].astype(bool)
     assert centred.any() and not centred.all()
     model = build_model(ShrinkageSpec(), cells)
@@ -142,3 +149,17 @@ def test_a_failed_fit_is_retried_once_with_safer_settings(monkeypatch):
 def test_tail_ess_and_energy_checks_are_named():
     d = Diagnostics(rhat_max=1.0, ess_bulk_min=900, divergences=0, chains=4, draws=1000, seconds=1.0, ess_tail_min=200, bfmi_min=0.2)
     assert d.failures() == ["smallest tail ESS 200 is below 400", "lowest E-BFMI 0.20 is below 0.3"]
+
+
+def test_the_cheaper_exact_representation_is_chosen():
+    from pipeline import curves
+    from pipeline.shrinkage import CURVE_DEGREE, model_data
+
+    assert CURVE_DEGREE == curves.DEGREE
+    unit, offset, y = _patients()
+    few = Cells.from_patients(unit, offset, y, 5)  # <= 20 cells: the cells themselves
+    assert "coef" not in model_data(ShrinkageSpec(), few)[0] and model_data(ShrinkageSpec(), few)[1] is None
+    rng = np.random.default_rng(1)
+    many = Cells.from_patients(unit, offset + rng.normal(0, 0.1, len(unit)), y, 5)  # 400 distinct risks: curves
+    data, built = model_data(ShrinkageSpec(), many)
+    assert "coef" in data and built is not None
