@@ -25,7 +25,8 @@ from scipy.special import expit
 
 from pipeline.casemix import fit_casemix
 from pipeline.config import MeasureSection, SamplerSection
-from pipeline.shrinkage import Cells, Sampler, ShrinkageSpec, unit_draws
+from pipeline.sampling import Sampler
+from pipeline.shrinkage import Cells, ShrinkageSpec, unit_draws
 
 warnings.filterwarnings("ignore")
 MEASURE = MeasureSection(key="sim", name="sim", definition="sim", outcome="y", casemix="x + z")

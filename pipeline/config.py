@@ -341,7 +341,7 @@ def _check_measures(measures: list[MeasureSection], problems: list[Problem]) -> 
         if m.summary:
             for other, default in (("casemix", "1"), ("expected_column", ""), ("social_risk", ())):
                 if getattr(m, other) != default:
-                    problems.append(Problem(f"{where}.{other}", f"cannot be used with summary (unit-level input has no patient rows to fit); remove it."))
+                    problems.append(Problem(f"{where}.{other}", "cannot be used with summary (unit-level input has no patient rows to fit); remove it."))
             if m.type != "binary":
                 problems.append(Problem(f"{where}.summary", "unit-level input is supported for binary measures only (observed events and expected events per unit)."))
         if m.social_risk:

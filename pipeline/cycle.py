@@ -35,7 +35,8 @@ from .history import PastCycle, past_cycles, record_cycle
 from .pages import render_pages, unit_slugs
 from .render import Renderer, choose_renderer, render_site
 from .results import DICTIONARY, MeasureFits, MeasureResult, PriorAlternative, public_table, results_json, summarise_measure
-from .shrinkage import SENSITIVITY_SCALES, K_HAT_MAX, Cells, Sampler, ShrinkageSpec, reweight_tau, thin, unit_draws, with_tau_scale
+from .sampling import K_HAT_MAX, SENSITIVITY_SCALES, Sampler, reweight_tau, with_tau_scale
+from .shrinkage import Cells, ShrinkageSpec, thin, unit_draws
 from .validation import validate
 
 MARKER = "fairgauge-manifest.json"  # every site's provenance; only folders holding it are ever replaced

@@ -21,7 +21,8 @@ from .figures import measure_figure_path, unit_figure_path
 from .history import PastCycle, changes
 from .report import model_view
 from .results import GROUPS, POSITION, STATUS, MeasureResult
-from .shrinkage import K_HAT_MAX, LIMITS, ShrinkageSpec
+from .sampling import K_HAT_MAX, LIMITS
+from .shrinkage import ShrinkageSpec
 
 _MD_SPECIAL = set("\\`*_{}[]()#+-.!|~^$@:\"'")
 _ENTITIES = {"&": "&amp;", "<": "&lt;", ">": "&gt;"}

@@ -15,7 +15,8 @@ import pandas as pd
 
 from .casemix import CaseMixFit
 from .config import CycleConfig, MeasureSection
-from .shrinkage import Diagnostics, UnitDraws, thin
+from .sampling import Diagnostics
+from .shrinkage import UnitDraws, thin
 from .validation import Validation
 
 # Unit states, in our own words (the key is stored; the words are shown).

@@ -37,16 +37,12 @@ and ``E_i = sum_j expit(c + mu + x_ij)``.
 
 from __future__ import annotations
 
-import time
-import warnings
 from dataclasses import dataclass, field
 
 import numpy as np
 import pandas as pd
 from scipy.special import expit
 
-from .config import SamplerSection
-from .errors import FitError
 
 # Built-in priors: a data table (name -> distribution, parameters), printed on the methods page.
 PRIORS: dict[str, tuple[str, dict[str, float]]] = {
@@ -61,13 +57,6 @@ LIKELIHOODS: dict[str, tuple[str, dict[str, tuple[str, dict[str, float]]]]] = {
     "lognormal": ("a positive outcome per patient, normal on the log scale", {"sigma": ("HalfNormal", {"sigma": 1.0})}),
     "normal": ("one estimate per unit with a known standard error (r = estimate, n = 1 / se^2)", {}),
 }
-
-# Diagnostic limits (Vehtari et al. 2021, Bayesian Analysis 16:667: R-hat below 1.01 and bulk
-# and tail effective sample sizes of at least 100 per chain; divergences must be absent; an
-# E-BFMI below 0.3 flags poor exploration of the energy distribution (Betancourt 2016,
-# arXiv:1604.00695; the 0.3 threshold is common practice, no source)).
-LIMITS = {"rhat_max": 1.01, "ess_bulk_per_chain_min": 100, "ess_tail_per_chain_min": 100, "divergences_max": 0, "bfmi_min": 0.3}
-
 
 # How much units borrow from each other: a data table of the built-in choices.
 POOLING = {
@@ -163,7 +152,6 @@ class Cells:
 # it, a diagonal mass matrix gives a bulk ESS of mu of about 4,600 from 4,000 draws at 200 units,
 # where the all-non-centred model needed the slower low-rank adaptation (DEVELOPERS.md, "Sampler").
 CENTRE_BELOW = 0.25
-LOW_RANK_MAX_UNITS = 100  # nutpie's low-rank mass matrix up to this many units, diagonal above
 
 
 def james_stein(y: np.ndarray, s2: float) -> tuple[np.ndarray, float]:
@@ -293,127 +281,6 @@ def _loglik(spec: ShrinkageSpec, prior, data: dict, eta):
 
 
 @dataclass(frozen=True)
-class Diagnostics:
-    rhat_max: float
-    ess_bulk_min: float
-    divergences: int
-    chains: int
-    draws: int
-    seconds: float
-    ess_tail_min: float = float("inf")
-    bfmi_min: float = float("inf")
-    retried: bool = False  # True when the first fit failed its checks and this is the safer refit
-
-    def failures(self) -> list[str]:
-        out = []
-        if not self.rhat_max <= LIMITS["rhat_max"]:
-            out.append(f"largest R-hat {self.rhat_max:.3f} is above {LIMITS['rhat_max']}")
-        if not self.ess_bulk_min >= LIMITS["ess_bulk_per_chain_min"] * self.chains:
-            out.append(f"smallest bulk ESS {self.ess_bulk_min:.0f} is below {LIMITS['ess_bulk_per_chain_min'] * self.chains}")
-        if not self.ess_tail_min >= LIMITS["ess_tail_per_chain_min"] * self.chains:
-            out.append(f"smallest tail ESS {self.ess_tail_min:.0f} is below {LIMITS['ess_tail_per_chain_min'] * self.chains}")
-        if self.divergences > LIMITS["divergences_max"]:
-            out.append(f"{self.divergences} divergent transitions")
-        if not self.bfmi_min >= LIMITS["bfmi_min"]:
-            out.append(f"lowest E-BFMI {self.bfmi_min:.2f} is below {LIMITS['bfmi_min']}")
-        return out
-
-
-def safer(settings: SamplerSection) -> SamplerSection:
-    """Settings for the one retry after failed checks: twice the warm-up, smaller steps."""
-    from dataclasses import replace
-
-    return replace(settings, tune=settings.tune * 2, target_accept=max(settings.target_accept, 0.99))
-
-
-class Sampler:
-    """Compiles the model once per cycle and fits every measure's cells with it."""
-
-    def __init__(self, spec: ShrinkageSpec, settings: SamplerSection, engine: str = "nutpie"):
-        self.spec, self.settings, self.engine = spec, settings, engine
-        self._compiled = None
-        self._compiled_units = -1
-
-    def run(self, cells: Cells, seed: int, settings: SamplerSection | None = None):
-        """Sample the posterior for ``cells``; return (posterior draws, diagnostics)."""
-        import arviz as az
-
-        s = settings or self.settings
-        start = time.perf_counter()
-        data, curves = model_data(self.spec, cells)
-        with warnings.catch_warnings():
-            warnings.simplefilter("ignore")
-            if self.engine == "nutpie":
-                import nutpie
-
-                shape = (cells.n_units, tuple(sorted(data)))
-                if self._compiled is None or self._compiled_units != shape:  # compile once per cycle and kind of data
-                    self._compiled = nutpie.compile_pymc_model(build_model(self.spec, cells, data))
-                    self._compiled_units = shape
-                compiled = self._compiled.with_data(**data)
-                idata = nutpie.sample(
-                    compiled, draws=s.draws, tune=s.tune, chains=s.chains, cores=s.cores,
-                    seed=seed, target_accept=s.target_accept, progress_bar=False,
-                    # Low-rank adaptation follows the mu-versus-units correlation; its own cost grows with
-                    # the number of units (DEVELOPERS.md, "Sampler").
-                    low_rank_modified_mass_matrix=cells.n_units <= LOW_RANK_MAX_UNITS,
-                )
-            else:
-                import pymc as pm
-
-                with build_model(self.spec, cells, data):
-                    idata = pm.sample(
-                        draws=s.draws, tune=s.tune, chains=s.chains, cores=s.cores, random_seed=seed,
-                        target_accept=s.target_accept, progressbar=False, compute_convergence_checks=False,
-                    )
-            names = self.spec.sampled
-            rhat = az.rhat(idata, var_names=names)
-            ess = az.ess(idata, var_names=names, method="bulk")
-            tail = az.ess(idata, var_names=names, method="tail")
-            bfmi = az.bfmi(idata)
-        diagnostics = Diagnostics(
-            rhat_max=float(max(rhat[v].max() for v in names)),
-            ess_bulk_min=float(min(ess[v].min() for v in names)),
-            divergences=int(idata.sample_stats["diverging"].sum()),
-            chains=s.chains,
-            draws=s.draws,
-            seconds=time.perf_counter() - start,
-            ess_tail_min=float(min(tail[v].min() for v in names)),
-            bfmi_min=float(np.min(bfmi)),
-            retried=settings is not None,
-        )
-        draws = posterior_draws(self.spec, idata.posterior, cells.n_units, data.get("centred"))
-        return {**draws, "curves": curves}, diagnostics
-
-    def run_checked(self, cells: Cells, seed: int, measure: str, warn=lambda text: None):
-        """:meth:`run`; if the checks fail, warn and run once more with :func:`safer` settings; then raise."""
-        draws, diagnostics = self.run(cells, seed)
-        if diagnostics.failures():
-            warn(f"{measure}: the shrinkage fit failed its checks ({'; '.join(diagnostics.failures())}); retrying once with "
-                 "twice the warm-up and target acceptance 0.99")
-            draws, diagnostics = self.run(cells, seed + 1_000_003, safer(self.settings))
-            if diagnostics.failures():
-                raise fit_failed(measure, diagnostics)
-        return draws, diagnostics
-
-
-def posterior_draws(spec: ShrinkageSpec, post, n_units: int, centred: np.ndarray | None) -> dict[str, np.ndarray]:
-    """Flatten chains: mu (draws,), tau (draws,), u (draws, units) with intercept = mu + u."""
-    if spec.pooling == "beta":
-        alpha, beta = post["alpha"].values.reshape(-1), post["beta"].values.reshape(-1)
-        return {"alpha": alpha, "beta": beta, "mu": np.log(alpha / beta), "tau": np.full(len(alpha), np.nan), "u": np.zeros((len(alpha), n_units))}
-    if spec.pooling == "partial":
-        mu = post["mu"].values.reshape(-1)
-        tau = post["tau"].values.reshape(-1)
-        v = post["v"].values.reshape(-1, n_units)
-        u = np.where(centred.astype(bool), v - mu[:, None], tau[:, None] * v)
-    else:  # no common mean: the reference intercept is 0 and each unit's own intercept is u
-        u = post["a"].values.reshape(-1, n_units)
-        mu, tau = np.zeros(len(u)), np.full(len(u), np.inf)
-    return {"mu": mu, "tau": tau, "u": u}
-
-
-@dataclass(frozen=True)
 class UnitDraws:
     """Posterior draws per unit: risk-standardised ratio P/E and unit effect u."""
 
@@ -460,32 +327,3 @@ def unit_draws(cells: Cells, draws: dict[str, np.ndarray], max_draws: int = 4000
         expected = expit(base) @ n
         ratio[:, i] = predicted / expected
     return UnitDraws(ratio=ratio, effect=u, se=se)
-
-
-# Prior sensitivity: the between-unit SD prior made half and twice as wide (HalfNormal scales).
-SENSITIVITY_SCALES = (0.5, 2.0)
-K_HAT_MAX = 0.7  # above this, importance weights are unreliable and the fit is redone (Vehtari et al. 2024, JMLR 25:72)
-
-
-def with_tau_scale(spec: ShrinkageSpec, scale: float) -> ShrinkageSpec:
-    """The same spec with tau ~ HalfNormal(scale)."""
-    return ShrinkageSpec(priors={**spec.priors, "tau": ("HalfNormal", {"sigma": scale})}, pooling=spec.pooling, likelihood=spec.likelihood)
-
-
-def reweight_tau(tau: np.ndarray, scale: float, base: float = 1.0) -> tuple[np.ndarray, float]:
-    """Pareto-smoothed importance log-weights that turn tau ~ HalfNormal(base) draws into HalfNormal(scale) ones, and k-hat."""
-    import arviz as az
-
-    log_ratio = np.log(base / scale) - tau**2 / (2 * scale**2) + tau**2 / (2 * base**2)
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore")
-        smoothed, k_hat = az.psislw(log_ratio)
-    return np.asarray(smoothed), float(k_hat)
-
-
-def fit_failed(measure: str, diagnostics: Diagnostics) -> FitError:
-    reasons = "; ".join(diagnostics.failures())
-    return FitError(
-        f"measure '{measure}': the shrinkage fit did not pass its checks ({reasons}){', also on the retry with safer settings' if diagnostics.retried else ''}. "
-        "Nothing was published. Try more warm-up draws ([sampler].tune) or a higher [sampler].target_accept, then run the cycle again."
-    )

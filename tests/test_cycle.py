@@ -19,7 +19,7 @@ from pipeline.config import load_config
 from pipeline.cycle import MARKER, run_cycle
 from pipeline.errors import FitError, RenderError
 from pipeline.pages import unit_slugs
-from pipeline.shrinkage import Diagnostics, Sampler
+from pipeline.sampling import Diagnostics, Sampler
 
 pytestmark = pytest.mark.slow
 

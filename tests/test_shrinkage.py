@@ -8,7 +8,8 @@ from scipy import stats
 from scipy.special import expit
 
 from pipeline.config import SamplerSection
-from pipeline.shrinkage import Cells, Diagnostics, Sampler, ShrinkageSpec, build_model, fit_failed, unit_draws
+from pipeline.sampling import Diagnostics, Sampler, fit_failed
+from pipeline.shrinkage import Cells, ShrinkageSpec, build_model, unit_draws
 
 
 def test_spec_is_plain_and_printable():

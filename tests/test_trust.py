@@ -202,7 +202,7 @@ def test_wording_changes_reuse_cached_fits_but_model_changes_refit(hostile_cycle
     def sampler_called(self, cells, seed):
         raise _SamplerCalled
 
-    monkeypatch.setattr("pipeline.shrinkage.Sampler.run", sampler_called)
+    monkeypatch.setattr("pipeline.sampling.Sampler.run", sampler_called)
     config = load_config(folder / "cycle.toml")
     reworded = _with_measure(config, definition="Patients readmitted, reworded for this test.")
     start = time.perf_counter()
