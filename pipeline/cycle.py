@@ -138,7 +138,8 @@ def fit_measure(
     if measure.summary:
         reporter.stage(f"{measure.key}: unit-level input; no case-mix fit")
         summary = cohort.summaries[measure.key]
-        unit_codes = np.array([fitted_units.index(u) for u in summary.index], dtype=np.int64)
+        position_of = {u: i for i, u in enumerate(fitted_units)}
+        unit_codes = np.array([position_of[u] for u in summary.index], dtype=np.int64)
         casemix = unit_summary_fit(measure, summary)
         cells, likelihood = Cells.from_units(unit_codes, summary["observed"], summary["expected"], n_units), "poisson"
         counts = pd.DataFrame({"cases": summary["cases"].to_numpy(), "observed": summary["observed"].to_numpy(),
