@@ -26,7 +26,7 @@ import numpy as np
 from numpy.polynomial import chebyshev
 from scipy.special import expit
 
-DEGREE = 32  # measured: largest error 1e-6 on 1M patients in 200 units (DEVELOPERS.md)
+DEGREE = 32  # measured error: DEVELOPERS.md, "Unit likelihood curves" (benchmarks/glmer_peer.py prints it)
 WINDOW_SE = 6.0  # half-width of each unit's window, in standard errors of its intercept
 RATIO_DEGREE, RATIO_RANGE = 64, 8.0  # series of log P_i(a) on [-8, 8] for the predicted/expected ratio
 

@@ -148,9 +148,8 @@ class Cells:
 # A unit's intercept is sampled centred (a_i ~ Normal(mu, tau)) when its own data pin it down
 # (standard error below CENTRE_BELOW times a rough estimate of tau), non-centred
 # (a_i = mu + tau * v_i) otherwise: the posterior is the same either way, but NUTS explores it in
-# fewer steps (Papaspiliopoulos, Roberts & Skold 2007, Statistical Science 22:59). Measured: with
-# it, a diagonal mass matrix gives a bulk ESS of mu of about 4,600 from 4,000 draws at 200 units,
-# where the all-non-centred model needed the slower low-rank adaptation (DEVELOPERS.md, "Sampler").
+# fewer steps (Papaspiliopoulos, Roberts & Skold 2007, Statistical Science 22:59); the measured
+# choice of the threshold is in DEVELOPERS.md, "Parameterisation".
 CENTRE_BELOW = 0.25
 
 
