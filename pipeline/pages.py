@@ -233,8 +233,8 @@ def _cell(m: MeasureResult, row: pd.Series, level: str, min_cases: int) -> Cell:
         status=row["status"],
         status_words=STATUS[row["status"]],
         cases=f"{int(row['cases']):,}" if reported else {"too_few": f"fewer than {min_cases}", "withheld": "withheld"}.get(row["status"], "0"),
-        observed=show(f"{row['observed']:,.0f}") if reported else "",
-        expected=show(f"{row['expected']:,.1f}" if m.measure.type == "binary" else f"{row['expected']:,.0f}") if reported else "",
+        observed=f"{row['observed']:,.0f}" if reported else "",
+        expected=(f"{row['expected']:,.1f}" if m.measure.type == "binary" else f"{row['expected']:,.0f}") if reported else "",
         raw_rate=show(value(m.measure, row["raw_rate"])),
         oe_ratio=show(num(row["oe_ratio"])),
         rate=show(value(m.measure, row["rsr_median"])),
@@ -249,9 +249,9 @@ def _cell(m: MeasureResult, row: pd.Series, level: str, min_cases: int) -> Cell:
         group=row["group"] if reported else "",
         group_words=GROUPS.get(row["group"], STATUS[row["status"]]) if reported else STATUS[row["status"]],
         group_symbol=GROUP_SYMBOLS.get(row["group"], "") if reported else "",
-        rank=show(f"{row['rank_median']:.0f} ({row['rank_lower']:.0f} to {row['rank_upper']:.0f})") if reported else "",
-        weight=show(f"{row['own_weight'] * 100:.0f}%") if reported and pd.notna(row["own_weight"]) else "",
-        other_side=show(chance(row["prob_other_side"])) if reported else "",
+        rank=f"{row['rank_median']:.0f} ({row['rank_lower']:.0f} to {row['rank_upper']:.0f})" if reported else "",
+        weight=f"{row['own_weight'] * 100:.0f}%" if reported and pd.notna(row["own_weight"]) else "",
+        other_side=show(chance(row["prob_other_side"])),
     )
 
 
