@@ -55,6 +55,12 @@ def _nonempty(value: str) -> str | None:
     return None if value.strip() else "must not be empty"
 
 
+def _site_url(value: str) -> str | None:
+    if value == "" or (re.fullmatch(r"https?://[^\s\"'<>]+/", value)):
+        return None
+    return f"must be empty or a full address starting with http:// or https:// and ending with '/'; got '{value}'"
+
+
 def _benchmark(value: str | float) -> str | None:
     if isinstance(value, str):
         return None if value == "network" else f"must be \"network\" or a rate between 0 and 1; got '{value}'"
@@ -74,6 +80,10 @@ class CycleSection:
     )
     invented_data: bool = option(
         False, doc="True for demonstration data: every page then says the data are invented."
+    )
+    site_url: str = option(
+        "", doc="Public address the site will be published at, ending with '/' (Quarto's site-url and each page's canonical "
+        "link); empty when not known.", check=_site_url,
     )
     cache: Path = option(
         Path(".fairgauge-cache"),
@@ -119,6 +129,11 @@ class ReportingSection:
     )
     grouping_probability: float = option(
         0.95, doc="Threshold of the probability rule (ignored by the interval rule).", check=_between(0.5, 1, inclusive=False)
+    )
+    funnel_overdispersion: bool = option(
+        False,
+        doc="Widen the funnel plots' control limits for the spread between units beyond chance (Spiegelhalter 2005, "
+        "additive random effects); the estimated spread is shown either way.",
     )
 
 

@@ -28,9 +28,9 @@ from .data import Cohort, load_cohort
 from .errors import RenderError, StrictError
 from .cache import Cache, key, library_versions
 from .figures import (
-    MAX_FIGURE_UNITS, axis, cached_figure, calibration_figure_data, draw_calibration, draw_measure, draw_roc, draw_unit,
-    measure_figure_data, measure_figure_path, model_figure_path, roc_figure_data, unit_figure_data, unit_figure_path,
+    MAX_FIGURE_UNITS, draw_all, plan,
 )
+from .funnel import for_measure
 from .history import PastCycle, past_cycles, record_cycle
 from .pages import render_pages, unit_slugs
 from .render import Renderer, choose_renderer, render_site
@@ -232,31 +232,21 @@ def build_site(
         project = build / "_source"
         project.mkdir()
         slugs = unit_slugs(cohort.units.index)
+        funnels = {r.measure.key: for_measure(r, config.reporting.funnel_overdispersion) for r in results}
         drawn: set[str] = set()  # figure paths (relative to the project) that exist
         if figures:
-            reporter.stage(f"drawing figures ({len(results)} measures, {len(cohort.units)} units)")
-            for r in results:
-                data = measure_figure_data(r)
-                scale, label = axis(r)
-                if len(data):
-                    drawn.add(cached_figure(project, measure_figure_path(r.measure.key), draw_measure, data, cache, r.benchmark * scale, label))
-                if r.validation is not None:
-                    drawn.add(cached_figure(project, model_figure_path(r.measure.key, "calibration"), draw_calibration,
-                                            calibration_figure_data(r), cache, "%" if r.validation.binary else r.measure.unit_label))
-                    if r.validation.binary:
-                        drawn.add(cached_figure(project, model_figure_path(r.measure.key, "roc"), draw_roc, roc_figure_data(r), cache))
-            for uid in cohort.units.index:
-                data = unit_figure_data(uid, results)
-                if data is not None:
-                    drawn.add(cached_figure(project, unit_figure_path(slugs[uid]), draw_unit, data, cache))
+            jobs = plan(results, cohort.units.index, slugs, past, funnels)
+            reporter.stage(f"drawing {len(jobs)} figures ({len(results)} measures, {len(cohort.units)} units)")
+            drawn = draw_all(project, jobs, cache)
         reporter.stage("writing results and pages")
         (project / MARKER).write_text(json.dumps(manifest, indent=2), encoding="utf-8")
         (project / "downloads").mkdir(parents=True)
         table.to_csv(project / "downloads" / "results.csv", index=False, float_format="%.6g")
         (project / "downloads" / "results.json").write_text(results_json(table, results, manifest), encoding="utf-8")
         (project / "assets").mkdir()
-        shutil.copyfile(templates_path() / "static" / "fairgauge.css", project / "assets" / "fairgauge.css")
-        for page in render_pages(config, results, cohort.units, slugs, drawn, past, {**manifest, "dictionary": DICTIONARY}):
+        for asset in ("fairgauge.css", "fairgauge.js", "favicon.svg"):
+            shutil.copyfile(templates_path() / "static" / asset, project / "assets" / asset)
+        for page in render_pages(config, results, cohort.units, slugs, drawn, past, {**manifest, "dictionary": DICTIONARY}, funnels):
             target = project / page.path
             target.parent.mkdir(parents=True, exist_ok=True)
             target.write_text(page.text, encoding="utf-8")

@@ -90,7 +90,10 @@ def invent_network(seed: int = 7, n_units: int = 44, smallest: int = 10, largest
     rng = np.random.default_rng(seed)
     sizes = np.sort(np.round(np.exp(rng.uniform(np.log(smallest), np.log(largest), n_units))).astype(int))[::-1]
     sizes[0], sizes[-1] = largest, smallest  # always span the full range
-    names = rng.choice(_PLACES, size=n_units, replace=False)
+    if n_units <= len(_PLACES):
+        names = rng.choice(_PLACES, size=n_units, replace=False)
+    else:  # bigger invented networks (benchmarks): numbered places, still unique
+        names = [_PLACES[i % len(_PLACES)] + ("" if i < len(_PLACES) else f" {i // len(_PLACES) + 1}") for i in rng.permutation(n_units)]
     kind_of = np.minimum((np.arange(n_units) * len(_KINDS)) // n_units, len(_KINDS) - 1)
     unit_ids = [f"mv{i + 1:02d}" for i in range(n_units)]
     units = pd.DataFrame(
@@ -170,6 +173,8 @@ period = "Invented reporting year 2026"
 output = "{output}"
 renderer = "auto"
 invented_data = true
+# example.org is reserved for examples: this site is not published anywhere.
+site_url = "https://example.org/invented-network/"
 
 [inputs]
 cohort = "cohort.csv"

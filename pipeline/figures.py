@@ -1,80 +1,164 @@
-"""Figures (plotnine): adjusted rates with intervals, per measure and per unit.
+"""Figures (plotnine): what each measure and each unit looks like, as SVG (PNG beside where useful).
 
-Position against the benchmark is shown by marker shape *and* colour *and* legend words,
-never colour alone. Colours are from the Okabe & Ito (2008) colour-blind-safe palette.
+Every figure has a *data* function (a small DataFrame: exactly what is drawn) and a *draw*
+function. Pages build the alt text and the data table beside each figure from the same data
+(``captions.py``), so the words and the picture cannot disagree.
+
+Groups are shown by marker shape *and* colour *and* words (legend or label), never colour alone.
+Colours come from the Okabe & Ito (2008) colour-blind-safe palette, darkened where needed so every
+mark passes WCAG 2.1 AA for graphics (3:1 on white; checked in ``tests/test_public.py``).
+
+Speed: a site of 200 units needs 200 unit strips. The strip's frame (facets, scales, network
+bands, benchmark lines) is built once by plotnine; for each unit only the unit's marks are moved
+before the file is written. Drawing jobs run in up to ``WORKERS`` processes, and every file is
+cached by the hash of its data and of this module.
 """
 
 from __future__ import annotations
 
 import hashlib
+import os
 import shutil
 import warnings
+from concurrent.futures import ProcessPoolExecutor
+from dataclasses import dataclass, field
 from pathlib import Path
 
+import matplotlib
+import numpy as np
 import pandas as pd
 import plotnine as p9
 
 from .cache import Cache, key
-from .results import POSITION, MeasureResult
+from .results import GROUPS, MeasureResult
 
-# position key -> (colour, marker); a data table so pages and figures agree.
-MARKS = {
-    "above": ("#D55E00", "^"),  # vermillion, triangle up
-    "spans": ("#4D4D4D", "o"),  # dark grey, circle
-    "below": ("#0072B2", "v"),  # blue, triangle down
+matplotlib.use("Agg")
+matplotlib.rcParams.update({"svg.fonttype": "none", "svg.hashsalt": "fairgauge", "font.family": "DejaVu Sans"})
+
+# group key -> (colour, marker); the words are GROUPS[key]. Shared with captions and pages.
+GROUP_MARKS = {
+    "better": ("#0072B2", "s"),  # blue square
+    "typical": ("#4D4D4D", "o"),  # dark grey circle
+    "worse": ("#C85200", "^"),  # darkened vermillion triangle
 }
-_LABELS = {k: POSITION[k] for k in MARKS}
+BENCHMARK_INK = "#000000"
+BAND_FILL = "#DCE3EA"  # background band only; never the sole carrier of meaning
 DPI = 110
 MAX_FIGURE_UNITS = 300  # above this a chart with one row per unit is unreadable and slow to draw
+WORKERS = max(1, min(2, os.cpu_count() or 1))
+LEGEND = "Group"
 
 
-LEGEND = "Where the credible interval sits"
-
-
-def _scales():
+def _group_scales():
+    labels = {k: GROUPS[k] for k in GROUP_MARKS}
     return [
-        p9.scale_color_manual(values={k: c for k, (c, _) in MARKS.items()}, labels=_LABELS, name=LEGEND, drop=False, limits=list(MARKS)),
-        p9.scale_shape_manual(values={k: s for k, (_, s) in MARKS.items()}, labels=_LABELS, name=LEGEND, drop=False, limits=list(MARKS)),
+        p9.scale_color_manual(values={k: c for k, (c, _) in GROUP_MARKS.items()}, labels=labels, name=LEGEND, drop=False, limits=list(GROUP_MARKS)),
+        p9.scale_shape_manual(values={k: s for k, (_, s) in GROUP_MARKS.items()}, labels=labels, name=LEGEND, drop=False, limits=list(GROUP_MARKS)),
     ]
 
 
-def _theme(height: float):
+def _theme(width: float, height: float):
     return p9.theme_bw(base_size=10) + p9.theme(
-        figure_size=(7.5, height), legend_position="bottom", legend_direction="vertical", panel_grid_minor=p9.element_blank()
+        figure_size=(width, height), legend_position="bottom", legend_direction="horizontal", panel_grid_minor=p9.element_blank()
     )
 
 
-def _save(plot, path: Path) -> None:
+def _save(plot, path: Path, png: bool) -> None:
+    """Write ``path`` (.svg) and, when asked, a .png beside it, from one drawing."""
     path.parent.mkdir(parents=True, exist_ok=True)
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
-        plot.save(path, dpi=DPI, verbose=False)
+        fig = plot.draw()
+        fig.savefig(path, metadata={"Date": None})
+        if png:
+            fig.savefig(path.with_suffix(".png"), dpi=DPI)
+    matplotlib.pyplot.close(fig)
 
 
 _SOURCE = hashlib.sha256(Path(__file__).read_bytes()).hexdigest()  # drawing code changes redraw
 
 
-def measure_figure_path(measure_key: str) -> str:
-    return f"figures/measure-{measure_key}.png"
+# --- paths ---------------------------------------------------------------------------------
+
+def measure_figure_path(measure_key: str, kind: str = "intervals") -> str:
+    """kind: intervals | funnel | movement."""
+    return f"figures/{kind}-{measure_key}.svg"
 
 
-def unit_figure_path(unit_slug: str) -> str:
-    return f"figures/unit-{unit_slug}.png"
+def unit_figure_path(unit_slug: str, kind: str = "position") -> str:
+    """kind: position | trend."""
+    return f"figures/{kind}-{unit_slug}.svg"
 
 
-def cached_figure(project: Path, relative: str, draw, data: pd.DataFrame, cache: Cache, *extra) -> str:
-    """Draw ``data`` with ``draw`` into ``project/relative`` (or copy it from the cache); return ``relative``."""
-    path = project / relative
-    name = key("figure", draw.__name__, data.to_csv(), extra, _SOURCE) + ".png"
-    hit = cache.file(name)
-    path.parent.mkdir(parents=True, exist_ok=True)
-    if hit is not None:
-        shutil.copyfile(hit, path)
+def png_of(relative: str) -> str:
+    return relative[: -len(".svg")] + ".png"
+
+
+# --- jobs and the cache ----------------------------------------------------------------------
+
+@dataclass
+class Job:
+    """One drawing: ``draw(*args, path, png)`` writes ``relative`` (and its PNG when ``png``)."""
+
+    relative: str
+    draw: str  # name of a draw function in this module (picklable for worker processes)
+    data: pd.DataFrame
+    args: tuple = ()
+    png: bool = False
+    cache_name: str = field(default="", init=False)
+
+    def __post_init__(self):
+        self.cache_name = key("figure", self.draw, self.data.to_csv(), self.args, self.png, _SOURCE)
+
+
+def _run(job_draw: str, data: pd.DataFrame, args: tuple, path: str, png: bool) -> None:
+    globals()[job_draw](data, *args, Path(path), png)
+
+
+def draw_all(project: Path, jobs: list[Job], cache: Cache, workers: int = WORKERS) -> set[str]:
+    """Draw every job into ``project`` (or copy it from the cache); return the relative SVG paths drawn."""
+    todo = []
+    for job in jobs:
+        path = project / job.relative
+        path.parent.mkdir(parents=True, exist_ok=True)
+        hits = [cache.file(job.cache_name + ".svg")] + ([cache.file(job.cache_name + ".png")] if job.png else [])
+        if all(h is not None for h in hits):
+            shutil.copyfile(hits[0], path)
+            if job.png:
+                shutil.copyfile(hits[1], path.with_suffix(".png"))
+        else:
+            todo.append(job)
+    _draw(project, todo, workers)
+    for job in todo:
+        path = project / job.relative
+        cache.store_file(job.cache_name + ".svg", path)
+        if job.png:
+            cache.store_file(job.cache_name + ".png", path.with_suffix(".png"))
+    return {job.relative for job in jobs}
+
+
+def _draw(project: Path, jobs: list[Job], workers: int) -> None:
+    strips = [j for j in jobs if j.draw == "draw_position"]
+    single = [j for j in jobs if j.draw != "draw_position"]
+    tasks = [("draw_positions", (_frame_of(strips), [(str(project / j.relative), j.data) for j in part]))
+             for part in (strips[i::workers] for i in range(workers)) if part]
+    tasks += [("_run", (j.draw, j.data, j.args, str(project / j.relative), j.png)) for j in single]
+    if workers > 1 and len(tasks) > 1:
+        import multiprocessing
+
+        with ProcessPoolExecutor(workers, mp_context=multiprocessing.get_context("spawn")) as pool:
+            for future in [pool.submit(globals()[name], *args) for name, args in tasks]:
+                future.result()
     else:
-        draw(data, *extra, path)
-        cache.store_file(name, path)
-    return relative
+        for name, args in tasks:
+            globals()[name](*args)
 
+
+def _frame_of(strips: list[Job]) -> pd.DataFrame | None:
+    return strips[0].args[0] if strips else None
+
+
+# --- measure figures -------------------------------------------------------------------------
 
 def axis(result: MeasureResult) -> tuple[float, str]:
     """(multiplier, axis label) for a measure's adjusted values: percent for rates, the outcome's unit otherwise."""
@@ -84,62 +168,213 @@ def axis(result: MeasureResult) -> tuple[float, str]:
 
 
 def measure_figure_data(result: MeasureResult) -> pd.DataFrame:
-    """What the measure figure shows: reported units, lowest adjusted value first."""
-    t = result.table[result.table["status"] == "reported"].sort_values("rsr_median")
+    """What the interval chart shows: reported units, lowest adjusted value first."""
+    t = result.table[result.table["status"] == "reported"].sort_values(["rsr_median", "unit_name"])
     k = axis(result)[0]
     return pd.DataFrame(
-        {"unit_name": t["unit_name"], "rsr": t["rsr_median"] * k, "lo": t["rsr_lower"] * k, "hi": t["rsr_upper"] * k, "position": t["position"]}
-    )
+        {"unit_name": t["unit_name"], "rsr": t["rsr_median"] * k, "lo": t["rsr_lower"] * k, "hi": t["rsr_upper"] * k, "group": t["group"]}
+    ).reset_index(drop=True)
 
 
-def draw_measure(data: pd.DataFrame, benchmark: float, label: str, path: Path) -> None:
+def _unit_axis(names: pd.Series) -> pd.Categorical:
+    """Units in drawing order; identical names are told apart so each keeps its own row."""
+    labels = list(names)
+    seen: dict[str, int] = {}
+    for i, name in enumerate(labels):
+        seen[name] = seen.get(name, 0) + 1
+        if seen[name] > 1:
+            labels[i] = f"{name} ({seen[name]})"
+    return pd.Categorical(labels, categories=labels, ordered=True)
+
+
+def draw_intervals(data: pd.DataFrame, benchmark: float, label: str, path: Path, png: bool) -> None:
     """All reported units' adjusted values with credible intervals against the benchmark (both already scaled)."""
-    order = list(data["unit_name"])
-    data = data.assign(unit=pd.Categorical(data["unit_name"], categories=order, ordered=True))
+    data = data.assign(unit=_unit_axis(data["unit_name"]))
     plot = (
-        p9.ggplot(data, p9.aes(x="unit", y="rsr", ymin="lo", ymax="hi", colour="position", shape="position"))
-        + p9.geom_hline(yintercept=benchmark, linetype="dashed", colour="#000000")
+        p9.ggplot(data, p9.aes(x="unit", y="rsr", ymin="lo", ymax="hi", colour="group", shape="group"))
+        + p9.geom_hline(yintercept=benchmark, linetype="dashed", colour=BENCHMARK_INK)
         + p9.geom_linerange(size=0.8)
         + p9.geom_point(size=2.6, fill="white")
         + p9.coord_flip()
-        + _scales()
+        + _group_scales()
         + p9.labs(x="", y=f"{label} (dashed line: benchmark {benchmark:.1f})")
-        + _theme(max(3.0, 1.6 + 0.19 * len(order)))
+        + _theme(7.5, max(3.0, 1.6 + 0.19 * len(data)))
     )
-    _save(plot, path)
+    _save(plot, path, png)
 
 
-def unit_figure_data(unit_id: str, results: list[MeasureResult]) -> pd.DataFrame | None:
-    """What a unit's figure shows: its reported measures (None when none is reported)."""
+def movement_figure_data(result: MeasureResult) -> pd.DataFrame:
+    """Each reported unit's raw and adjusted value, fewest cases first (small units move most)."""
+    t = result.table[result.table["status"] == "reported"].sort_values(["cases", "unit_name"])
+    k = axis(result)[0]
+    return pd.DataFrame(
+        {"unit_name": t["unit_name"], "cases": t["cases"].astype(int), "raw": t["raw_rate"] * k, "adjusted": t["rsr_median"] * k, "group": t["group"]}
+    ).reset_index(drop=True)
+
+
+def draw_movement(data: pd.DataFrame, benchmark: float, label: str, path: Path, png: bool) -> None:
+    """An arrow per unit from its raw value (hollow circle) to its adjusted value (group marker)."""
+    data = data.assign(unit=_unit_axis([f"{n} ({c:,})" for n, c in zip(data["unit_name"], data["cases"])]))
+    plot = (
+        p9.ggplot(data)
+        + p9.geom_vline(xintercept=benchmark, linetype="dashed", colour=BENCHMARK_INK)
+        + p9.geom_segment(p9.aes(x="raw", xend="adjusted", y="unit", yend="unit"), colour="#595959",
+                          arrow=p9.arrow(length=0.06, type="closed"), size=0.5)
+        + p9.geom_point(p9.aes(x="raw", y="unit"), shape="o", fill="white", colour="#595959", size=2.2)
+        + p9.geom_point(p9.aes(x="adjusted", y="unit", colour="group", shape="group"), size=2.6)
+        + _group_scales()
+        + p9.labs(y="Unit (cases), fewest cases at the bottom", x=f"{label.replace('Adjusted mean', 'Mean').replace('Risk-standardised rate', 'Rate')}: "
+                  f"hollow circle raw, marker adjusted (dashed line: benchmark {benchmark:.1f})")
+        + _theme(7.5, max(3.0, 1.6 + 0.19 * len(data)))
+    )
+    _save(plot, path, png)
+
+
+def draw_funnel(points: pd.DataFrame, curves: pd.DataFrame, benchmark: float, label: str, path: Path, png: bool) -> None:
+    """Each unit's case-mix-adjusted value against its cases, with 95% and 99.8% control limits (scaled)."""
+    long = curves.melt(id_vars="cases", var_name="limit", value_name="value")
+    long["limits"] = np.where(long["limit"].str.endswith("998"), "99.8% limits", "95% limits")
+    long["side"] = long["limit"].str.split("_").str[0]
+    plot = (
+        p9.ggplot()
+        + p9.geom_hline(yintercept=benchmark, colour=BENCHMARK_INK)
+        + p9.geom_line(long, p9.aes(x="cases", y="value", linetype="limits", group="limit"), colour="#3A3A3A")
+        + p9.geom_point(points, p9.aes(x="cases", y="value", colour="group", shape="group"), size=2.4)
+        + p9.scale_linetype_manual(values={"95% limits": "dashed", "99.8% limits": "dotted"}, name="Control limits")
+        + _group_scales()
+        + p9.scale_x_log10()
+        + p9.labs(x="Cases (log scale)", y=f"{label} from O/E (solid line: benchmark {benchmark:.1f})")
+        + _theme(7.5, 5.2) + p9.theme(legend_box="vertical")
+    )
+    _save(plot, path, png)
+
+
+# --- unit figures ----------------------------------------------------------------------------
+
+def position_frame(results: list[MeasureResult]) -> pd.DataFrame:
+    """The part of every unit strip that is the same for all units: per measure, where most units sit.
+
+    Ratios to the network: the benchmark's ratio, and the 10th-90th percentile band of the
+    reported units' adjusted ratios.
+    """
     rows = []
     for r in results:
-        row = r.table[(r.table["unit_id"] == unit_id) & (r.table["status"] == "reported")]
-        if len(row):
-            rows.append(row.assign(measure_name=r.measure.name, bench=r.benchmark / r.network_rate))
-    if not rows:
-        return None
-    return pd.concat(rows)[["measure_name", "ratio_median", "ratio_lower", "ratio_upper", "position", "bench"]]
+        t = r.table[r.table["status"] == "reported"]
+        lo, hi = (np.quantile(t["ratio_median"], [0.1, 0.9]) if len(t) else (np.nan, np.nan))
+        rows.append({"measure": r.measure.name, "bench": r.benchmark / r.network_rate, "band_lo": lo, "band_hi": hi,
+                     "x_min": float(t["ratio_lower"].min()) if len(t) else 0.8, "x_max": float(t["ratio_upper"].max()) if len(t) else 1.25})
+    return pd.DataFrame(rows)
 
 
-def draw_unit(data: pd.DataFrame, path: Path) -> None:
-    """A unit's adjusted ratio to the network on each reported measure."""
-    data = data.assign(measure_name=pd.Categorical(data["measure_name"], categories=list(data["measure_name"])[::-1]))
+def position_data(unit_id: str, results: list[MeasureResult]) -> pd.DataFrame | None:
+    """A unit's adjusted ratio to the network on every measure (NaN where not reported); None if none reported."""
+    rows = []
+    for r in results:
+        row = r.table[r.table["unit_id"] == unit_id]
+        reported = len(row) and row["status"].iloc[0] == "reported"
+        rows.append({"measure": r.measure.name, "ratio": row["ratio_median"].iloc[0] if reported else np.nan,
+                     "lo": row["ratio_lower"].iloc[0] if reported else np.nan, "hi": row["ratio_upper"].iloc[0] if reported else np.nan,
+                     "group": row["group"].iloc[0] if reported else ""})
+    data = pd.DataFrame(rows)
+    return None if data["ratio"].isna().all() else data
+
+
+def _x_limits(frame: pd.DataFrame) -> tuple[float, float]:
+    lo = float(np.clip(np.nanmin(frame["x_min"].to_numpy()), 0.2, 0.9))
+    hi = float(np.clip(np.nanmax(frame["x_max"].to_numpy()), 1.12, 5.0))
+    return lo / 1.05, hi * 1.05
+
+
+def draw_positions(frame: pd.DataFrame, items: list[tuple[str, pd.DataFrame]]) -> None:
+    """Unit strips: the frame is drawn once with plotnine, then each unit's marks are placed and saved."""
+    from matplotlib.lines import Line2D
+
+    measures = list(frame["measure"])
+    f = frame.assign(measure=pd.Categorical(frame["measure"], categories=measures, ordered=True))
+    lo, hi = _x_limits(frame)
     plot = (
-        p9.ggplot(data, p9.aes(x="measure_name", y="ratio_median", ymin="ratio_lower", ymax="ratio_upper", colour="position", shape="position"))
-        # The benchmark as a ratio to the network rate: 1 unless a fixed benchmark is configured.
-        + p9.geom_point(p9.aes(x="measure_name", y="bench"), inherit_aes=False, shape="|", size=9, colour="#000000")
-        + p9.geom_linerange(size=0.8)
-        + p9.geom_point(size=3, fill="white")
-        + p9.coord_flip()
-        + _scales()
-        + p9.labs(x="", y="Adjusted ratio to the network\n(1 = as many events as expected for these patients; black bar: benchmark)")
-        + _theme(1.9 + 0.45 * len(data))
+        p9.ggplot(f)
+        + p9.geom_rect(p9.aes(xmin="band_lo", xmax="band_hi"), ymin=-1, ymax=1, fill=BAND_FILL, na_rm=True)
+        + p9.geom_vline(p9.aes(xintercept="bench"), linetype="dashed", colour=BENCHMARK_INK)
+        + p9.facet_wrap("measure", ncol=1)
+        + p9.scale_x_log10(limits=(lo, hi))
+        + p9.scale_y_continuous(limits=(-1, 1), breaks=[])
+        + p9.labs(x="Adjusted ratio to the network (log scale)", y="")
+        + p9.theme_bw(base_size=9)
+        + p9.theme(figure_size=(7.5, 0.55 + 0.62 * len(measures)), panel_grid_minor=p9.element_blank(), panel_grid_major_y=p9.element_blank(),
+                   axis_ticks_major_y=p9.element_blank(), strip_text=p9.element_text(ha="left"))
     )
-    _save(plot, path)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        fig = plot.draw()
+    axes = sorted(fig.axes, key=lambda a: -a.get_position().y0)[: len(measures)]
+    marks = []
+    for ax in axes:
+        line = Line2D([], [], linewidth=2.4)
+        point = Line2D([], [], linestyle="none", markersize=8, markerfacecolor="white", markeredgewidth=1.8)
+        ax.add_line(line)
+        ax.add_line(point)
+        text = ax.text(0.99, 0.5, "", transform=ax.transAxes, ha="right", va="center", fontsize=8.5, color=BENCHMARK_INK,
+                       bbox={"facecolor": "white", "edgecolor": "none", "pad": 1.5})
+        marks.append((line, point, text))
+    for path, data in items:
+        for (line, point, text), (_, row) in zip(marks, data.iterrows()):
+            if pd.isna(row["ratio"]):
+                line.set_data([], [])
+                point.set_data([], [])
+                text.set_text("not reported")
+                continue
+            colour, marker = GROUP_MARKS[row["group"]]
+            # plotnine draws a log10 scale in transformed units: place the marks the same way
+            line.set_data(np.log10([max(row["lo"], lo), min(row["hi"], hi)]), [0, 0])
+            line.set_color(colour)
+            point.set_data([np.log10(row["ratio"])], [0])
+            point.set_marker(marker)
+            point.set_markeredgecolor(colour)
+            text.set_text(GROUPS[row["group"]])
+        Path(path).parent.mkdir(parents=True, exist_ok=True)
+        fig.savefig(path, metadata={"Date": None})
+    matplotlib.pyplot.close(fig)
 
+
+def trend_data(unit_id: str, results: list[MeasureResult], past) -> pd.DataFrame | None:
+    """A unit's published adjusted values in each kept cycle and now (scaled like the measure charts)."""
+    rows = []
+    for r in results:
+        k = axis(r)[0]
+        cycles = [(p.period, p.table[p.table["measure"] == r.measure.key]) for p in past] + [(None, r.table)]
+        for i, (period, table) in enumerate(cycles):
+            row = table[(table["unit_id"] == unit_id) & (table["status"] == "reported")]
+            if len(row):
+                rows.append({"measure": r.measure.name, "order": i, "period": period or "this cycle", "value": row["rsr_median"].iloc[0] * k,
+                             "lo": row["rsr_lower"].iloc[0] * k, "hi": row["rsr_upper"].iloc[0] * k})
+    data = pd.DataFrame(rows)
+    if data.empty or data.groupby("measure")["order"].nunique().max() < 2:
+        return None  # a trend needs at least two cycles
+    return data
+
+
+def draw_trend(data: pd.DataFrame, path: Path, png: bool) -> None:
+    """A unit's adjusted value per cycle with its interval, one panel per measure."""
+    periods = list(dict.fromkeys(data.sort_values("order")["period"]))
+    data = data.assign(period=pd.Categorical(data["period"], categories=periods, ordered=True),
+                       measure=pd.Categorical(data["measure"], categories=list(dict.fromkeys(data["measure"]))))
+    plot = (
+        p9.ggplot(data, p9.aes(x="period", y="value", ymin="lo", ymax="hi", group="measure"))
+        + p9.geom_line(colour="#595959")
+        + p9.geom_linerange(size=0.8, colour="#0B3D91")
+        + p9.geom_point(size=2.4, colour="#0B3D91")
+        + p9.facet_wrap("measure", ncol=2, scales="free_y")
+        + p9.labs(x="Cycle", y="Adjusted value (% for rates)")
+        + _theme(7.5, 1.6 + 1.5 * ((data["measure"].nunique() + 1) // 2))
+    )
+    _save(plot, path, png)
+
+
+# --- model report figures --------------------------------------------------------------------
 
 def model_figure_path(measure_key: str, kind: str) -> str:
-    return f"figures/model-{measure_key}-{kind}.png"
+    return f"figures/model-{measure_key}-{kind}.svg"
 
 
 def roc_figure_data(result: MeasureResult) -> pd.DataFrame:
@@ -151,7 +386,7 @@ def roc_figure_data(result: MeasureResult) -> pd.DataFrame:
     return pd.concat(parts, ignore_index=True)
 
 
-FITS = {"In sample": ("#0072B2", "solid"), "Cross-validated": ("#D55E00", "dashed")}  # Okabe-Ito blue, vermillion
+FITS = {"In sample": ("#0072B2", "solid"), "Cross-validated": ("#C85200", "dashed")}  # Okabe-Ito blue, darkened vermillion
 
 
 def _fit_scales(data: pd.DataFrame):
@@ -161,18 +396,18 @@ def _fit_scales(data: pd.DataFrame):
     return [p9.scale_color_manual(values=colours, name=""), p9.scale_linetype_manual(values=lines, name="")]
 
 
-def draw_roc(data: pd.DataFrame, path: Path) -> None:
+def draw_roc(data: pd.DataFrame, path: Path, png: bool) -> None:
     """ROC curve(s) with the diagonal of a coin toss."""
     plot = (
         p9.ggplot(data, p9.aes(x="false_positive_rate", y="true_positive_rate", colour="fit", linetype="fit"))
-        + p9.geom_abline(intercept=0, slope=1, colour="#767676", linetype="dotted")
+        + p9.geom_abline(intercept=0, slope=1, colour="#595959", linetype="dotted")
         + p9.geom_line(size=0.9)
         + _fit_scales(data)
         + p9.coord_equal()
         + p9.labs(x="False-positive rate (1 - specificity)", y="True-positive rate (sensitivity)")
-        + _theme(5.0) + p9.theme(figure_size=(5.0, 5.0))
+        + _theme(5.0, 5.0)
     )
-    _save(plot, path)
+    _save(plot, path, png)
 
 
 def calibration_figure_data(result: MeasureResult) -> pd.DataFrame:
@@ -187,18 +422,53 @@ def calibration_figure_data(result: MeasureResult) -> pd.DataFrame:
     )
 
 
-def draw_calibration(data: pd.DataFrame, label: str, path: Path) -> None:
+def draw_calibration(data: pd.DataFrame, label: str, path: Path, png: bool) -> None:
     """Observed against expected by risk group; points on the diagonal are perfectly calibrated."""
     top = float(max(data["expected"].max(), data["observed"].max())) * 1.05
     plot = (
         p9.ggplot(data, p9.aes(x="expected", y="observed", colour="fit", shape="fit"))
-        + p9.geom_abline(intercept=0, slope=1, colour="#767676", linetype="dotted")
+        + p9.geom_abline(intercept=0, slope=1, colour="#595959", linetype="dotted")
         + p9.geom_line(p9.aes(linetype="fit"), size=0.6)
         + p9.geom_point(size=2.6)
         + _fit_scales(data)
         + p9.scale_shape_manual(values={n: ("o" if n == "In sample" else "^") for n in data["fit"].unique()}, name="")
         + p9.coord_equal(xlim=(0, top), ylim=(0, top))
         + p9.labs(x=f"Expected ({label})", y=f"Observed ({label})")
-        + _theme(5.0) + p9.theme(figure_size=(5.0, 5.0))
+        + _theme(5.0, 5.0)
     )
-    _save(plot, path)
+    _save(plot, path, png)
+
+
+# --- what to draw ----------------------------------------------------------------------------
+
+def plan(results: list[MeasureResult], unit_ids, slugs: dict[str, str], past, funnels: dict) -> list[Job]:
+    """Every figure of the site as a drawing job (measure charts with PNG beside, unit strips, model plots)."""
+    jobs: list[Job] = []
+    for r in results:
+        scale, label = axis(r)
+        key_ = r.measure.key
+        data = measure_figure_data(r)
+        if len(data):
+            jobs.append(Job(measure_figure_path(key_, "intervals"), "draw_intervals", data, (r.benchmark * scale, label), png=True))
+            jobs.append(Job(measure_figure_path(key_, "movement"), "draw_movement", movement_figure_data(r), (r.benchmark * scale, label), png=True))
+        f = funnels.get(key_)
+        if f is not None:
+            cols = ["value", "lower_998", "lower_95", "upper_95", "upper_998"]
+            points = f.points.assign(**{c: f.points[c] * scale for c in cols})
+            curves = f.curves.assign(**{c: f.curves[c] * scale for c in cols[1:]})
+            jobs.append(Job(measure_figure_path(key_, "funnel"), "draw_funnel", points, (curves, f.benchmark * scale, label), png=True))
+        if r.validation is not None:
+            jobs.append(Job(model_figure_path(key_, "calibration"), "draw_calibration", calibration_figure_data(r),
+                            ("%" if r.validation.binary else r.measure.unit_label,)))
+            if r.validation.binary:
+                jobs.append(Job(model_figure_path(key_, "roc"), "draw_roc", roc_figure_data(r)))
+    frame = position_frame(results)
+    for uid in unit_ids:
+        data = position_data(uid, results)
+        if data is not None:
+            jobs.append(Job(unit_figure_path(slugs[uid], "position"), "draw_position", data, (frame,)))
+        if past:
+            trend = trend_data(uid, results, past)
+            if trend is not None:
+                jobs.append(Job(unit_figure_path(slugs[uid], "trend"), "draw_trend", trend))
+    return jobs

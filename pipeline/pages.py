@@ -17,7 +17,10 @@ import pandas as pd
 
 from . import templates_path
 from .config import CycleConfig
-from .figures import measure_figure_path, unit_figure_path
+from . import captions
+from .captions import FigureView, attr
+from .figures import axis, measure_figure_data, measure_figure_path, movement_figure_data, png_of, position_data, trend_data, unit_figure_path
+from .funnel import Funnel, outside
 from .history import PastCycle, changes
 from .report import model_view
 from .results import GROUPS, POSITION, STATUS, MeasureResult
@@ -158,7 +161,8 @@ class MeasureView:
     model_href: str
     kind: str  # binary or continuous
     words: dict[str, str]  # column and sentence words that differ between rates and means
-    figure: str
+    figures: list[FigureView]
+    funnel_words: str
     patients: str
     events: str
     network_rate: str
@@ -182,8 +186,9 @@ class UnitView:
     name: str
     kind: str
     href: str
-    figure: str  # "" when the unit has no reported measure
+    figures: list[FigureView]  # position strip, then the trend when history exists
     cells: list[tuple[MeasureView, Cell]]
+    summary: str  # one plain sentence over all measures
 
 
 def _sentence(name: str, m: MeasureResult, row: pd.Series, level: str, min_cases: int) -> str:
@@ -203,26 +208,27 @@ def _group_sentence(m: MeasureResult, row: pd.Series) -> str:
     """The unit's group, how sure we are of it, its rank and how much rests on its own patients."""
     group, other = row["group"], chance(row["prob_other_side"])
     if group == "typical":
-        text = f"It is {GROUPS['typical'].lower()}: the data cannot tell it apart from the benchmark."
+        text = f"It is {GROUPS['typical'].lower()}. The data cannot tell it apart from the benchmark."
     else:
-        text = f"It {GROUPS[group].lower()} than the benchmark; the chance that it is really on the other side is {other}."
-    text += f" Among the {int(m.table['status'].eq('reported').sum())} units reported, its rank is probably between {row['rank_lower']:.0f} and {row['rank_upper']:.0f} (1 = best)."
+        text = f"It {GROUPS[group].lower()} than the benchmark. The chance that it is really on the other side is {other}."
+    shown = int(m.table["status"].eq("reported").sum())
+    text += f" Among the {shown} units shown, its rank is likely between {row['rank_lower']:.0f} and {row['rank_upper']:.0f} (1 is best)."
     if pd.notna(row["own_weight"]):
-        text += f" About {row['own_weight'] * 100:.0f}% of this estimate rests on the unit's own patients and the rest on the network."
+        text += f" About {row['own_weight'] * 100:.0f}% of this estimate comes from the unit's own patients, and the rest from the network."
     return text
 
 
 def _estimate_sentence(name: str, m: MeasureResult, row: pd.Series, level: str) -> str:
     if m.measure.type == "continuous":
         return (
-            f"After allowing for how ill its patients were, the average at {name} is about {value(m.measure, row['rsr_median'])} "
-            f"(we are {level} sure it lies between {value_span(m.measure, row['rsr_lower'], row['rsr_upper'])}). "
-            f"The network average is {value(m.measure, m.benchmark)}. The chance that this unit's adjusted average is above it is {chance(row['prob_above_benchmark'])}."
+            f"Allowing for how ill its patients were, the average here is about {value(m.measure, row['rsr_median'])}. "
+            f"We are {level} sure the true average is between {value(m.measure, row['rsr_lower'])} and {value(m.measure, row['rsr_upper'])}. "
+            f"The network average is {value(m.measure, m.benchmark)}. The chance that this unit's average is above it is {chance(row['prob_above_benchmark'])}."
         )
     return (
-        f"After allowing for how ill its patients were, {natural_frequency(row['rsr_median'])} at {name} "
-        f"would be expected to have this outcome (we are {level} sure it lies between {span(row['rsr_lower'], row['rsr_upper'])}). "
-        f"The benchmark is {pct(m.benchmark)}. The chance that this unit's adjusted rate is above the benchmark is {chance(row['prob_above_benchmark'])}."
+        f"Allowing for how ill its patients were, we estimate that {natural_frequency(row['rsr_median'])} here would have this outcome. "
+        f"We are {level} sure the true rate is between {pct(row['rsr_lower'])} and {pct(row['rsr_upper'])}. "
+        f"The benchmark is {pct(m.benchmark)}. The chance that this unit's rate is above the benchmark is {chance(row['prob_above_benchmark'])}."
     )
 
 
@@ -255,12 +261,66 @@ def _cell(m: MeasureResult, row: pd.Series, level: str, min_cases: int) -> Cell:
     )
 
 
-def _if_drawn(path: str, drawn: set[str]) -> str:
-    return path if path in drawn else ""
+def _measure_figures(m: MeasureResult, drawn: set[str], f: Funnel | None, level: str) -> tuple[list[FigureView], str]:
+    """The measure's pictures (intervals, funnel, movement) with their words and tables; and the funnel in a sentence."""
+    k = axis(m)[0]
+    unit = md(m.measure.unit_label) if m.measure.type == "continuous" else "%"
+    fmt = (lambda x: f"{x:,.1f} {unit}") if m.measure.type == "continuous" else (lambda x: f"{x:.1f}%")
+    bench = fmt(m.benchmark * k)
+    out = []
+    path = measure_figure_path(m.measure.key, "intervals")
+    if path in drawn:
+        out.append(captions.intervals(path, png_of(path), measure_figure_data(m), fmt, lambda lo, hi: f"{fmt(lo)} to {fmt(hi)}", bench, level, md))
+    words = ""
+    path = measure_figure_path(m.measure.key, "funnel")
+    if f is not None:
+        counts = outside(f)
+        points = f.points.assign(**{c: f.points[c] * k for c in ("value", "lower_998", "lower_95", "upper_95", "upper_998")})
+        if path in drawn:
+            out.append(captions.funnel(path, png_of(path), points, fmt, bench, counts, f.phi, f.widened, md))
+        spread = "about what chance alone would give" if f.phi < 1.5 else f"{f.phi:.1f} times what chance alone would give"
+        words = (f"In the funnel plot, {counts['998']} of {counts['units']} units are outside the outer (99.8%) limits and {counts['95']} are outside the inner (95%) limits. "
+                 f"The spread between units is {spread}. "
+                 + ("The limits were widened to allow for it." if f.widened else "The limits were not widened for it."))
+    path = measure_figure_path(m.measure.key, "movement")
+    if path in drawn:
+        points_word = "percentage points" if m.measure.type == "binary" else unit
+        out.append(captions.movement(path, png_of(path), movement_figure_data(m), fmt, bench, points_word, md))
+    return out, words
+
+
+def _unit_figures(uid: str, name: str, slug_: str, results: list[MeasureResult], past: list[PastCycle], drawn: set[str]) -> list[FigureView]:
+    out = []
+    path = unit_figure_path(slug_, "position")
+    if path in drawn:
+        out.append(captions.position(path, position_data(uid, results), name, md))
+    path = unit_figure_path(slug_, "trend")
+    if path in drawn:
+        out.append(captions.trend(path, trend_data(uid, results, past), name, md))
+    return out
+
+
+def _unit_summary(cells: list[tuple[MeasureView, Cell]]) -> str:
+    """One sentence over all measures: how many reported and in which groups."""
+    reported = [(m, c) for m, c in cells if c.status == "reported"]
+    if not reported:
+        return "No measure has enough cases at this unit to report in this period."
+    parts = []
+    for g in ("worse", "better"):
+        names = [m.name for m, c in reported if c.group == g]
+        if names:
+            parts.append(f"{GROUPS[g].lower()} on {', '.join(names)}")
+    typical = sum(c.group == "typical" for _, c in reported)
+    text = f"{len(reported)} of {len(cells)} measures are reported. "
+    if parts:
+        text += "This unit " + " and ".join(parts) + ". "
+    text += f"On {typical} {'measure' if typical == 1 else 'measures'} it is in line with the benchmark."
+    return text
 
 
 def views(
-    config: CycleConfig, results: list[MeasureResult], units: pd.DataFrame, slugs: dict[str, str], drawn: set[str]
+    config: CycleConfig, results: list[MeasureResult], units: pd.DataFrame, slugs: dict[str, str], drawn: set[str],
+    funnels: dict[str, Funnel | None] | None = None, past: list[PastCycle] | None = None,
 ) -> tuple[list[MeasureView], list[UnitView]]:
     """Format every number once; return the measure and unit views the templates lay out."""
     level = f"{config.reporting.interval * 100:g}%"
@@ -273,10 +333,11 @@ def views(
             for term, r in m.casemix.coefficients.iterrows()
         ]
         continuous = m.measure.type == "continuous"
+        figures, funnel_words = _measure_figures(m, drawn, (funnels or {}).get(m.measure.key), level)
         view = MeasureView(
             key=m.measure.key, name=md(m.measure.name), definition=md(m.measure.definition), better=m.measure.better,
             href=f"measures/{m.measure.key}.qmd", model_href=f"models/{m.measure.key}.qmd", kind=m.measure.type,
-            words=WORDS["continuous" if continuous else "binary"], figure=_if_drawn(measure_figure_path(m.measure.key), drawn),
+            words=WORDS["continuous" if continuous else "binary"], figures=figures, funnel_words=funnel_words,
             patients=f"{m.casemix.patients:,}", events=f"{m.casemix.events:,.0f}" + (f" {md(m.measure.unit_label)}" if continuous else ""),
             network_rate=value(m.measure, m.network_rate), benchmark=value(m.measure, m.benchmark),
             benchmark_is_network=config.reporting.benchmark == "network" or continuous,
@@ -299,7 +360,7 @@ def views(
         measures.append(view)
     unit_views = [
         UnitView(id=md(uid), name=md(u["name"]), kind=md(u["kind"]), href=f"units/{slugs[uid]}.qmd",
-                 figure=_if_drawn(unit_figure_path(slugs[uid]), drawn), cells=cells[uid])
+                 figures=_unit_figures(uid, u["name"], slugs[uid], results, past or [], drawn), cells=cells[uid], summary=_unit_summary(cells[uid]))
         for uid, u in units.iterrows()
     ]
     return measures, unit_views
@@ -316,6 +377,7 @@ def environment() -> jinja2.Environment:
     )
     env.filters["md"] = md
     env.filters["code"] = code
+    env.filters["attr"] = attr
     env.filters["yaml"] = lambda s: json.dumps(str(s), ensure_ascii=False)  # a JSON string is a YAML scalar
     return env
 
@@ -363,11 +425,11 @@ def change_views(results: list[MeasureResult], previous: PastCycle | None, slugs
 
 def render_pages(
     config: CycleConfig, results: list[MeasureResult], units: pd.DataFrame, slugs: dict[str, str], drawn: set[str],
-    past: list[PastCycle], site: dict,
+    past: list[PastCycle], site: dict, funnels: dict[str, Funnel | None] | None = None,
 ) -> list[Page]:
     """All pages of the site plus ``_quarto.yml``, as text."""
     env = environment()
-    measures, unit_views = views(config, results, units, slugs, drawn)
+    measures, unit_views = views(config, results, units, slugs, drawn, funnels, past)
     unit_trends = trends(config, results, past, slugs)
     common = {
         "cycle": config.cycle, "site": site, "measures": measures, "units": unit_views, "limits": LIMITS,
@@ -378,6 +440,7 @@ def render_pages(
     pages = [
         ("index.qmd", "index.qmd.j2", {}),
         ("units.qmd", "units.qmd.j2", {}),
+        ("guide.qmd", "guide.qmd.j2", {}),
         *[(m.href, "measure.qmd.j2", {"m": m}) for m in measures],
         *[(u.href, "unit.qmd.j2", {"u": u, "trend": unit_trends[uid] if past else []}) for uid, u in zip(units.index, unit_views)],
         ("changes.qmd", "changes.qmd.j2", {"previous": md(past[-1].period) if past else "", "blocks": change_views(results, past[-1] if past else None, slugs)}),

@@ -9,6 +9,7 @@ links, figures and downloads.
 from __future__ import annotations
 
 import html
+import json
 import re
 import shutil
 from dataclasses import dataclass
@@ -22,6 +23,7 @@ from markupsafe import Markup
 from . import __version__, templates_path
 from .errors import RenderError
 from .external import find_tool, run_tool
+from .readability import prose
 
 ASSETS = ("figures", "downloads", "assets", "fairgauge-manifest.json")  # copied as they are
 
@@ -58,8 +60,11 @@ def render_site(project: Path, out: Path, renderer: Renderer) -> None:
 
 
 _FRONT = re.compile(r"\A---\n(.*?)\n---\n", re.S)
-_DIV_OPEN = re.compile(r"^:::+\s*\{\.([\w-]+)(?:\s+title=\"([^\"]*)\")?\s*\}\s*$")
+_DIV_OPEN = re.compile(r"^:::+\s*\{([^}]*)\}\s*$")
+_DIV_ATTR = re.compile(r'#([\w-]+)|\.([\w-]+)|([\w-]+)="([^"]*)"')
+_FIGURE = re.compile(r'^!\[(?P<caption>.*)\]\((?P<src>[^)\s]+)\)\{fig-alt="(?P<alt>[^"]*)"\}\s*$')
 _DIV_CLOSE = re.compile(r"^:::+\s*$")
+_ALIGN = re.compile(r'<(th|td) style="text-align:(left|right|center)">')
 _QMD_LINK = re.compile(r'(href="[^"#:]*?)\.qmd(#[^"]*)?"')
 
 
@@ -81,26 +86,64 @@ class BuiltinRenderer:
         return self.md.renderInline(text)
 
     def blocks(self, lines: list[str]) -> str:
-        """Markdown with fenced divs (``::: {.class title="..."}``) to HTML."""
-        html, chunk, i = [], [], 0
+        """Markdown with fenced divs (``::: {#id .class key="value"}``) and figures to HTML.
+
+        Callout divs become notes (``collapse="true"``: a ``<details>`` the reader opens); other
+        divs keep their id and classes; an image with ``{fig-alt="..."}`` becomes a figure whose
+        caption is the image text and whose alt text is ``fig-alt``, as in Quarto.
+        """
+        out, chunk, i = [], [], 0
+
+        def flush():
+            out.append(self.md.render("\n".join(chunk)))
+            chunk.clear()
+
         while i < len(lines):
+            figure = _FIGURE.match(lines[i])
             opened = _DIV_OPEN.match(lines[i])
+            if figure:
+                flush()
+                out.append(
+                    f'<figure><img src="{html.escape(figure["src"])}" alt="{html.escape(figure["alt"])}" loading="lazy">'
+                    f"<figcaption>{self.inline(figure['caption'])}</figcaption></figure>\n"
+                )
+                i += 1
+                continue
             if not opened:
                 chunk.append(lines[i])
                 i += 1
                 continue
-            html.append(self.md.render("\n".join(chunk)))
-            chunk, depth, j = [], 1, i + 1
+            flush()
+            depth, j = 1, i + 1
             while j < len(lines) and depth:
                 depth += 1 if _DIV_OPEN.match(lines[j]) else -1 if _DIV_CLOSE.match(lines[j]) else 0
                 j += 1
             inner = self.blocks(lines[i + 1 : j - 1])
-            cls, title = opened.group(1), opened.group(2)
-            head = f'<p class="callout-title">{self.inline(title)}</p>' if title else ""
-            html.append(f'<aside class="callout {cls}" role="note">{head}{inner}</aside>\n')
+            out.append(self.div(opened.group(1), inner))
             i = j
-        html.append(self.md.render("\n".join(chunk)))
-        return "".join(html)
+        flush()
+        return "".join(out)
+
+    def div(self, attributes: str, inner: str) -> str:
+        ident, classes, attrs = "", [], {}
+        for m in _DIV_ATTR.finditer(attributes):
+            if m.group(1):
+                ident = m.group(1)
+            elif m.group(2):
+                classes.append(m.group(2))
+            else:
+                attrs[m.group(3)] = m.group(4)
+        id_attr = f' id="{html.escape(ident)}"' if ident else ""
+        callout = next((c for c in classes if c.startswith("callout")), None)
+        if callout:
+            title = self.inline(attrs["title"]) if attrs.get("title") else ""
+            if attrs.get("collapse") == "true":
+                return (f'<details{id_attr} class="callout {callout}"><summary class="callout-title">{title or "More"}</summary>'
+                        f"{inner}</details>\n")
+            head = f'<p class="callout-title">{title}</p>' if title else ""
+            return f'<aside{id_attr} class="callout {callout}" role="note">{head}{inner}</aside>\n'
+        cls = f' class="{html.escape(" ".join(classes))}"' if classes else ""
+        return f"<div{id_attr}{cls}>{inner}</div>\n"
 
     def nav(self, up: str) -> list[dict]:
         def link(item: dict) -> dict:
@@ -111,7 +154,8 @@ class BuiltinRenderer:
 
         return [link(x) for x in self.config["website"]["navbar"]["left"]]
 
-    def page(self, rel: str) -> str:
+    def page(self, rel: str) -> tuple[str, dict]:
+        """(HTML of one page, its front matter)."""
         text = (self.project / rel).read_text("utf-8")
         front = _FRONT.match(text)
         if not front:
@@ -119,28 +163,64 @@ class BuiltinRenderer:
         meta = yaml.safe_load(front.group(1)) or {}
         body = self.blocks(text[front.end() :].splitlines())
         body = _QMD_LINK.sub(lambda m: f'{m.group(1)}.html{m.group(2) or ""}"', body)
-        up = "../" * (len(PurePosixPath(rel).parts) - 1)
+        body = _ALIGN.sub(r'<\1 class="fg-\2">', body)  # the page's CSP allows no inline styles
+        return self.shell_page(rel.replace(".qmd", ".html"), meta, Markup(body)), meta
+
+    def shell_page(self, rel_html: str, meta: dict, body: Markup) -> str:
+        up = "../" * (len(PurePosixPath(rel_html).parts) - 1)
         website = self.config["website"]
+        site_url = website.get("site-url", "")
         return self.shell.render(
             up=up,
             site_title=website["title"],
             title=Markup(self.inline(str(meta.get("title", "")))),
             subtitle=Markup(self.inline(str(meta.get("subtitle", "")))),
-            plain_title=html.unescape(re.sub(r"\\(.)", r"\1", str(meta.get("title", "")))),
-            body=Markup(body),
+            plain_title=_plain(meta.get("title", "")),
+            description=str(meta.get("description", website.get("description", ""))),
+            canonical=(site_url + rel_html) if site_url else "",
+            body=body,
             nav=self.nav(up),
-            current=rel.replace(".qmd", ".html"),
+            current=rel_html,
             footer=Markup(self.inline(website["page-footer"]["left"])),
         )
 
     def render(self, out: Path) -> None:
+        index = []
         for rel in self.config["project"]["render"]:
             target = out / PurePosixPath(rel).with_suffix(".html")
             target.parent.mkdir(parents=True, exist_ok=True)
-            target.write_text(self.page(rel), encoding="utf-8")
+            page, meta = self.page(rel)
+            target.write_text(page, encoding="utf-8")
+            index.append({"title": _plain(meta.get("title", "")), "url": str(PurePosixPath(rel).with_suffix(".html")),
+                          "text": " ".join(prose(page))[:SEARCH_TEXT]})
         for folder in ASSETS:
             source = self.project / folder
             if source.is_dir():
                 shutil.copytree(source, out / folder, dirs_exist_ok=True)
             elif source.is_file():
                 shutil.copy2(source, out / folder)
+        self.search(out, index)
+
+    def search(self, out: Path, index: list[dict]) -> None:
+        """The site search: ``search.html`` lists every page (without JavaScript) and filters it as you type."""
+        (out / "assets").mkdir(exist_ok=True)
+        payload = json.dumps(index, ensure_ascii=False, separators=(",", ":")).replace("</", "<\\/")
+        (out / "assets" / "search-index.js").write_text(f"window.FAIRGAUGE_INDEX = {payload};\n", encoding="utf-8")
+        items = "".join(f'<li><a href="{html.escape(p["url"])}">{html.escape(p["title"])}</a></li>' for p in index)
+        body = Markup(
+            '<form class="fg-search-page" role="search" aria-label="Search the pages" action="search.html" method="get">'
+            '<label for="fg-search-box">Words to look for</label> '
+            '<input type="search" id="fg-search-box" name="q" autocomplete="off"> <button type="submit">Search</button></form>'
+            '<p id="fg-search-status" aria-live="polite">Every page of this site is listed below.</p>'
+            f'<ul id="fg-search-results" class="fg-names" data-up="">{items}</ul>'
+            '<script src="assets/search-index.js"></script>'
+        )
+        meta = {"title": "Search this site", "description": "Find a unit, a measure or a topic on this site."}
+        (out / "search.html").write_text(self.shell_page("search.html", meta, body), encoding="utf-8")
+
+
+SEARCH_TEXT = 4000  # characters of each page's prose kept in the search index
+
+
+def _plain(title: object) -> str:
+    return html.unescape(re.sub(r"\\(.)", r"\1", str(title)))

@@ -12,6 +12,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from .casemix import FAMILIES
+from .captions import FigureView, attr
 from .figures import model_figure_path
 from .results import POSITION, MeasureResult
 from .validation import LABELS
@@ -39,10 +40,8 @@ class ModelView:
     folds: int
     groups: list[dict[str, str]]
     summary: list[str]
-    roc: str
-    calibration: str
-    roc_alt: str
-    calibration_alt: str
+    roc: FigureView | None
+    calibration: FigureView | None
     equity: list[dict[str, str]]
     equity_summary: str
     social_risk: str
@@ -104,12 +103,36 @@ def _summary(m: MeasureResult, md) -> list[str]:
     return out
 
 
+def _roc_figure(m: MeasureResult, path: str) -> FigureView:
+    v = m.validation
+    grid = [0.0, 0.05, 0.1, 0.2, 0.3, 0.4, 0.5, 0.6, 0.8, 1.0]
+    def at(roc):
+        return np.interp(grid, roc["false_positive_rate"], roc["true_positive_rate"])
+    inside = at(v.in_sample.roc)
+    cv = at(v.cross_validated.roc) if v.cross_validated is not None else None
+    rows = [[f"{g:.2f}", f"{a:.3f}", f"{cv[i]:.3f}" if cv is not None else ""] for i, (g, a) in enumerate(zip(grid, inside))]
+    return FigureView(path, "", "ROC curve: the further above the dotted diagonal, the better the model tells patients apart.", attr(_alt_roc(m)),
+                      ["False-positive rate", "True-positive rate, in sample", "True-positive rate, cross-validated"], rows)
+
+
+def _calibration_figure(m: MeasureResult, path: str, unit: str) -> FigureView:
+    v = m.validation
+    k = 100.0 if v.binary else 1.0
+    cvg = v.cross_validated.groups if v.cross_validated is not None else None
+    rows = [[f"{int(g['group'])}", f"{g['expected_mean'] * k:.2f}", f"{g['observed_mean'] * k:.2f}",
+             f"{cvg['expected_mean'].iloc[i] * k:.2f}" if cvg is not None and i < len(cvg) else "",
+             f"{cvg['observed_mean'].iloc[i] * k:.2f}" if cvg is not None and i < len(cvg) else ""]
+            for i, g in v.in_sample.groups.iterrows()]
+    return FigureView(path, "", "Calibration: observed against expected by risk group; points on the dotted diagonal are perfectly calibrated.",
+                      attr(_alt_calibration(m, unit)), ["Risk group", f"Expected ({unit})", f"Observed ({unit})", "Expected, cross-validated", "Observed, cross-validated"], rows)
+
+
 def _alt_roc(m: MeasureResult) -> str:
     v = m.validation
     text = f"ROC curve of the case-mix model for {m.measure.name}: the in-sample curve has area {v.in_sample.values['c_statistic']:.3f}"
     if v.cross_validated is not None:
         text += f", the cross-validated curve {v.cross_validated.values['c_statistic']:.3f}"
-    return text + ". Both rise above the dotted diagonal of a coin toss. The numbers are in the table below."
+    return text + ". Both rise above the dotted diagonal of a coin toss"
 
 
 def _alt_calibration(m: MeasureResult, unit: str) -> str:
@@ -118,7 +141,7 @@ def _alt_calibration(m: MeasureResult, unit: str) -> str:
     return (f"Calibration of the case-mix model for {m.measure.name}: observed against expected in {len(g)} risk groups, from "
             f"{g['expected_mean'].iloc[0] * k:.1f} to {g['expected_mean'].iloc[-1] * k:.1f} {unit} expected and "
             f"{g['observed_mean'].iloc[0] * k:.1f} to {g['observed_mean'].iloc[-1] * k:.1f} {unit} observed; points on the dotted diagonal "
-            "would be perfectly calibrated. The numbers are in the table below.")
+            "would be perfectly calibrated")
 
 
 def _losses(m: MeasureResult, md) -> str:
@@ -194,7 +217,7 @@ def model_view(m: MeasureResult, drawn: set[str], md, code) -> ModelView:
         ratio_word=ratio_word.capitalize(), formula=code(fit.formula), patients=f"{fit.patients:,}", units_in_fit=fit.units_in_fit,
         solver=fit.solver, extra=extra, exclusions=exclusions, coefficients=coefficients, validation=rows,
         folds=v.folds if v is not None else 0, groups=groups, summary=_summary(m, md),
-        roc=roc_path if roc_path in drawn else "", calibration=cal_path if cal_path in drawn else "",
-        roc_alt=_alt_roc(m) if roc_path in drawn else "", calibration_alt=_alt_calibration(m, unit) if cal_path in drawn else "",
+        roc=_roc_figure(m, roc_path) if roc_path in drawn else None,
+        calibration=_calibration_figure(m, cal_path, unit) if cal_path in drawn else None,
         equity=equity, equity_summary=equity_summary, social_risk=", ".join(md(s) for s in m.measure.social_risk),
     )

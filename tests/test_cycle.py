@@ -47,7 +47,7 @@ def test_quarto_project_is_complete_and_has_no_code_cells(demo_cycle):
     listed = config["project"]["render"]
     on_disk = sorted(p.relative_to(project).as_posix() for p in project.rglob("*.qmd"))
     assert sorted(listed) == on_disk
-    assert len(listed) == 1 + 1 + 2 * len(summary.measures) + summary.units + 4  # home, units, measures, model reports, profiles, changes, methods, cautions, downloads
+    assert len(listed) == 1 + 1 + 1 + 2 * len(summary.measures) + summary.units + 4  # home, units, guide, measures, model reports, profiles, changes, methods, cautions, downloads
     for item in config["website"]["navbar"]["left"]:
         for link in item.get("menu", [item]):
             assert (project / link["href"]).is_file()
@@ -60,7 +60,7 @@ def test_quarto_project_is_complete_and_has_no_code_cells(demo_cycle):
 def test_every_page_is_rendered_and_every_link_and_image_resolves(demo_cycle):
     _, summary, site = demo_cycle
     pages = _html_pages(site)
-    assert len(pages) == 1 + 1 + 2 * len(summary.measures) + summary.units + 4
+    assert len(pages) == 1 + 1 + 1 + 2 * len(summary.measures) + summary.units + 4 + 1  # ... and the built-in renderer's search page
     broken = []
     for page in pages:
         parser = _Links()
@@ -73,7 +73,8 @@ def test_every_page_is_rendered_and_every_link_and_image_resolves(demo_cycle):
             if not path.is_file():
                 broken.append(f"{page.relative_to(site)} -> {target}")
     assert broken == []
-    assert (site / "figures" / "measure-readmit30.png").stat().st_size > 10_000
+    assert (site / "figures" / "intervals-readmit30.svg").stat().st_size > 10_000
+    assert (site / "figures" / "intervals-readmit30.png").stat().st_size > 10_000
     assert (site / MARKER).is_file()
 
 
@@ -81,7 +82,7 @@ def test_every_page_says_the_data_are_invented_and_carries_the_caution(demo_cycl
     _, _, site = demo_cycle
     for page in _html_pages(site):
         text = page.read_text()
-        assert "Everything on this site is invented for demonstration" in text, page
+        assert "Everything on this site is invented, to show how the site works" in text, page
         assert "invented demonstration data" in text, page  # footer
     for page in ["index.html", "cautions.html", "measures/death30.html", "units/mv01.html"]:
         assert "Do not choose or avoid care on these numbers alone" in (site / page).read_text()
@@ -131,7 +132,7 @@ def test_model_reports_show_validation_exclusions_and_social_risk(demo_cycle):
     assert f"{v.in_sample.values['c_statistic']:.3f} ({v.in_sample.values['c_lower']:.3f} to {v.in_sample.values['c_upper']:.3f})" in readmit
     assert "Hosmer-Lemeshow statistic" in readmit and "Calibration slope" in readmit and "Brier score" in readmit
     for kind in ("roc", "calibration"):
-        assert f'src="../figures/model-readmit30-{kind}.png"' in readmit and (site / "figures" / f"model-readmit30-{kind}.png").stat().st_size > 5000
+        assert f'src="../figures/model-readmit30-{kind}.svg"' in readmit and (site / "figures" / f"model-readmit30-{kind}.svg").stat().st_size > 5000
     dropped = by_key["readmit30"].casemix.exclusions["dropped_rows"]
     assert dropped > 0 and f"{dropped:,} patients were left out of this measure" in readmit
     assert by_key["readmit30"].equity is not None and "Social risk: with and without" in readmit

@@ -70,7 +70,34 @@ def test_builtin_renderer_turns_callouts_links_and_tables_into_html(tmp_path):
     assert 'href="../index.html"' in page and 'href="../assets/fairgauge.css"' in page
     assert "<h1>A &lt;b&gt;</h1>" in page and "<title>A &lt;b&gt; · T</title>" in page
     assert '<a href="../index.html">Home (A&amp;E)</a>' in page
-    assert '<td style="text-align:right">2</td>' in page
+    assert '<td class="fg-right">2</td>' in page and "style=" not in page  # the CSP allows no inline styles
+    assert 'href="../index.html" aria-current="page"' not in page and 'href="index.html" aria-current="page"' in index
+
+
+def test_builtin_renderer_makes_figures_details_and_divs_like_quarto(tmp_path):
+    (tmp_path / "_quarto.yml").write_text(
+        'project:\n  render: ["index.qmd"]\nwebsite:\n  title: "T"\n  site-url: "https://example.org/x/"\n'
+        '  page-footer:\n    left: "F"\n  navbar:\n    left:\n      - href: index.qmd\n        text: "Home"\n'
+    )
+    (tmp_path / "index.qmd").write_text(
+        '---\ntitle: "Home"\ndescription: "About <this>"\n---\n\n'
+        '::: {#box .fg-sortable}\n| a |\n|:--|\n| 1 |\n:::\n\n'
+        '![Short *caption*.](figures/a.svg){fig-alt="Long alt with <tags> & 3 numbers"}\n\n'
+        '::: {.callout-note collapse="true" title="The numbers"}\nHidden **table**.\n:::\n'
+    )
+    out = tmp_path / "out"
+    out.mkdir()
+    BuiltinRenderer(tmp_path).render(out)
+    index = (out / "index.html").read_text()
+    assert '<div id="box" class="fg-sortable"><table>' in index
+    assert ('<figure><img src="figures/a.svg" alt="Long alt with &lt;tags&gt; &amp; 3 numbers" loading="lazy">'
+            "<figcaption>Short <em>caption</em>.</figcaption></figure>") in index
+    assert '<details class="callout callout-note"><summary class="callout-title">The numbers</summary><p>Hidden <strong>table</strong>.</p>' in index
+    assert '<meta name="description" content="About &lt;this&gt;">' in index
+    assert '<link rel="canonical" href="https://example.org/x/index.html">' in index
+    search = (out / "search.html").read_text()
+    assert '<a href="index.html">Home</a>' in search and 'src="assets/search-index.js"' in search
+    assert "Hidden table" in (out / "assets" / "search-index.js").read_text()
 
 
 def test_external_tool_output_is_returned_and_replayed_on_failure():
