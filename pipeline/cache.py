@@ -9,6 +9,7 @@ The cache is local working data, never part of the site.
 
 from __future__ import annotations
 
+import functools
 import hashlib
 import json
 import os
@@ -24,15 +25,20 @@ from . import __version__
 _LIBRARIES = ("numpy", "pandas", "statsmodels", "pymc", "nutpie", "arviz", "plotnine", "matplotlib")
 
 
-def library_versions() -> dict[str, str]:
-    """fairgauge and the libraries its numbers and figures depend on (manifest and cache keys)."""
+@functools.lru_cache(maxsize=1)
+def _versions() -> tuple:
     found = {"fairgauge": __version__}
     for name in _LIBRARIES:
         try:
             found[name] = metadata.version(name)
         except metadata.PackageNotFoundError:
             found[name] = "absent"
-    return found
+    return tuple(found.items())
+
+
+def library_versions() -> dict[str, str]:
+    """fairgauge and the libraries its numbers and figures depend on (manifest and cache keys); read once per process."""
+    return dict(_versions())
 
 
 def key(*parts: Any) -> str:

@@ -46,6 +46,7 @@ BAND_FILL = "#DCE3EA"  # background band only; never the sole carrier of meaning
 DPI = 110
 MAX_FIGURE_UNITS = 300  # above this a chart with one row per unit is unreadable and slow to draw
 WORKERS = max(1, min(2, os.cpu_count() or 1))
+PNG_MAX_UNITS = 100
 LEGEND = "Group"
 
 
@@ -59,7 +60,7 @@ def _group_scales():
 
 def _theme(width: float, height: float):
     return p9.theme_bw(base_size=10) + p9.theme(
-        figure_size=(width, height), legend_position="bottom", legend_direction="horizontal", panel_grid_minor=p9.element_blank()
+        figure_size=(width, height), legend_position="bottom", legend_direction="vertical", panel_grid_minor=p9.element_blank()
     )
 
 
@@ -108,7 +109,12 @@ class Job:
     cache_name: str = field(default="", init=False)
 
     def __post_init__(self):
-        self.cache_name = key("figure", self.draw, self.data.to_csv(), self.args, self.png, _SOURCE)
+        # DataFrames are hashed by their full CSV text (json's default=str would truncate them).
+        args = tuple(_FRAME_TEXT.get(id(a)) or a.to_csv() if isinstance(a, pd.DataFrame) else a for a in self.args)
+        self.cache_name = key("figure", self.draw, self.data.to_csv(), args, self.png, _SOURCE)
+
+
+_FRAME_TEXT: dict[int, str] = {}  # CSV text of a DataFrame shared by many jobs (the unit strips' frame), hashed once
 
 
 def _run(job_draw: str, data: pd.DataFrame, args: tuple, path: str, png: bool) -> None:
@@ -140,9 +146,12 @@ def draw_all(project: Path, jobs: list[Job], cache: Cache, workers: int = WORKER
 def _draw(project: Path, jobs: list[Job], workers: int) -> None:
     strips = [j for j in jobs if j.draw == "draw_position"]
     single = [j for j in jobs if j.draw != "draw_position"]
-    tasks = [("draw_positions", (_frame_of(strips), [(str(project / j.relative), j.data) for j in part]))
-             for part in (strips[i::workers] for i in range(workers)) if part]
-    tasks += [("_run", (j.draw, j.data, j.args, str(project / j.relative), j.png)) for j in single]
+    # The biggest single charts first, then the strips in a few chunks, so both workers finish together.
+    single.sort(key=lambda j: -len(j.data))
+    tasks = [("_run", (j.draw, j.data, j.args, str(project / j.relative), j.png)) for j in single]
+    chunks = 2 * workers if len(strips) > 40 else 1
+    tasks += [("draw_positions", (_frame_of(strips), [(str(project / j.relative), j.data) for j in part]))
+              for part in (strips[i::chunks] for i in range(chunks)) if part]
     if workers > 1 and len(tasks) > 1:
         import multiprocessing
 
@@ -190,14 +199,15 @@ def _unit_axis(names: pd.Series) -> pd.Categorical:
 def draw_intervals(data: pd.DataFrame, benchmark: float, label: str, path: Path, png: bool) -> None:
     """All reported units' adjusted values with credible intervals against the benchmark (both already scaled)."""
     data = data.assign(unit=_unit_axis(data["unit_name"]))
+    # Units on the y axis directly (no coord_flip) and one drawing group per colour: plotnine
+    # otherwise draws every unit as its own group, which is slow for hundreds of units.
     plot = (
-        p9.ggplot(data, p9.aes(x="unit", y="rsr", ymin="lo", ymax="hi", colour="group", shape="group"))
-        + p9.geom_hline(yintercept=benchmark, linetype="dashed", colour=BENCHMARK_INK)
-        + p9.geom_linerange(size=0.8)
-        + p9.geom_point(size=2.6, fill="white")
-        + p9.coord_flip()
+        p9.ggplot(data, p9.aes(y="unit", colour="group", shape="group", group="group"))
+        + p9.geom_vline(xintercept=benchmark, linetype="dashed", colour=BENCHMARK_INK)
+        + p9.geom_segment(p9.aes(x="lo", xend="hi", yend="unit"), size=0.8)
+        + p9.geom_point(p9.aes(x="rsr"), size=2.6, fill="white")
         + _group_scales()
-        + p9.labs(x="", y=f"{label} (dashed line: benchmark {benchmark:.1f})")
+        + p9.labs(y="", x=f"{label}\n(dashed line: benchmark {benchmark:.1f})")
         + _theme(7.5, max(3.0, 1.6 + 0.19 * len(data)))
     )
     _save(plot, path, png)
@@ -213,18 +223,17 @@ def movement_figure_data(result: MeasureResult) -> pd.DataFrame:
 
 
 def draw_movement(data: pd.DataFrame, benchmark: float, label: str, path: Path, png: bool) -> None:
-    """An arrow per unit from its raw value (hollow circle) to its adjusted value (group marker)."""
+    """A line per unit from its raw value (hollow circle) to its adjusted value (group marker)."""
     data = data.assign(unit=_unit_axis([f"{n} ({c:,})" for n, c in zip(data["unit_name"], data["cases"])]))
     plot = (
         p9.ggplot(data)
         + p9.geom_vline(xintercept=benchmark, linetype="dashed", colour=BENCHMARK_INK)
-        + p9.geom_segment(p9.aes(x="raw", xend="adjusted", y="unit", yend="unit"), colour="#595959",
-                          arrow=p9.arrow(length=0.06, type="closed"), size=0.5)
-        + p9.geom_point(p9.aes(x="raw", y="unit"), shape="o", fill="white", colour="#595959", size=2.2)
-        + p9.geom_point(p9.aes(x="adjusted", y="unit", colour="group", shape="group"), size=2.6)
+        + p9.geom_segment(p9.aes(x="raw", xend="adjusted", y="unit", yend="unit", group="group"), colour="#595959", size=0.6)
+        + p9.geom_point(p9.aes(x="raw", y="unit", group="group"), shape="o", fill="white", colour="#595959", size=2.2)
+        + p9.geom_point(p9.aes(x="adjusted", y="unit", colour="group", shape="group", group="group"), size=2.6)
         + _group_scales()
-        + p9.labs(y="Unit (cases), fewest cases at the bottom", x=f"{label.replace('Adjusted mean', 'Mean').replace('Risk-standardised rate', 'Rate')}: "
-                  f"hollow circle raw, marker adjusted (dashed line: benchmark {benchmark:.1f})")
+        + p9.labs(y="Unit (cases)", x=f"{label.replace('Adjusted mean', 'Mean').replace('Risk-standardised rate', 'Rate')}\n"
+                  f"hollow circle: raw; marker: adjusted; dashed line: benchmark {benchmark:.1f}")
         + _theme(7.5, max(3.0, 1.6 + 0.19 * len(data)))
     )
     _save(plot, path, png)
@@ -243,8 +252,8 @@ def draw_funnel(points: pd.DataFrame, curves: pd.DataFrame, benchmark: float, la
         + p9.scale_linetype_manual(values={"95% limits": "dashed", "99.8% limits": "dotted"}, name="Control limits")
         + _group_scales()
         + p9.scale_x_log10()
-        + p9.labs(x="Cases (log scale)", y=f"{label} from O/E (solid line: benchmark {benchmark:.1f})")
-        + _theme(7.5, 5.2) + p9.theme(legend_box="vertical")
+        + p9.labs(x="Cases (log scale)", y=f"{label.replace('Risk-standardised rate', 'Adjusted rate')} from O/E\n(solid line: benchmark {benchmark:.1f})")
+        + _theme(7.5, 5.6) + p9.theme(legend_box="horizontal")
     )
     _save(plot, path, png)
 
@@ -286,52 +295,54 @@ def _x_limits(frame: pd.DataFrame) -> tuple[float, float]:
 
 
 def draw_positions(frame: pd.DataFrame, items: list[tuple[str, pd.DataFrame]]) -> None:
-    """Unit strips: the frame is drawn once with plotnine, then each unit's marks are placed and saved."""
+    """Unit strips: the frame is drawn once with plotnine, then each unit's marks are placed and saved.
+
+    One row per measure on a single panel (fewer artists than facets, so each file is quick to write).
+    """
     from matplotlib.lines import Line2D
+    from matplotlib.transforms import blended_transform_factory
 
     measures = list(frame["measure"])
-    f = frame.assign(measure=pd.Categorical(frame["measure"], categories=measures, ordered=True))
+    rows = np.arange(len(measures))[::-1].astype(float)  # first measure on top
+    f = frame.assign(row=rows, bottom=rows - 0.36, top=rows + 0.36, b_lo=rows - 0.45, b_hi=rows + 0.45)
     lo, hi = _x_limits(frame)
     plot = (
         p9.ggplot(f)
-        + p9.geom_rect(p9.aes(xmin="band_lo", xmax="band_hi"), ymin=-1, ymax=1, fill=BAND_FILL, na_rm=True)
-        + p9.geom_vline(p9.aes(xintercept="bench"), linetype="dashed", colour=BENCHMARK_INK)
-        + p9.facet_wrap("measure", ncol=1)
+        + p9.geom_rect(p9.aes(xmin="band_lo", xmax="band_hi", ymin="bottom", ymax="top"), fill=BAND_FILL, na_rm=True)
+        + p9.geom_segment(p9.aes(x="bench", xend="bench", y="b_lo", yend="b_hi"), linetype="dashed", colour=BENCHMARK_INK)
         + p9.scale_x_log10(limits=(lo, hi))
-        + p9.scale_y_continuous(limits=(-1, 1), breaks=[])
+        + p9.scale_y_continuous(breaks=list(rows), labels=measures, limits=(-0.6, len(measures) - 0.4))
         + p9.labs(x="Adjusted ratio to the network (log scale)", y="")
         + p9.theme_bw(base_size=9)
-        + p9.theme(figure_size=(7.5, 0.55 + 0.62 * len(measures)), panel_grid_minor=p9.element_blank(), panel_grid_major_y=p9.element_blank(),
-                   axis_ticks_major_y=p9.element_blank(), strip_text=p9.element_text(ha="left"))
+        + p9.theme(figure_size=(7.5, 0.9 + 0.42 * len(measures)), panel_grid_minor=p9.element_blank(), panel_grid_major_y=p9.element_blank())
     )
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
         fig = plot.draw()
-    axes = sorted(fig.axes, key=lambda a: -a.get_position().y0)[: len(measures)]
+    ax = fig.axes[0]
+    at_right = blended_transform_factory(ax.transAxes, ax.transData)
     marks = []
-    for ax in axes:
+    for row in rows:
         line = Line2D([], [], linewidth=2.4)
         point = Line2D([], [], linestyle="none", markersize=8, markerfacecolor="white", markeredgewidth=1.8)
         ax.add_line(line)
         ax.add_line(point)
-        text = ax.text(0.99, 0.5, "", transform=ax.transAxes, ha="right", va="center", fontsize=8.5, color=BENCHMARK_INK,
-                       bbox={"facecolor": "white", "edgecolor": "none", "pad": 1.5})
-        marks.append((line, point, text))
+        marks.append((line, point, ax.text(0.99, row, "", transform=at_right, ha="right", va="center", fontsize=8.5, color=BENCHMARK_INK), row))
     for path, data in items:
-        for (line, point, text), (_, row) in zip(marks, data.iterrows()):
-            if pd.isna(row["ratio"]):
+        for (line, point, text, y), (_, r) in zip(marks, data.iterrows()):
+            if pd.isna(r["ratio"]):
                 line.set_data([], [])
                 point.set_data([], [])
                 text.set_text("not reported")
                 continue
-            colour, marker = GROUP_MARKS[row["group"]]
+            colour, marker = GROUP_MARKS[r["group"]]
             # plotnine draws a log10 scale in transformed units: place the marks the same way
-            line.set_data(np.log10([max(row["lo"], lo), min(row["hi"], hi)]), [0, 0])
+            line.set_data(np.log10([max(r["lo"], lo), min(r["hi"], hi)]), [y, y])
             line.set_color(colour)
-            point.set_data([np.log10(row["ratio"])], [0])
+            point.set_data([np.log10(r["ratio"])], [y])
             point.set_marker(marker)
             point.set_markeredgecolor(colour)
-            text.set_text(GROUPS[row["group"]])
+            text.set_text(GROUPS[r["group"]])
         Path(path).parent.mkdir(parents=True, exist_ok=True)
         fig.savefig(path, metadata={"Date": None})
     matplotlib.pyplot.close(fig)
@@ -449,8 +460,9 @@ def plan(results: list[MeasureResult], unit_ids, slugs: dict[str, str], past, fu
         key_ = r.measure.key
         data = measure_figure_data(r)
         if len(data):
-            jobs.append(Job(measure_figure_path(key_, "intervals"), "draw_intervals", data, (r.benchmark * scale, label), png=True))
-            jobs.append(Job(measure_figure_path(key_, "movement"), "draw_movement", movement_figure_data(r), (r.benchmark * scale, label), png=True))
+            # PNG copies for slides and documents; above PNG_MAX_UNITS rows the tall PNG costs more than it helps
+            jobs.append(Job(measure_figure_path(key_, "intervals"), "draw_intervals", data, (r.benchmark * scale, label), png=len(data) <= PNG_MAX_UNITS))
+            jobs.append(Job(measure_figure_path(key_, "movement"), "draw_movement", movement_figure_data(r), (r.benchmark * scale, label)))
         f = funnels.get(key_)
         if f is not None:
             cols = ["value", "lower_998", "lower_95", "upper_95", "upper_998"]
@@ -463,6 +475,8 @@ def plan(results: list[MeasureResult], unit_ids, slugs: dict[str, str], past, fu
             if r.validation.binary:
                 jobs.append(Job(model_figure_path(key_, "roc"), "draw_roc", roc_figure_data(r)))
     frame = position_frame(results)
+    _FRAME_TEXT.clear()
+    _FRAME_TEXT[id(frame)] = frame.to_csv()
     for uid in unit_ids:
         data = position_data(uid, results)
         if data is not None:

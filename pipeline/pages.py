@@ -285,7 +285,7 @@ def _measure_figures(m: MeasureResult, drawn: set[str], f: Funnel | None, level:
     path = measure_figure_path(m.measure.key, "movement")
     if path in drawn:
         points_word = "percentage points" if m.measure.type == "binary" else unit
-        out.append(captions.movement(path, png_of(path), movement_figure_data(m), fmt, bench, points_word, md))
+        out.append(captions.movement(path, "", movement_figure_data(m), fmt, bench, points_word, md))
     return out, words
 
 
