@@ -70,7 +70,7 @@ def movement(src: str, png: str, data: pd.DataFrame, fmt, benchmark: str, points
     k = min(10, max(1, len(data) // 4))
     small, large = float(np.median(move.iloc[:k])), float(np.median(move.iloc[-k:]))
     top = data.loc[move.idxmax()]
-    alt = (f"Chart with a line for each of {len(data)} units, from its raw value to its adjusted value, units with the fewest cases at the bottom. "
+    alt = (f"Chart with a line for each of {len(data)} units, from its raw value to its adjusted value, placed by its number of cases (log scale, fewest at the bottom). "
            f"Small units move further: the typical move is {small:.1f} {points} for the {k} smallest units and {large:.1f} for the {k} largest. "
            f"The largest move is {attr(top['unit_name'])}, from {fmt(top['raw'])} to {fmt(top['adjusted'])}. The benchmark is {benchmark}.")
     rows = [[md(r.unit_name), f"{r.cases:,}", fmt(r.raw), fmt(r.adjusted), f"{r.adjusted - r.raw:+.1f}"] for r in data.iloc[::-1].itertuples()]

@@ -228,16 +228,18 @@ def build_site(
         build = Path(tempfile.mkdtemp(prefix=f".{output.name}.tmp-{os.getpid()}-", dir=output.parent))
     except OSError as exc:
         raise RenderError(f"cannot write beside the output folder {output} ({exc.strerror or exc}); the previous site was left as it was.") from None
+    drawing = None
     try:
         project = build / "_source"
         project.mkdir()
         slugs = unit_slugs(cohort.units.index)
         funnels = {r.measure.key: for_measure(r, config.reporting.funnel_overdispersion) for r in results}
-        drawn: set[str] = set()  # figure paths (relative to the project) that exist
+        drawn: set[str] = set()  # figure paths (relative to the project) that exist once drawing is done
         if figures:
             jobs = plan(results, cohort.units.index, slugs, past, funnels)
             reporter.stage(f"drawing {len(jobs)} figures ({len(results)} measures, {len(cohort.units)} units)")
-            drawn = draw_all(project, jobs, cache)
+            drawing = draw_all(project, jobs, cache)  # a worker may still be drawing while the pages are written
+            drawn = drawing.drawn
         reporter.stage("writing results and pages")
         (project / MARKER).write_text(json.dumps(manifest, indent=2), encoding="utf-8")
         (project / "downloads").mkdir(parents=True)
@@ -250,15 +252,29 @@ def build_site(
             target = project / page.path
             target.parent.mkdir(parents=True, exist_ok=True)
             target.write_text(page.text, encoding="utf-8")
+        if drawing is not None:
+            drawing, waiting = None, drawing
+            waiting.wait()
         reporter.stage(f"rendering the site ({renderer.name})")
         render_site(project, build, renderer)
         return build
     except OSError as exc:
+        _stop(drawing)
         shutil.rmtree(build, ignore_errors=True)
         raise RenderError(f"writing the new site failed ({exc.strerror or exc}: {exc.filename or build}); the previous site was left as it was.") from None
     except BaseException:
+        _stop(drawing)
         shutil.rmtree(build, ignore_errors=True)
         raise
+
+
+def _stop(drawing) -> None:
+    """Let a drawing worker finish or fail before its build folder is removed (its error is not the one to report)."""
+    if drawing is not None:
+        try:
+            drawing.wait()
+        except BaseException:
+            pass
 
 
 def remove_stale_builds(output: Path) -> None:

@@ -17,6 +17,7 @@ cached by the hash of its data and of this module.
 from __future__ import annotations
 
 import hashlib
+import io
 import os
 import shutil
 import warnings
@@ -72,6 +73,7 @@ def _save(plot, path: Path, png: bool) -> None:
         fig = plot.draw()
         fig.savefig(path, metadata={"Date": None})
         if png:
+            fig._layout_engine = None  # laid out by the first save; see draw_positions
             fig.savefig(path.with_suffix(".png"), dpi=DPI)
     matplotlib.pyplot.close(fig)
 
@@ -121,8 +123,34 @@ def _run(job_draw: str, data: pd.DataFrame, args: tuple, path: str, png: bool) -
     globals()[job_draw](data, *args, Path(path), png)
 
 
-def draw_all(project: Path, jobs: list[Job], cache: Cache, workers: int = WORKERS) -> set[str]:
-    """Draw every job into ``project`` (or copy it from the cache); return the relative SVG paths drawn."""
+class Drawing:
+    """Figures being drawn: the main process has drawn its share; ``wait`` collects the worker's."""
+
+    def __init__(self, project: Path, jobs: list[Job], todo: list[Job], cache: Cache, pool, futures):
+        self.project, self.jobs, self.todo, self.cache, self.pool, self.futures = project, jobs, todo, cache, pool, futures
+        self.drawn = {job.relative for job in jobs}  # every planned figure exists once ``wait`` returns
+
+    def wait(self) -> set[str]:
+        try:
+            for future in self.futures:
+                future.result()
+        finally:
+            if self.pool is not None:
+                self.pool.shutdown(cancel_futures=True)
+        for job in self.todo:
+            path = self.project / job.relative
+            self.cache.store_file(job.cache_name + ".svg", path)
+            if job.png:
+                self.cache.store_file(job.cache_name + ".png", path.with_suffix(".png"))
+        return self.drawn
+
+
+def draw_all(project: Path, jobs: list[Job], cache: Cache, workers: int = WORKERS) -> Drawing:
+    """Start drawing every job into ``project`` (cached ones are copied); call ``wait()`` before using the files.
+
+    With 2 workers the main process draws half of the work itself while one spawned process draws
+    the other half; the caller can write pages in between, while the worker finishes.
+    """
     todo = []
     for job in jobs:
         path = project / job.relative
@@ -134,33 +162,41 @@ def draw_all(project: Path, jobs: list[Job], cache: Cache, workers: int = WORKER
                 shutil.copyfile(hits[1], path.with_suffix(".png"))
         else:
             todo.append(job)
-    _draw(project, todo, workers)
-    for job in todo:
-        path = project / job.relative
-        cache.store_file(job.cache_name + ".svg", path)
-        if job.png:
-            cache.store_file(job.cache_name + ".png", path.with_suffix(".png"))
-    return {job.relative for job in jobs}
+    tasks = _tasks(project, todo, workers)
+    mine, theirs = tasks[0::2], tasks[1::2]  # alternate by cost: the worker also pays its start-up
+    pool, futures = None, []
+    if workers > 1 and theirs:
+        import multiprocessing
+
+        pool = ProcessPoolExecutor(1, mp_context=multiprocessing.get_context("spawn"))
+        futures = [pool.submit(globals()[name], *args) for name, args in theirs]
+    else:
+        mine = tasks
+    try:
+        for name, args in mine:
+            globals()[name](*args)
+    except BaseException:
+        if pool is not None:
+            pool.shutdown(cancel_futures=True)
+        raise
+    return Drawing(project, jobs, todo, cache, pool, futures)
 
 
-def _draw(project: Path, jobs: list[Job], workers: int) -> None:
+def _cost(task: tuple) -> float:
+    name, args = task
+    if name == "draw_positions":
+        return 0.05 * len(args[1])
+    return 0.5 + 0.015 * len(args[1])  # a chart's cost grows with its rows
+
+
+def _tasks(project: Path, jobs: list[Job], workers: int) -> list[tuple]:
+    """(function name, arguments) per task, costliest first; unit strips in chunks that share one frame."""
     strips = [j for j in jobs if j.draw == "draw_position"]
-    single = [j for j in jobs if j.draw != "draw_position"]
-    # The biggest single charts first, then the strips in a few chunks, so both workers finish together.
-    single.sort(key=lambda j: -len(j.data))
-    tasks = [("_run", (j.draw, j.data, j.args, str(project / j.relative), j.png)) for j in single]
+    tasks = [("_run", (j.draw, j.data, j.args, str(project / j.relative), j.png)) for j in jobs if j.draw != "draw_position"]
     chunks = 2 * workers if len(strips) > 40 else 1
     tasks += [("draw_positions", (_frame_of(strips), [(str(project / j.relative), j.data) for j in part]))
               for part in (strips[i::chunks] for i in range(chunks)) if part]
-    if workers > 1 and len(tasks) > 1:
-        import multiprocessing
-
-        with ProcessPoolExecutor(workers, mp_context=multiprocessing.get_context("spawn")) as pool:
-            for future in [pool.submit(globals()[name], *args) for name, args in tasks]:
-                future.result()
-    else:
-        for name, args in tasks:
-            globals()[name](*args)
+    return sorted(tasks, key=_cost, reverse=True)
 
 
 def _frame_of(strips: list[Job]) -> pd.DataFrame | None:
@@ -223,18 +259,22 @@ def movement_figure_data(result: MeasureResult) -> pd.DataFrame:
 
 
 def draw_movement(data: pd.DataFrame, benchmark: float, label: str, path: Path, png: bool) -> None:
-    """A line per unit from its raw value (hollow circle) to its adjusted value (group marker)."""
-    data = data.assign(unit=_unit_axis([f"{n} ({c:,})" for n, c in zip(data["unit_name"], data["cases"])]))
+    """A line per unit from its raw value (hollow circle) to its adjusted value (group marker), at its number of cases.
+
+    Cases on a log scale up the side: small units sit low and move furthest. Unit names are in
+    the table beside the figure, which keeps the chart readable (and quick) for hundreds of units.
+    """
     plot = (
-        p9.ggplot(data)
+        p9.ggplot(data, p9.aes(y="cases", group="group"))
         + p9.geom_vline(xintercept=benchmark, linetype="dashed", colour=BENCHMARK_INK)
-        + p9.geom_segment(p9.aes(x="raw", xend="adjusted", y="unit", yend="unit", group="group"), colour="#595959", size=0.6)
-        + p9.geom_point(p9.aes(x="raw", y="unit", group="group"), shape="o", fill="white", colour="#595959", size=2.2)
-        + p9.geom_point(p9.aes(x="adjusted", y="unit", colour="group", shape="group", group="group"), size=2.6)
+        + p9.geom_segment(p9.aes(x="raw", xend="adjusted", yend="cases"), colour="#595959", size=0.6)
+        + p9.geom_point(p9.aes(x="raw"), shape="o", fill="white", colour="#595959", size=2.2)
+        + p9.geom_point(p9.aes(x="adjusted", colour="group", shape="group"), size=2.6)
         + _group_scales()
-        + p9.labs(y="Unit (cases)", x=f"{label.replace('Adjusted mean', 'Mean').replace('Risk-standardised rate', 'Rate')}\n"
+        + p9.scale_y_log10()
+        + p9.labs(y="Cases (log scale)", x=f"{label.replace('Adjusted mean', 'Mean').replace('Risk-standardised rate', 'Rate')}\n"
                   f"hollow circle: raw; marker: adjusted; dashed line: benchmark {benchmark:.1f}")
-        + _theme(7.5, max(3.0, 1.6 + 0.19 * len(data)))
+        + _theme(7.5, 5.6)
     )
     _save(plot, path, png)
 
@@ -319,6 +359,12 @@ def draw_positions(frame: pd.DataFrame, items: list[tuple[str, pd.DataFrame]]) -
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
         fig = plot.draw()
+    # Let plotnine's layout engine place everything once, then drop the engine: with an engine,
+    # matplotlib draws the whole figure twice per save. (set_layout_engine(None) refuses to drop an
+    # engine whose colour-bar settings differ, hence the attribute.)
+    fig.canvas.draw()
+    fig.savefig(io.BytesIO(), format="svg")
+    fig._layout_engine = None
     ax = fig.axes[0]
     at_right = blended_transform_factory(ax.transAxes, ax.transData)
     marks = []
