@@ -236,7 +236,7 @@ def build_site(
         funnels = {r.measure.key: for_measure(r, config.reporting.funnel_overdispersion) for r in results}
         drawn: set[str] = set()  # figure paths (relative to the project) that exist once drawing is done
         if figures:
-            jobs = plan(results, cohort.units.index, slugs, past, funnels)
+            jobs = plan(results, cohort.units.index, slugs, past, funnels, config.cycle.period)
             reporter.stage(f"drawing {len(jobs)} figures ({len(results)} measures, {len(cohort.units)} units)")
             drawing = draw_all(project, jobs, cache)  # a worker may still be drawing while the pages are written
             drawn = drawing.drawn

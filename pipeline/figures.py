@@ -394,16 +394,16 @@ def draw_positions(frame: pd.DataFrame, items: list[tuple[str, pd.DataFrame]]) -
     matplotlib.pyplot.close(fig)
 
 
-def trend_data(unit_id: str, results: list[MeasureResult], past) -> pd.DataFrame | None:
+def trend_data(unit_id: str, results: list[MeasureResult], past, period: str = "this cycle") -> pd.DataFrame | None:
     """A unit's published adjusted values in each kept cycle and now (scaled like the measure charts)."""
     rows = []
     for r in results:
         k = axis(r)[0]
         cycles = [(p.period, p.table[p.table["measure"] == r.measure.key]) for p in past] + [(None, r.table)]
-        for i, (period, table) in enumerate(cycles):
+        for i, (label, table) in enumerate(cycles):
             row = table[(table["unit_id"] == unit_id) & (table["status"] == "reported")]
             if len(row):
-                rows.append({"measure": r.measure.name, "order": i, "period": period or "this cycle", "value": row["rsr_median"].iloc[0] * k,
+                rows.append({"measure": r.measure.name, "order": i, "period": label or period, "value": row["rsr_median"].iloc[0] * k,
                              "lo": row["rsr_lower"].iloc[0] * k, "hi": row["rsr_upper"].iloc[0] * k})
     data = pd.DataFrame(rows)
     if data.empty or data.groupby("measure")["order"].nunique().max() < 2:
@@ -498,7 +498,7 @@ def draw_calibration(data: pd.DataFrame, label: str, path: Path, png: bool) -> N
 
 # --- what to draw ----------------------------------------------------------------------------
 
-def plan(results: list[MeasureResult], unit_ids, slugs: dict[str, str], past, funnels: dict) -> list[Job]:
+def plan(results: list[MeasureResult], unit_ids, slugs: dict[str, str], past, funnels: dict, period: str = "this cycle") -> list[Job]:
     """Every figure of the site as a drawing job (measure charts with PNG beside, unit strips, model plots)."""
     jobs: list[Job] = []
     for r in results:
@@ -528,7 +528,7 @@ def plan(results: list[MeasureResult], unit_ids, slugs: dict[str, str], past, fu
         if data is not None:
             jobs.append(Job(unit_figure_path(slugs[uid], "position"), "draw_position", data, (frame,)))
         if past:
-            trend = trend_data(uid, results, past)
+            trend = trend_data(uid, results, past, period)
             if trend is not None:
                 jobs.append(Job(unit_figure_path(slugs[uid], "trend"), "draw_trend", trend))
     return jobs

@@ -289,14 +289,14 @@ def _measure_figures(m: MeasureResult, drawn: set[str], f: Funnel | None, level:
     return out, words
 
 
-def _unit_figures(uid: str, name: str, slug_: str, results: list[MeasureResult], past: list[PastCycle], drawn: set[str]) -> list[FigureView]:
+def _unit_figures(uid: str, name: str, slug_: str, results: list[MeasureResult], past: list[PastCycle], drawn: set[str], period: str) -> list[FigureView]:
     out = []
     path = unit_figure_path(slug_, "position")
     if path in drawn:
         out.append(captions.position(path, position_data(uid, results), name, md))
     path = unit_figure_path(slug_, "trend")
     if path in drawn:
-        out.append(captions.trend(path, trend_data(uid, results, past), name, md))
+        out.append(captions.trend(path, trend_data(uid, results, past, period), name, md))
     return out
 
 
@@ -360,7 +360,7 @@ def views(
         measures.append(view)
     unit_views = [
         UnitView(id=md(uid), name=md(u["name"]), kind=md(u["kind"]), href=f"units/{slugs[uid]}.qmd",
-                 figures=_unit_figures(uid, u["name"], slugs[uid], results, past or [], drawn), cells=cells[uid], summary=_unit_summary(cells[uid]))
+                 figures=_unit_figures(uid, u["name"], slugs[uid], results, past or [], drawn, config.cycle.period), cells=cells[uid], summary=_unit_summary(cells[uid]))
         for uid, u in units.iterrows()
     ]
     return measures, unit_views

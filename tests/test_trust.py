@@ -252,6 +252,9 @@ def test_history_gives_trends_and_changes_and_an_old_cycle_rebuilds_to_its_publi
     assert changes.count("No clear change") >= 3  # unchanged draws: a tie, one half either way
     profile = (tmp_path / "site" / "units" / f"{big}.html").read_text()
     assert "Earlier cycles" in profile and "Test period" in profile and "Next test period" in profile
+    trend = re.search(rf'<img src="\.\./figures/trend-{big}\.svg" alt="([^"]+)"', profile)
+    assert trend and "Test period" in trend.group(1) and "Next test period" in trend.group(1)  # the trend chart, described from its data
+    assert (tmp_path / "site" / "figures" / f"trend-{big}.svg").stat().st_size > 5000
 
     # Rebuilding the first cycle from scratch reproduces what was published for it.
     monkeypatch.undo()
