@@ -31,7 +31,7 @@ from .figures import (
     MAX_FIGURE_UNITS, draw_all, plan,
 )
 from .funnel import for_measure
-from .history import PastCycle, past_cycles, record_cycle
+from .history import PastCycle, kept_addresses, past_cycles, record_cycle
 from .pages import render_pages, unit_slugs
 from .render import Renderer, choose_renderer, render_site
 from .results import DICTIONARY, MeasureFits, MeasureResult, PriorAlternative, public_table, results_json, summarise_measure
@@ -92,10 +92,11 @@ def run_cycle(
     past = past_cycles(config.cycle.history, config.cycle.period)
     manifest = about(config, cohort, chosen, results)
     table = public_table(results)
-    build = build_site(config, cohort, results, table, manifest, past, chosen, cache, reporter, figures)
+    slugs = unit_slugs(cohort.units.index, kept_addresses(past))
+    build = build_site(config, cohort, results, table, manifest, past, chosen, cache, reporter, figures, slugs)
     publish(build, config.cycle.output)
     reporter.stage(f"recording this cycle in {config.cycle.history}")
-    record_cycle(config.cycle.history, config.cycle.period, table, results, manifest)
+    record_cycle(config.cycle.history, config.cycle.period, table, results, manifest, slugs)
     return CycleSummary(
         site=config.cycle.output, units=len(cohort.units), measures=[m.key for m in config.measures],
         patients=len(cohort.rows), renderer=chosen, results=results, warnings=warnings,
@@ -219,6 +220,7 @@ def about(config: CycleConfig, cohort: Cohort, renderer: Renderer, results: list
 def build_site(
     config: CycleConfig, cohort: Cohort, results: list[MeasureResult], table: pd.DataFrame, manifest: dict,
     past: list[PastCycle], renderer: Renderer, cache: Cache, reporter: Reporter, figures: bool = True,
+    slugs: dict[str, str] | None = None,
 ) -> Path:
     """Write figures, downloads and pages into a new folder beside the output; render it there."""
     output = config.cycle.output
@@ -232,7 +234,7 @@ def build_site(
     try:
         project = build / "_source"
         project.mkdir()
-        slugs = unit_slugs(cohort.units.index)
+        slugs = slugs or unit_slugs(cohort.units.index, kept_addresses(past))
         funnels = {r.measure.key: for_measure(r, config.reporting.funnel_overdispersion) for r in results}
         drawn: set[str] = set()  # figure paths (relative to the project) that exist once drawing is done
         if figures:

@@ -8,6 +8,8 @@ cycle replaces its own entry and keeps its place in the order.
 
 from __future__ import annotations
 
+import dataclasses
+
 import json
 import os
 import re
@@ -40,6 +42,7 @@ class PastCycle:
     period: str
     table: pd.DataFrame  # the public results table as published
     draws: dict[str, pd.DataFrame]  # measure key -> draws x unit ids (risk-standardised rate)
+    addresses: dict[str, str] = dataclasses.field(default_factory=dict)  # unit id -> page slug as published
 
 
 def _index(folder: Path) -> list[dict]:
@@ -77,10 +80,22 @@ def load_cycle(folder: Path, entry: dict) -> PastCycle:
             }
     except (OSError, ValueError, KeyError) as exc:
         raise RenderError(f"the history of cycle '{entry['period']}' in {where} cannot be read ({exc}). Restore it or remove it from {folder / 'cycles.json'}.") from None
-    return PastCycle(entry["key"], entry["period"], table, draws)
+    path = where / "addresses.json"
+    addresses = json.loads(path.read_text("utf-8")) if path.is_file() else {}
+    return PastCycle(entry["key"], entry["period"], table, draws, addresses)
 
 
-def record_cycle(folder: Path, period: str, table: pd.DataFrame, results: list[MeasureResult], manifest: dict) -> None:
+def kept_addresses(past: list[PastCycle]) -> dict[str, str]:
+    """Every unit's page address as last published, so a unit keeps its address from cycle to cycle."""
+    out: dict[str, str] = {}
+    for cycle in past:  # oldest first: later cycles win
+        out.update(cycle.addresses)
+    return out
+
+
+def record_cycle(
+    folder: Path, period: str, table: pd.DataFrame, results: list[MeasureResult], manifest: dict, addresses: dict[str, str] | None = None
+) -> None:
     """Store a just-published cycle (replacing an earlier build of the same period)."""
     key = cycle_key(period)
     folder.mkdir(parents=True, exist_ok=True)
@@ -88,6 +103,7 @@ def record_cycle(folder: Path, period: str, table: pd.DataFrame, results: list[M
     try:
         table.to_csv(staging / "results.csv", index=False, float_format="%.6g")
         (staging / "manifest.json").write_text(json.dumps(manifest, indent=2), encoding="utf-8")
+        (staging / "addresses.json").write_text(json.dumps(addresses or {}, indent=2, sort_keys=True), encoding="utf-8")
         arrays = {}
         for r in results:
             arrays[f"{r.measure.key}.draws"] = r.rsr_draws.to_numpy()

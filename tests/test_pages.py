@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import re
 import sys
 from pathlib import Path
 
@@ -11,7 +12,7 @@ from markdown_it import MarkdownIt
 
 from pipeline.errors import ToolError
 from pipeline.external import run_tool
-from pipeline.pages import chance, code, environment, md, natural_frequency, slug
+from pipeline.pages import chance, code, environment, md, natural_frequency, slug, unit_slugs
 from pipeline.render import BuiltinRenderer
 
 
@@ -107,3 +108,29 @@ def test_external_tool_output_is_returned_and_replayed_on_failure():
     assert caught.value.returncode == 3 and "what went wrong" in str(caught.value)
     with pytest.raises(ToolError, match="was not found on PATH"):
         run_tool(["fairgauge-no-such-tool-xyz"])
+
+
+def test_unit_addresses_do_not_depend_on_the_other_units_and_are_kept_across_cycles():
+    ids = ["MV-01", "mv02", "North Wing/3", "x"]
+    base = unit_slugs(ids)
+    assert base == {"MV-01": "mv-01", "mv02": "mv02", "North Wing/3": "north-wing-3", "x": "x"}
+    assert unit_slugs(list(reversed(ids))) == base
+    assert unit_slugs(ids[:2]) == {k: base[k] for k in ids[:2]}
+    # A new unit whose id makes the same slug: the id that already is its slug wins, the other
+    # gets a suffix from a hash of its own id (the same in every cycle) ...
+    both = unit_slugs(["MV-01", "mv-01"])
+    assert both["mv-01"] == "mv-01" and re.fullmatch(r"mv-01-[0-9a-f]{6}", both["MV-01"])
+    # ... unless an earlier cycle published an address for it, which it keeps.
+    assert unit_slugs(["MV-01", "mv-01"], kept=base)["MV-01"] == "mv-01"
+    assert unit_slugs(["MV-01", "mv-01"], kept=base)["mv-01"] != "mv-01"
+
+
+def test_history_keeps_each_units_address(tmp_path):
+    import pandas as pd
+
+    from pipeline.history import kept_addresses, past_cycles, record_cycle
+
+    table = pd.DataFrame({"unit_id": ["a"], "measure": ["m"], "status": ["reported"]})
+    record_cycle(tmp_path, "Cycle one", table, [], {"built": "now"}, {"a": "a", "B/2": "b-2"})
+    record_cycle(tmp_path, "Cycle two", table, [], {"built": "now"}, {"a": "a-renamed"})
+    assert kept_addresses(past_cycles(tmp_path, "Cycle three")) == {"a": "a-renamed", "B/2": "b-2"}

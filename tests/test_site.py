@@ -14,7 +14,6 @@ import pytest
 import yaml
 
 from pipeline import contrast, figures, readability
-from pipeline.pages import unit_slugs
 
 pytestmark = pytest.mark.slow
 
@@ -156,11 +155,3 @@ def test_quarto_project_uses_the_website_features(demo_cycle):
     home = (site / "index.html").read_text()
     assert '<link rel="canonical" href="https://example.org/invented-network/index.html">' in home
     assert 'href="guide.html"' in home and 'action="search.html"' in home
-
-
-def test_unit_addresses_do_not_depend_on_the_other_units():
-    ids = ["MV-01", "mv02", "North Wing/3", "x"]
-    base = unit_slugs(ids)
-    assert unit_slugs(list(reversed(ids))) == base
-    assert unit_slugs(ids[:2]) == {k: base[k] for k in ids[:2]}
-    assert unit_slugs(ids + ["new unit"])["North Wing/3"] == base["North Wing/3"]
