@@ -10,6 +10,7 @@ Peer, measured in the same run: pandoc 3 (from PyPI's pypandoc-binary) convertin
 Quarto markdown pages to standalone HTML, one call per page, as a plain static-site build would
 (no figures drawn, so the peer does less work than we do).
 
+    pip install -e ".[bench]"        # the peer: pandoc 3 from PyPI's pypandoc-binary
     python benchmarks/site_render.py [--units 200]
 """
 

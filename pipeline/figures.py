@@ -108,15 +108,13 @@ class Job:
     data: pd.DataFrame
     args: tuple = ()
     png: bool = False
+    args_text: str = ""  # the args as hashed text, when many jobs share them (computed once by the caller)
     cache_name: str = field(default="", init=False)
 
     def __post_init__(self):
         # DataFrames are hashed by their full CSV text (json's default=str would truncate them).
-        args = tuple(_FRAME_TEXT.get(id(a)) or a.to_csv() if isinstance(a, pd.DataFrame) else a for a in self.args)
+        args = self.args_text or tuple(a.to_csv() if isinstance(a, pd.DataFrame) else a for a in self.args)
         self.cache_name = key("figure", self.draw, self.data.to_csv(), args, self.png, _SOURCE)
-
-
-_FRAME_TEXT: dict[int, str] = {}  # CSV text of a DataFrame shared by many jobs (the unit strips' frame), hashed once
 
 
 def _run(job_draw: str, data: pd.DataFrame, args: tuple, path: str, png: bool) -> None:
@@ -521,12 +519,11 @@ def plan(results: list[MeasureResult], unit_ids, slugs: dict[str, str], past, fu
             if r.validation.binary:
                 jobs.append(Job(model_figure_path(key_, "roc"), "draw_roc", roc_figure_data(r)))
     frame = position_frame(results)
-    _FRAME_TEXT.clear()
-    _FRAME_TEXT[id(frame)] = frame.to_csv()
+    frame_text = frame.to_csv()  # shared by every strip: turned into text once
     for uid in unit_ids:
         data = position_data(uid, results)
         if data is not None:
-            jobs.append(Job(unit_figure_path(slugs[uid], "position"), "draw_position", data, (frame,)))
+            jobs.append(Job(unit_figure_path(slugs[uid], "position"), "draw_position", data, (frame,), args_text=frame_text))
         if past:
             trend = trend_data(uid, results, past, period)
             if trend is not None:
