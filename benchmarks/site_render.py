@@ -43,6 +43,18 @@ def four_measures(config_text: str) -> str:
     return "".join(b for b in blocks if 'key = "pressure"' not in b)
 
 
+def broken_links(site: Path) -> list[str]:
+    """Every href/src in the site's pages that points to a missing local file."""
+    broken = []
+    for page in site.rglob("*.html"):
+        if "_source" in page.parts:
+            continue
+        for target in re.findall(r'(?:href|src)="(?![a-z]+:)([^"#?]+)', page.read_text("utf-8")):
+            if not (page.parent / target).is_file():
+                broken.append(f"{page.relative_to(site)} -> {target}")
+    return broken
+
+
 def main() -> None:
     parser = argparse.ArgumentParser()
     parser.add_argument("--units", type=int, default=200)
@@ -72,6 +84,8 @@ def main() -> None:
         print(f"{run}: {timings[run]:.1f} s for {len(pages)} pages and {len(figures)} SVG figures")
         if run == "warm":
             project = build / "_source"
+            broken = broken_links(build)
+            print(f"local links and images that do not resolve in the built site: {len(broken)}", *broken[:3], sep="\n  ")
         else:
             shutil.rmtree(build)
 

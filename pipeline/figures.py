@@ -126,7 +126,8 @@ class Drawing:
 
     def __init__(self, project: Path, jobs: list[Job], todo: list[Job], cache: Cache, pool, futures):
         self.project, self.jobs, self.todo, self.cache, self.pool, self.futures = project, jobs, todo, cache, pool, futures
-        self.drawn = {job.relative for job in jobs}  # every planned figure exists once ``wait`` returns
+        # every planned file (SVG, and PNG where asked for) exists once ``wait`` returns
+        self.drawn = {job.relative for job in jobs} | {png_of(job.relative) for job in jobs if job.png}
 
     def wait(self) -> set[str]:
         try:

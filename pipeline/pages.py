@@ -281,6 +281,10 @@ def _cell(m: MeasureResult, row: pd.Series, level: str, min_cases: int) -> Cell:
     )
 
 
+def _if_drawn(path: str, drawn: set[str]) -> str:
+    return path if path in drawn else ""
+
+
 def _measure_figures(m: MeasureResult, drawn: set[str], f: Funnel | None, level: str) -> tuple[list[FigureView], str]:
     """The measure's pictures (intervals, funnel, movement) with their words and tables; and the funnel in a sentence."""
     k = axis(m)[0]
@@ -290,14 +294,14 @@ def _measure_figures(m: MeasureResult, drawn: set[str], f: Funnel | None, level:
     out = []
     path = measure_figure_path(m.measure.key, "intervals")
     if path in drawn:
-        out.append(captions.intervals(path, png_of(path), measure_figure_data(m), fmt, lambda lo, hi: f"{fmt(lo)} to {fmt(hi)}", bench, level, md))
+        out.append(captions.intervals(path, _if_drawn(png_of(path), drawn), measure_figure_data(m), fmt, lambda lo, hi: f"{fmt(lo)} to {fmt(hi)}", bench, level, md))
     words = ""
     path = measure_figure_path(m.measure.key, "funnel")
     if f is not None:
         counts = outside(f)
         points = f.points.assign(**{c: f.points[c] * k for c in ("value", "lower_998", "lower_95", "upper_95", "upper_998")})
         if path in drawn:
-            out.append(captions.funnel(path, png_of(path), points, fmt, bench, counts, f.phi, f.widened, md))
+            out.append(captions.funnel(path, _if_drawn(png_of(path), drawn), points, fmt, bench, counts, f.phi, f.widened, md))
         spread = "about what chance alone would give" if f.phi < 1.5 else f"{f.phi:.1f} times what chance alone would give"
         words = (f"In the funnel plot, {counts['998']} of {counts['units']} units are outside the outer (99.8%) limits and {counts['95']} are outside the inner (95%) limits. "
                  f"The spread between units is {spread}. "
