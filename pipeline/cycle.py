@@ -236,7 +236,7 @@ def build_site(
         project.mkdir()
         slugs = slugs or unit_slugs(cohort.units.index, kept_addresses(past))
         funnels = {r.measure.key: for_measure(r, config.reporting.funnel_overdispersion) for r in results}
-        drawn: set[str] = set()  # figure paths (relative to the project) that exist once drawing is done
+        drawn: dict = {}  # figure path (relative to the project) -> the data drawn, once drawing is done
         if figures:
             jobs = plan(results, cohort.units.index, slugs, past, funnels, config.cycle.period)
             reporter.stage(f"drawing {len(jobs)} figures ({len(results)} measures, {len(cohort.units)} units)")

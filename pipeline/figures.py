@@ -126,10 +126,12 @@ class Drawing:
 
     def __init__(self, project: Path, jobs: list[Job], todo: list[Job], cache: Cache, pool, futures):
         self.project, self.jobs, self.todo, self.cache, self.pool, self.futures = project, jobs, todo, cache, pool, futures
-        # every planned file (SVG, and PNG where asked for) exists once ``wait`` returns
-        self.drawn = {job.relative for job in jobs} | {png_of(job.relative) for job in jobs if job.png}
+        # Every planned file exists once ``wait`` returns: each SVG with the data it was drawn from
+        # (pages build alt text and tables from exactly that), each PNG copy with None.
+        self.drawn: dict[str, pd.DataFrame | None] = {job.relative: job.data for job in jobs}
+        self.drawn.update({png_of(job.relative): None for job in jobs if job.png})
 
-    def wait(self) -> set[str]:
+    def wait(self) -> dict[str, pd.DataFrame | None]:
         try:
             for future in self.futures:
                 future.result()
@@ -510,9 +512,7 @@ def plan(results: list[MeasureResult], unit_ids, slugs: dict[str, str], past, fu
             jobs.append(Job(measure_figure_path(key_, "movement"), "draw_movement", movement_figure_data(r), (r.benchmark * scale, label)))
         f = funnels.get(key_)
         if f is not None:
-            cols = ["value", "lower_998", "lower_95", "upper_95", "upper_998"]
-            points = f.points.assign(**{c: f.points[c] * scale for c in cols})
-            curves = f.curves.assign(**{c: f.curves[c] * scale for c in cols[1:]})
+            points, curves = f.scaled(scale)
             jobs.append(Job(measure_figure_path(key_, "funnel"), "draw_funnel", points, (curves, f.benchmark * scale, label), png=True))
         if r.validation is not None:
             jobs.append(Job(model_figure_path(key_, "calibration"), "draw_calibration", calibration_figure_data(r),

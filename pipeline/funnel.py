@@ -73,6 +73,11 @@ class Funnel:
     widened: bool
     method: str  # "exact binomial", "normal approximation"
 
+    def scaled(self, k: float) -> tuple[pd.DataFrame, pd.DataFrame]:
+        """(points, curves) with values and limits multiplied by ``k`` (100 for percentages)."""
+        return (self.points.assign(**{c: self.points[c] * k for c in ("value", *LIMIT_COLUMNS)}),
+                self.curves.assign(**{c: self.curves[c] * k for c in LIMIT_COLUMNS}))
+
 
 LIMIT_COLUMNS = ("lower_998", "lower_95", "upper_95", "upper_998")
 

@@ -20,7 +20,7 @@ from . import templates_path
 from .config import CycleConfig
 from . import captions
 from .captions import FigureView, attr
-from .figures import axis, measure_figure_data, measure_figure_path, movement_figure_data, png_of, position_data, trend_data, unit_figure_path
+from .figures import axis, measure_figure_path, png_of, unit_figure_path
 from .funnel import Funnel, outside
 from .history import PastCycle, changes
 from .report import model_view
@@ -281,11 +281,11 @@ def _cell(m: MeasureResult, row: pd.Series, level: str, min_cases: int) -> Cell:
     )
 
 
-def _if_drawn(path: str, drawn: set[str]) -> str:
+def _if_drawn(path: str, drawn: dict) -> str:
     return path if path in drawn else ""
 
 
-def _measure_figures(m: MeasureResult, drawn: set[str], f: Funnel | None, level: str) -> tuple[list[FigureView], str]:
+def _measure_figures(m: MeasureResult, drawn: dict, f: Funnel | None, level: str) -> tuple[list[FigureView], str]:
     """The measure's pictures (intervals, funnel, movement) with their words and tables; and the funnel in a sentence."""
     k = axis(m)[0]
     unit = md(m.measure.unit_label) if m.measure.type == "continuous" else "%"
@@ -294,14 +294,13 @@ def _measure_figures(m: MeasureResult, drawn: set[str], f: Funnel | None, level:
     out = []
     path = measure_figure_path(m.measure.key, "intervals")
     if path in drawn:
-        out.append(captions.intervals(path, _if_drawn(png_of(path), drawn), measure_figure_data(m), fmt, lambda lo, hi: f"{fmt(lo)} to {fmt(hi)}", bench, level, md))
+        out.append(captions.intervals(path, _if_drawn(png_of(path), drawn), drawn[path], fmt, lambda lo, hi: f"{fmt(lo)} to {fmt(hi)}", bench, level, md))
     words = ""
     path = measure_figure_path(m.measure.key, "funnel")
     if f is not None:
         counts = outside(f)
-        points = f.points.assign(**{c: f.points[c] * k for c in ("value", "lower_998", "lower_95", "upper_95", "upper_998")})
         if path in drawn:
-            out.append(captions.funnel(path, _if_drawn(png_of(path), drawn), points, fmt, bench, counts, f.phi, f.widened, md))
+            out.append(captions.funnel(path, _if_drawn(png_of(path), drawn), drawn[path], fmt, bench, counts, f.phi, f.widened, md))
         spread = "about what chance alone would give" if f.phi < 1.5 else f"{f.phi:.1f} times what chance alone would give"
         words = (f"In the funnel plot, {counts['998']} of {counts['units']} units are outside the outer (99.8%) limits and {counts['95']} are outside the inner (95%) limits. "
                  f"The spread between units is {spread}. "
@@ -309,18 +308,18 @@ def _measure_figures(m: MeasureResult, drawn: set[str], f: Funnel | None, level:
     path = measure_figure_path(m.measure.key, "movement")
     if path in drawn:
         points_word = "percentage points" if m.measure.type == "binary" else unit
-        out.append(captions.movement(path, "", movement_figure_data(m), fmt, bench, points_word, md))
+        out.append(captions.movement(path, "", drawn[path], fmt, bench, points_word, md))
     return out, words
 
 
-def _unit_figures(uid: str, name: str, slug_: str, results: list[MeasureResult], past: list[PastCycle], drawn: set[str], period: str) -> list[FigureView]:
+def _unit_figures(name: str, slug_: str, drawn: dict) -> list[FigureView]:
     out = []
     path = unit_figure_path(slug_, "position")
     if path in drawn:
-        out.append(captions.position(path, position_data(uid, results), name, md))
+        out.append(captions.position(path, drawn[path], name, md))
     path = unit_figure_path(slug_, "trend")
     if path in drawn:
-        out.append(captions.trend(path, trend_data(uid, results, past, period), name, md))
+        out.append(captions.trend(path, drawn[path], name, md))
     return out
 
 
@@ -343,8 +342,8 @@ def _unit_summary(cells: list[tuple[MeasureView, Cell]]) -> str:
 
 
 def views(
-    config: CycleConfig, results: list[MeasureResult], units: pd.DataFrame, slugs: dict[str, str], drawn: set[str],
-    funnels: dict[str, Funnel | None] | None = None, past: list[PastCycle] | None = None,
+    config: CycleConfig, results: list[MeasureResult], units: pd.DataFrame, slugs: dict[str, str], drawn: dict,
+    funnels: dict[str, Funnel | None] | None = None,
 ) -> tuple[list[MeasureView], list[UnitView]]:
     """Format every number once; return the measure and unit views the templates lay out."""
     level = f"{config.reporting.interval * 100:g}%"
@@ -384,7 +383,7 @@ def views(
         measures.append(view)
     unit_views = [
         UnitView(id=md(uid), name=md(u["name"]), kind=md(u["kind"]), href=f"units/{slugs[uid]}.qmd",
-                 figures=_unit_figures(uid, u["name"], slugs[uid], results, past or [], drawn, config.cycle.period), cells=cells[uid], summary=_unit_summary(cells[uid]))
+                 figures=_unit_figures(u["name"], slugs[uid], drawn), cells=cells[uid], summary=_unit_summary(cells[uid]))
         for uid, u in units.iterrows()
     ]
     return measures, unit_views
@@ -448,12 +447,12 @@ def change_views(results: list[MeasureResult], previous: PastCycle | None, slugs
 
 
 def render_pages(
-    config: CycleConfig, results: list[MeasureResult], units: pd.DataFrame, slugs: dict[str, str], drawn: set[str],
+    config: CycleConfig, results: list[MeasureResult], units: pd.DataFrame, slugs: dict[str, str], drawn: dict,
     past: list[PastCycle], site: dict, funnels: dict[str, Funnel | None] | None = None,
 ) -> list[Page]:
     """All pages of the site plus ``_quarto.yml``, as text."""
     env = environment()
-    measures, unit_views = views(config, results, units, slugs, drawn, funnels, past)
+    measures, unit_views = views(config, results, units, slugs, drawn, funnels)
     unit_trends = trends(config, results, past, slugs)
     common = {
         "cycle": config.cycle, "site": site, "measures": measures, "units": unit_views, "limits": LIMITS,

@@ -151,7 +151,7 @@ def _losses(m: MeasureResult, md) -> str:
     return "; ".join(f"{md(names.get(u, u))} {n:,}" for u, n in by_unit)
 
 
-def model_view(m: MeasureResult, drawn: set[str], md, code) -> ModelView:
+def model_view(m: MeasureResult, drawn: dict, md, code) -> ModelView:
     """Everything the model report of one measure shows, formatted."""
     fit, v = m.casemix, m.validation
     continuous = m.measure.type == "continuous"
