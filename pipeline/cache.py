@@ -2,7 +2,7 @@
 
 Keys hash everything a fit depends on (input file hashes, the measure's outcome, type and
 formula, the sampler settings and seed, the shrinkage spec, and the versions of fairgauge and
-of the fitting libraries) and nothing it does not (names, wording, templates, reporting
+of the fitting libraries, and a hash of fairgauge's own fitting code: ``code_version``) and nothing it does not (names, wording, templates, reporting
 thresholds), so changing only the words re-renders in seconds. Entries are written atomically.
 The cache is local working data, never part of the site.
 """
@@ -34,6 +34,25 @@ def _versions() -> tuple:
         except metadata.PackageNotFoundError:
             found[name] = "absent"
     return tuple(found.items())
+
+
+# Modules whose code decides the fitted numbers: their source and their upper-case constants are
+# part of every fit key, so an upgrade or a changed setting never reuses a stale fit.
+FITTING_MODULES = ("benchmark", "casemix", "curves", "cycle", "data", "sampling", "shrinkage", "validation")
+
+
+def code_version() -> str:
+    """SHA-256 of the fitting code: each module's source plus the current values of its upper-case constants."""
+    import importlib
+    import inspect
+
+    digest = hashlib.sha256()
+    for name in FITTING_MODULES:
+        module = importlib.import_module(f"{__package__}.{name}")
+        digest.update(inspect.getsource(module).encode())
+        constants = {k: v for k, v in vars(module).items() if k.isupper() and not callable(v)}
+        digest.update(json.dumps(constants, sort_keys=True, default=repr).encode())
+    return digest.hexdigest()
 
 
 def library_versions() -> dict[str, str]:

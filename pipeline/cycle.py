@@ -20,13 +20,15 @@ from typing import Protocol
 
 import numpy as np
 import pandas as pd
+from scipy.special import expit
 
 from . import __version__, templates_path
 from .casemix import fit_with_design, unit_summary_fit, without_terms
 from .config import CycleConfig, MeasureSection, family_of
 from .data import Cohort, load_cohort
 from .errors import RenderError, StrictError
-from .cache import Cache, key, library_versions
+from .benchmark import intercept_for, reference_rate, scaled_totals
+from .cache import Cache, code_version, key, library_versions
 from .figures import (
     MAX_FIGURE_UNITS, draw_all, plan,
 )
@@ -115,8 +117,8 @@ def fit_measures(config: CycleConfig, cohort: Cohort, cache: Cache, reporter: Re
     for i, measure in enumerate(config.measures):
         seed = config.sampler.seed + i
         settings = (measure.type, measure.outcome, measure.casemix, family_of(measure), measure.missing, measure.expected_column,
-                    measure.summary, measure.social_risk, measure.risk_threshold)
-        fit_key = key("fit", cohort.sha256, cohort.unit_column, fitted_units, settings, config.sampler, config.validation, seed, ShrinkageSpec())
+                    measure.summary, measure.social_risk, measure.risk_threshold, config.reporting.benchmark)
+        fit_key = key("fit", code_version(), cohort.sha256, cohort.unit_column, fitted_units, settings, config.sampler, config.validation, seed, ShrinkageSpec())
         fits = cache.load(fit_key)
         if fits is None:
             fits = fit_measure(config, cohort, measure, codes, fitted_units, samplers, seed, reporter)
@@ -142,9 +144,11 @@ def fit_measure(
         position_of = {u: i for i, u in enumerate(fitted_units)}
         unit_codes = np.array([position_of[u] for u in summary.index], dtype=np.int64)
         casemix = unit_summary_fit(measure, summary)
-        cells, likelihood = Cells.from_units(unit_codes, summary["observed"], summary["expected"], n_units), "poisson"
+        rate = reference_rate(config.reporting.benchmark, measure.type, casemix.events / casemix.patients)
+        expected, _ = scaled_totals(summary["expected"].to_numpy(), rate * casemix.patients)
+        cells, likelihood = Cells.from_units(unit_codes, summary["observed"], expected, n_units), "poisson"
         counts = pd.DataFrame({"cases": summary["cases"].to_numpy(), "observed": summary["observed"].to_numpy(),
-                               "expected": summary["expected"].to_numpy()}, index=unit_codes).reindex(range(n_units))
+                               "expected": expected}, index=unit_codes).reindex(range(n_units))
     else:
         reporter.stage(f"{measure.key}: case-mix fit ({casemix_formula or measure.casemix})")
         casemix, x, y = fit_with_design(measure, cohort.rows, codes, casemix_formula)
@@ -156,10 +160,10 @@ def fit_measure(
             reporter.stage(f"{measure.key}: validating the case-mix model ({v.folds}-fold cross-validation)")
             validation = validate(casemix, measure.type == "binary", y, x, used_codes, v.folds, v.deciles, threshold, seed)
         likelihood = {"binary": "binomial", "continuous": family_of(measure)}[measure.type]
-        offset = casemix.intercept + casemix.linear
+        offset, expected, scale = benchmark_offset(config, measure, casemix, y, used_codes)
         cells = (Cells.from_patients(used_codes, offset, y, n_units) if likelihood == "binomial"
                  else Cells.from_continuous(used_codes, offset, y, n_units, likelihood))
-        counts = pd.DataFrame({"code": used_codes, "y": y, "e": casemix.expected}).groupby("code").agg(
+        counts = pd.DataFrame({"code": used_codes, "y": y, "e": expected}).groupby("code").agg(
             cases=("y", "size"), observed=("y", "sum"), expected=("e", "sum")
         ).reindex(range(n_units))
     if likelihood not in samplers:
@@ -178,7 +182,33 @@ def fit_measure(
         reduced = without_terms(measure.casemix, measure.social_risk)
         reporter.stage(f"{measure.key}: equity sensitivity: refitting without {', '.join(measure.social_risk)}")
         without = fit_measure(config, cohort, measure, codes, fitted_units, samplers, seed, reporter, casemix_formula=reduced)
-    return MeasureFits(counts, casemix, unit_draws(cells, draws, likelihood=likelihood), draws["tau"], diagnostics, validation, without, sensitivity)
+    ratio_draws = unit_draws(cells, draws, likelihood=likelihood, scale=scale)
+    return MeasureFits(counts, casemix, ratio_draws, draws["tau"], diagnostics, validation, without, sensitivity)
+
+
+def benchmark_offset(config: CycleConfig, measure: MeasureSection, casemix, y: np.ndarray, codes: np.ndarray) -> tuple[np.ndarray, np.ndarray, float]:
+    """Per patient: the shrinkage fit's offset and expected value at the benchmark (benchmark.py), and the ratio's scale.
+
+    Binary: the network intercept is set so the network expects the benchmark rate (a fitted
+    model's calibrated intercept when the benchmark is the network; supplied risks shifted on
+    the logit scale). Continuous: the case-mix fit's calibrated expected values (supplied ones
+    scaled to the network's total); log-normal ratios carry the within-unit over the network
+    smearing factor.
+    """
+    if measure.type == "binary":
+        rate = reference_rate(config.reporting.benchmark, measure.type, casemix.events / casemix.patients)
+        offset = intercept_for(casemix.linear, rate) + casemix.linear
+        return offset, expit(offset), 1.0
+    offset, expected = casemix.intercept + casemix.linear, casemix.expected
+    if not casemix.fitted:  # supplied expected values: one factor brings them to the network's total
+        expected, factor = scaled_totals(expected, float(y.sum()))
+        offset = offset + np.log(factor)
+    scale = 1.0
+    if family_of(measure) == "lognormal":
+        d = np.log(y) - offset
+        unit_mean = (np.bincount(codes, weights=d) / np.maximum(np.bincount(codes), 1))[codes]
+        scale = float(np.mean(np.exp(d - unit_mean)) / casemix.smearing)
+    return offset, expected, scale
 
 
 def prior_sensitivity(config, sampler: Sampler, samplers: dict, cells: Cells, draws: dict, seed: int, likelihood: str, reporter: Reporter, key: str) -> tuple:

@@ -188,6 +188,7 @@ class MeasureView:
     network_rate: str
     benchmark: str
     benchmark_is_network: bool
+    typical: str  # adjusted value of the typical unit, what small units are pulled towards ("" when it rounds to the benchmark)
     c_statistic: str
     units_in_fit: int
     formula: str
@@ -364,6 +365,7 @@ def views(
             patients=f"{m.casemix.patients:,}", events=f"{m.casemix.events:,.0f}" + (f" {md(m.measure.unit_label)}" if continuous else ""),
             network_rate=value(m.measure, m.network_rate), benchmark=value(m.measure, m.benchmark),
             benchmark_is_network=config.reporting.benchmark == "network" or continuous,
+            typical="" if not m.typical == m.typical or value(m.measure, m.typical) == value(m.measure, m.benchmark) else value(m.measure, m.typical),
             c_statistic=num(m.casemix.c_statistic, 3) if not continuous and m.casemix.patients and m.casemix.c_statistic == m.casemix.c_statistic else "not applicable",
             units_in_fit=m.casemix.units_in_fit, formula=code(m.casemix.formula),
             tau=f"{num(m.tau[0])} ({num(m.tau[1])} to {num(m.tau[2])})", rhat=num(d.rhat_max, 3), ess=f"{d.ess_bulk_min:,.0f}",

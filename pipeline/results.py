@@ -16,6 +16,7 @@ import pandas as pd
 from .casemix import CaseMixFit
 from .config import CycleConfig, MeasureSection
 from .sampling import Diagnostics
+from .benchmark import reference_rate
 from .shrinkage import UnitDraws, thin
 from .validation import Validation
 
@@ -80,13 +81,14 @@ class MeasureResult:
     casemix: CaseMixFit
     diagnostics: Diagnostics
     network_rate: float  # binary: the network's observed rate; continuous: the network's mean
-    benchmark: float
+    benchmark: float  # the reference rate or mean R of benchmark.py: the adjusted value of a unit with ratio 1
     tau: tuple[float, float, float]  # posterior median, lower, upper of the between-unit SD
     table: pd.DataFrame  # full internal table, one row per unit in the unit table
     rsr_draws: pd.DataFrame  # thinned posterior draws of the risk-standardised rate, one column per fitted unit
     validation: Validation | None = None
     equity: pd.DataFrame | None = None  # reported units: position with and without the social-risk factors
     sensitivity: tuple = ()  # per alternative prior: {"scale", "k_hat", "method", "changed": [(unit, group now, group then)]}
+    typical: float = float("nan")  # adjusted value of the typical unit (mu), what small units are pulled towards
 
 
 def summarise_measure(
@@ -114,9 +116,8 @@ def _summarise(config: CycleConfig, measure: MeasureSection, units: pd.DataFrame
     level = config.reporting.interval
     lo_q, hi_q = (1 - level) / 2, 1 - (1 - level) / 2
     network_rate = casemix.events / casemix.patients
-    fixed = config.reporting.benchmark != "network" and measure.type == "binary"  # a fixed rate applies to binary measures
-    benchmark = float(config.reporting.benchmark) if fixed else network_rate
-    rsr = draws.ratio * network_rate
+    benchmark = reference_rate(config.reporting.benchmark, measure.type, network_rate)  # benchmark.py: the one definition
+    rsr = draws.ratio * benchmark
     fitted = pd.DataFrame(
         {
             "unit_id": unit_ids,
@@ -170,7 +171,7 @@ def _summarise(config: CycleConfig, measure: MeasureSection, units: pd.DataFrame
         table["own_weight"] = np.nan
     changes = []
     for alt in fits.sensitivity:
-        alt_rsr = (alt.draws.ratio * network_rate) if alt.draws is not None else rsr
+        alt_rsr = (alt.draws.ratio * benchmark) if alt.draws is not None else rsr
         weights = None if alt.log_weights is None else np.exp(alt.log_weights)
         alt_groups, _ = group_units(alt_rsr[:, columns], benchmark, measure.better, *rule, weights=weights)
         names = table.loc[where, "unit_name"].to_numpy()
@@ -182,6 +183,7 @@ def _summarise(config: CycleConfig, measure: MeasureSection, units: pd.DataFrame
         diagnostics=diagnostics,
         network_rate=network_rate,
         benchmark=benchmark,
+        typical=float(np.median(draws.typical)) * benchmark if draws.typical is not None else float("nan"),
         tau=(float(np.median(tau_draws)), float(np.quantile(tau_draws, lo_q)), float(np.quantile(tau_draws, hi_q))),
         table=table,
         rsr_draws=pd.DataFrame(rsr[thin(len(rsr), HISTORY_DRAWS)], columns=unit_ids),
@@ -284,6 +286,7 @@ def results_json(table: pd.DataFrame, results: list[MeasureResult], about: dict)
             "events": r.casemix.events,
             "network_rate": r.network_rate,
             "benchmark": r.benchmark,
+            "typical_unit": r.typical,
             "type": r.measure.type,
             "casemix_family": r.casemix.family,
             "c_statistic": r.casemix.c_statistic,
@@ -325,13 +328,13 @@ DICTIONARY = {
     "status": "reported; too_few (fewer cases than the publication minimum: numbers withheld); withheld (numbers withheld so a smaller unit's cannot be worked out from network totals); no_cases.",
     "cases": "Patients counted for this measure.",
     "observed": "Patients who had the outcome.",
-    "expected": "Patients expected to have the outcome given their recorded risk factors (case-mix fit).",
+    "expected": "Patients expected to have the outcome given their recorded risk factors, at the benchmark (case-mix fit; over the network, expected adds up to the benchmark rate times cases).",
     "raw_rate": "observed / cases, not adjusted for risk or chance.",
     "oe_ratio": "observed / expected, not adjusted for chance.",
-    "rsr_median": "Risk-standardised rate: posterior median.",
+    "rsr_median": "Risk-standardised rate (or adjusted mean): ratio_median times the benchmark; posterior median.",
     "rsr_lower": "Lower end of the credible interval of the risk-standardised rate.",
     "rsr_upper": "Upper end of the credible interval of the risk-standardised rate.",
-    "ratio_median": "Predicted / expected events (risk-standardised rate / network rate): posterior median.",
+    "ratio_median": "Predicted / expected: the unit's events (or total) predicted by the shrinkage fit for its own patients, over the same expected column; 1 is the benchmark. Posterior median.",
     "ratio_lower": "Lower end of the credible interval of that ratio.",
     "ratio_upper": "Upper end of the credible interval of that ratio.",
     "prob_above_benchmark": "Posterior probability that the risk-standardised rate (or adjusted mean) is above the benchmark.",

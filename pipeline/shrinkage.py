@@ -27,12 +27,13 @@ patients:
 * ``lognormal``: log y_ij - c - x_ij ~ Normal(mu + u_i, sigma); sufficient statistics n_i and
   the sum and sum of squares of those residuals.
 
-For all three the predicted-over-expected ratio of a unit is exactly exp(u_i).
+For all three the predicted-over-expected ratio of a unit is exactly exp(mu + u_i) (log-normal:
+times the ratio of within-unit to network smearing factors).
 
-Per unit the risk-standardised rate (Krumholz et al. 2006, Circulation 113:1683; Normand &
-Shahian 2007, Statistical Science 22:206) is, draw by draw,
-``RSR_i = P_i / E_i * network observed rate`` with ``P_i = sum_j expit(c + mu + u_i + x_ij)``
-and ``E_i = sum_j expit(c + mu + x_ij)``.
+Per unit the ratio to the benchmark (one definition for every published number: benchmark.py)
+is, draw by draw, ``P_i / E_i`` with ``P_i = sum_j expit(c + mu + u_i + x_ij)`` and
+``E_i = sum_j expit(c + x_ij)``, c the benchmark's calibrated intercept, so E_i is the published
+expected count; the risk-standardised rate is that ratio times the benchmark rate.
 """
 
 from __future__ import annotations
@@ -281,11 +282,12 @@ def _loglik(spec: ShrinkageSpec, prior, data: dict, eta):
 
 @dataclass(frozen=True)
 class UnitDraws:
-    """Posterior draws per unit: risk-standardised ratio P/E and unit effect u."""
+    """Posterior draws per unit: the ratio P/E to the benchmark (benchmark.py) and the unit effect u."""
 
-    ratio: np.ndarray  # (draws, units) P_i / E_i
-    effect: np.ndarray  # (draws, units) u_i on the log-odds scale
+    ratio: np.ndarray  # (draws, units) P_i / E_i, E_i the published expected total at the benchmark
+    effect: np.ndarray  # (draws, units) u_i on the link scale (departure from the typical unit)
     se: np.ndarray | None = None  # (units,) standard error of each unit's intercept from its own data alone
+    typical: np.ndarray | None = None  # (draws,) the typical unit's ratio (intercept mu): what small units are pulled towards
 
 
 def thin(n: int, keep: int) -> np.ndarray:
@@ -293,8 +295,16 @@ def thin(n: int, keep: int) -> np.ndarray:
     return np.linspace(0, n - 1, min(n, keep)).round().astype(int)
 
 
-def unit_draws(cells: Cells, draws: dict[str, np.ndarray], max_draws: int = 4000, likelihood: str = "binomial") -> UnitDraws:
-    """Predicted over expected per unit, draw by draw (the Krumholz ratio P/E; exp(u) for log links)."""
+def unit_draws(cells: Cells, draws: dict[str, np.ndarray], max_draws: int = 4000, likelihood: str = "binomial",
+               scale: float = 1.0) -> UnitDraws:
+    """Predicted over expected per unit, draw by draw: P_i(mu + u_i) / P_i(0), where P_i(a) is the unit's
+    predicted total with its intercept moved by a from the benchmark's (offsets hold the benchmark's
+    intercept, so P_i(0) is the published expected total E_i).
+
+    Log links: exp(mu + u_i) times ``scale`` (log-normal: the within-unit over the network smearing
+    factor, so that P_i and E_i are on the same scale). The typical unit's ratio uses mu alone,
+    summed over the whole network.
+    """
     mu, u = draws["mu"], draws["u"]
     keep = thin(len(mu), max_draws)  # evenly thinned: the summaries need no more
     mu, u = mu[keep], u[keep]
@@ -305,14 +315,19 @@ def unit_draws(cells: Cells, draws: dict[str, np.ndarray], max_draws: int = 4000
     else:
         se = unit_estimates(ShrinkageSpec(likelihood=likelihood), cells)[1]
     se[missing] = np.inf
+    a = mu[:, None] + u
     if likelihood != "binomial":
-        ratio = np.exp(u)
+        ratio = np.exp(a) * scale
         ratio[:, missing] = np.nan
-        return UnitDraws(ratio=ratio, effect=u, se=se)
-    if curves is not None:  # P_i(mu + u_i) / P_i(mu) from each unit's series of log P_i (curves.py)
-        ratio = np.exp(curves.log_predicted(mu[:, None] + u) - curves.log_predicted(np.repeat(mu[:, None], u.shape[1], axis=1)))
+        return UnitDraws(ratio=ratio, effect=u, se=se, typical=np.exp(mu) * scale)
+    if curves is not None:  # from each unit's series of log P_i (curves.py)
+        present = np.setdiff1d(np.arange(cells.n_units), missing)
+        log_expected = curves.log_predicted(np.zeros(cells.n_units))
+        ratio = np.exp(curves.log_predicted(a) - log_expected)
+        at_mu = np.exp(curves.log_predicted(np.repeat(mu[:, None], cells.n_units, axis=1))[:, present])
+        typical = at_mu.sum(axis=1) / np.exp(log_expected[present]).sum()
         ratio[:, missing] = np.nan
-        return UnitDraws(ratio=ratio, effect=u, se=se)
+        return UnitDraws(ratio=ratio, effect=u, se=se, typical=typical)
     ratio = np.full(u.shape, np.nan)
     order = np.argsort(cells.unit, kind="stable")
     bounds = np.searchsorted(cells.unit[order], np.arange(cells.n_units + 1))
@@ -321,8 +336,6 @@ def unit_draws(cells: Cells, draws: dict[str, np.ndarray], max_draws: int = 4000
         if len(idx) == 0:
             continue
         off, n = cells.offset[idx], cells.n[idx]
-        base = mu[:, None] + off[None, :]
-        predicted = expit(base + u[:, i, None]) @ n
-        expected = expit(base) @ n
-        ratio[:, i] = predicted / expected
-    return UnitDraws(ratio=ratio, effect=u, se=se)
+        ratio[:, i] = (expit(a[:, i, None] + off[None, :]) @ n) / (expit(off) @ n)
+    typical = (expit(mu[:, None] + cells.offset[None, :]) @ cells.n) / (expit(cells.offset) @ cells.n)
+    return UnitDraws(ratio=ratio, effect=u, se=se, typical=typical)

@@ -97,13 +97,16 @@ def test_unit_curves_match_the_exact_likelihood_and_ratio():
 
 
 def test_risk_standardised_ratio_on_a_constructed_example():
-    # Constructed example (values computed with numpy; formula of Krumholz et al. 2006 and Normand &
-    # Shahian 2007, from memory): mu = -2, b = 1, unit intercept -1.5, patients x = 0, 1, 2.
-    # P = 1.182426, E = 0.888144, P/E = 1.331344; with network rate 0.20 the RSR is 0.266269.
+    # Constructed example (values computed with numpy; predicted over expected as in Krumholz et al.
+    # 2006, with E at the benchmark's intercept as in benchmark.py, from memory): offsets c + x = 0, 1, 2
+    # (c is the benchmark's calibrated intercept), mu = -2, u = 0.5, so the unit's intercept moves by -1.5.
+    # P = sum expit(-1.5 + x) = 1.182426, E = sum expit(x) = 2.111856, P/E = 0.559899; with benchmark
+    # rate 0.20 the RSR is 0.111980. The typical unit (mu alone): sum expit(-2 + x) / E = 0.420552.
     cells = Cells(unit=np.zeros(3, dtype=np.int64), offset=np.array([0.0, 1.0, 2.0]), n=np.ones(3), r=np.array([1.0, 0, 0]), n_units=1)
     draws = unit_draws(cells, {"mu": np.array([-2.0]), "u": np.array([[0.5]]), "tau": np.array([1.0])})
-    assert draws.ratio[0, 0] == pytest.approx(1.331344, abs=1e-6)
-    assert draws.ratio[0, 0] * 0.20 == pytest.approx(0.266269, abs=1e-6)
+    assert draws.ratio[0, 0] == pytest.approx(0.559899, abs=1e-6)
+    assert draws.ratio[0, 0] * 0.20 == pytest.approx(0.111980, abs=1e-6)
+    assert draws.typical[0] == pytest.approx(0.420552, abs=1e-6)
 
 
 def test_failed_diagnostics_are_named_in_the_error():

@@ -1,0 +1,61 @@
+"""The benchmark: one definition that every published number of a measure is measured against.
+
+fairgauge compares each unit with what its own patients would be expected to have at the
+benchmark's performance: indirect standardisation. For every measure,
+
+* the reference level R is the network's observed rate (or mean), or a fixed rate from
+  ``[reporting].benchmark`` for binary measures;
+* a unit's **expected** total E_i is the sum, over its own patients, of their expected outcome
+  under the case-mix model, with the one network intercept set so that the expected total of the
+  whole network is R times its patients (calibration-in-the-large). Expected values supplied
+  from elsewhere (a risk column or unit totals) are brought to the same total: risks by a shift
+  on the logit scale, unit totals by one common factor;
+* the published **O/E** is observed / E_i, and the **ratio** of the shrinkage fit is the unit's
+  predicted total P_i (its own posterior intercept applied to the same patients) over the same
+  E_i, draw by draw. Its benchmark is 1, so "in line with the benchmark" means P_i near E_i;
+* the **adjusted rate** (or mean) is ratio x R, so the benchmark line sits at R, and P(above),
+  P(below), groups, ranks, the funnel's centre and the unit strips all use the same R and E_i.
+
+This is the ratio of predicted to expected outcomes (Krumholz et al. 2006, Circulation 113:1683,
+from memory) with the expected total taken at the network's own level, as in indirectly
+standardised ratios and their funnel plots (Spiegelhalter 2005, Statistics in Medicine 24:1185,
+section 3.3; from memory). A unit whose observed count equals its expected count, and whose
+estimate rests mostly on its own patients, therefore has a ratio near 1.
+
+What small units are pulled towards is a different value: the typical unit of the hierarchical
+model (its mean intercept mu), which need not equal R when large and small units differ. It is
+reported per measure as the typical unit's ratio (``MeasureResult.typical``) and shown on the
+measure page when it differs from the benchmark.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+from scipy.special import expit, logit
+
+from .casemix import calibrate_intercept
+
+
+def reference_rate(fixed: str | float, measure_type: str, network_rate: float) -> float:
+    """R: a fixed benchmark rate (binary measures only) or the network's own rate or mean."""
+    if fixed != "network" and measure_type == "binary":
+        return float(fixed)
+    return network_rate
+
+
+def intercept_for(linear: np.ndarray, rate: float) -> float:
+    """The network intercept at which patients with linear risks ``linear`` expect ``rate`` events each on average."""
+    return calibrate_intercept(linear, rate * len(linear))
+
+
+def calibrated_risks(risks: np.ndarray, rate: float) -> np.ndarray:
+    """Supplied per-patient risks shifted on the logit scale so that their mean is ``rate``."""
+    linear = logit(np.clip(np.asarray(risks, float), 1e-12, 1 - 1e-12))
+    return expit(intercept_for(linear, rate) + linear)
+
+
+def scaled_totals(expected: np.ndarray, total: float) -> tuple[np.ndarray, float]:
+    """Supplied expected totals per unit times one factor so they add up to ``total``: (scaled, factor)."""
+    expected = np.asarray(expected, float)
+    factor = float(total / expected.sum())
+    return expected * factor, factor
