@@ -137,7 +137,7 @@ def fit_measure(
 ) -> MeasureFits:
     """Case-mix fit, its validation and the shrinkage fit of one measure (and, with social risk, the refit without it)."""
     n_units = len(fitted_units)
-    validation = None
+    validation, scale = None, 1.0
     if measure.summary:
         reporter.stage(f"{measure.key}: unit-level input; no case-mix fit")
         summary = cohort.summaries[measure.key]
@@ -191,23 +191,23 @@ def benchmark_offset(config: CycleConfig, measure: MeasureSection, casemix, y: n
 
     Binary: the network intercept is set so the network expects the benchmark rate (a fitted
     model's calibrated intercept when the benchmark is the network; supplied risks shifted on
-    the logit scale). Continuous: the case-mix fit's calibrated expected values (supplied ones
-    scaled to the network's total); log-normal ratios carry the within-unit over the network
-    smearing factor.
+    the logit scale). Continuous: the case-mix fit's expected values (or supplied ones) times one
+    factor so they add up to the network's total; the ratio carries that factor and, for
+    log-normal fits, the within-unit over the network smearing factor.
     """
     if measure.type == "binary":
         rate = reference_rate(config.reporting.benchmark, measure.type, casemix.events / casemix.patients)
         offset = intercept_for(casemix.linear, rate) + casemix.linear
         return offset, expit(offset), 1.0
-    offset, expected = casemix.intercept + casemix.linear, casemix.expected
-    if not casemix.fitted:  # supplied expected values: one factor brings them to the network's total
-        expected, factor = scaled_totals(expected, float(y.sum()))
-        offset = offset + np.log(factor)
-    scale = 1.0
-    if family_of(measure) == "lognormal":
+    offset = casemix.intercept + casemix.linear
+    expected, factor = scaled_totals(casemix.expected, float(y.sum()))  # 1 for a Gamma fit; Duan's smearing is close, not exact
+    if not casemix.fitted:  # supplied expected values: the shrinkage fit's offset moves with them
+        return offset + np.log(factor), expected, 1.0
+    scale = 1.0 / factor
+    if family_of(measure) == "lognormal":  # P_i uses the within-unit smearing factor, E_i the network's
         d = np.log(y) - offset
         unit_mean = (np.bincount(codes, weights=d) / np.maximum(np.bincount(codes), 1))[codes]
-        scale = float(np.mean(np.exp(d - unit_mean)) / casemix.smearing)
+        scale *= float(np.mean(np.exp(d - unit_mean)) / casemix.smearing)
     return offset, expected, scale
 
 

@@ -96,15 +96,15 @@ def funnel(table: pd.DataFrame, kind: str, network_rate: float, benchmark: float
     """The funnel for a measure's reported units; None when fewer than 3 units are reported.
 
     ``table`` is the measure's results table (cases, observed, expected, status, group). Each
-    unit's value is its O/E ratio times the network rate (or mean): its indirectly standardised
-    rate. ``cv2`` is the squared coefficient of variation of one patient's outcome (continuous
+    unit's value is its published O/E ratio times the benchmark rate (or mean): its indirectly
+    standardised rate, centred on the same benchmark as every other number (benchmark.py). ``cv2`` is the squared coefficient of variation of one patient's outcome (continuous
     measures only).
     """
     t = table[(table["status"] == "reported") & (table["expected"] > 0)]
     if len(t) < 3:
         return None
     cases = t["cases"].to_numpy(float)
-    value = (t["observed"] / t["expected"]).to_numpy() * network_rate
+    value = (t["observed"] / t["expected"]).to_numpy() * benchmark  # the published O/E on the benchmark's scale (benchmark.py)
     if kind == "binary":
         method = "exact binomial"
         def se_at(n):
