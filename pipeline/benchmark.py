@@ -31,9 +31,10 @@ measure page when it differs from the benchmark.
 from __future__ import annotations
 
 import numpy as np
-from scipy.special import expit, logit
+from scipy.special import expit
 
-from .casemix import calibrate_intercept
+from .casemix import CaseMixFit, calibrate_intercept
+from .config import MeasureSection, family_of
 
 
 def reference_rate(fixed: str | float, measure_type: str, network_rate: float) -> float:
@@ -48,14 +49,33 @@ def intercept_for(linear: np.ndarray, rate: float) -> float:
     return calibrate_intercept(linear, rate * len(linear))
 
 
-def calibrated_risks(risks: np.ndarray, rate: float) -> np.ndarray:
-    """Supplied per-patient risks shifted on the logit scale so that their mean is ``rate``."""
-    linear = logit(np.clip(np.asarray(risks, float), 1e-12, 1 - 1e-12))
-    return expit(intercept_for(linear, rate) + linear)
-
-
 def scaled_totals(expected: np.ndarray, total: float) -> tuple[np.ndarray, float]:
     """Supplied expected totals per unit times one factor so they add up to ``total``: (scaled, factor)."""
     expected = np.asarray(expected, float)
     factor = float(total / expected.sum())
     return expected * factor, factor
+
+
+def benchmark_offset(fixed: str | float, measure: MeasureSection, casemix: CaseMixFit, y: np.ndarray, codes: np.ndarray) -> tuple[np.ndarray, np.ndarray, float]:
+    """Per patient (``fixed`` is ``[reporting].benchmark``): the shrinkage fit's offset and expected value at the benchmark (benchmark.py), and the ratio's scale.
+
+    Binary: the network intercept is set so the network expects the benchmark rate (a fitted
+    model's calibrated intercept when the benchmark is the network; supplied risks shifted on
+    the logit scale). Continuous: the case-mix fit's expected values (or supplied ones) times one
+    factor so they add up to the network's total; the ratio carries that factor and, for
+    log-normal fits, the within-unit over the network smearing factor.
+    """
+    if measure.type == "binary":
+        rate = reference_rate(fixed, measure.type, casemix.events / casemix.patients)
+        offset = intercept_for(casemix.linear, rate) + casemix.linear
+        return offset, expit(offset), 1.0
+    offset = casemix.intercept + casemix.linear
+    expected, factor = scaled_totals(casemix.expected, float(y.sum()))  # 1 for a Gamma fit; Duan's smearing is close, not exact
+    if not casemix.fitted:  # supplied expected values: the shrinkage fit's offset moves with them
+        return offset + np.log(factor), expected, 1.0
+    scale = 1.0 / factor
+    if family_of(measure) == "lognormal":  # P_i uses the within-unit smearing factor, E_i the network's
+        d = np.log(y) - offset
+        unit_mean = (np.bincount(codes, weights=d) / np.maximum(np.bincount(codes), 1))[codes]
+        scale *= float(np.mean(np.exp(d - unit_mean)) / casemix.smearing)
+    return offset, expected, scale

@@ -20,14 +20,13 @@ from typing import Protocol
 
 import numpy as np
 import pandas as pd
-from scipy.special import expit
 
 from . import __version__, templates_path
 from .casemix import fit_with_design, unit_summary_fit, without_terms
 from .config import CycleConfig, MeasureSection, family_of
 from .data import Cohort, load_cohort
 from .errors import RenderError, StrictError
-from .benchmark import intercept_for, reference_rate, scaled_totals
+from .benchmark import benchmark_offset, reference_rate, scaled_totals
 from .cache import Cache, code_version, key, library_versions
 from .figures import (
     MAX_FIGURE_UNITS, draw_all, plan,
@@ -114,11 +113,12 @@ def fit_measures(config: CycleConfig, cohort: Cohort, cache: Cache, reporter: Re
     codes = pd.Categorical(rows[cohort.unit_column], categories=fitted_units).codes.astype(np.int64)
     samplers: dict[str, Sampler] = {}
     results = []
+    code = code_version()
     for i, measure in enumerate(config.measures):
         seed = config.sampler.seed + i
         settings = (measure.type, measure.outcome, measure.casemix, family_of(measure), measure.missing, measure.expected_column,
                     measure.summary, measure.social_risk, measure.risk_threshold, config.reporting.benchmark)
-        fit_key = key("fit", code_version(), cohort.sha256, cohort.unit_column, fitted_units, settings, config.sampler, config.validation, seed, ShrinkageSpec())
+        fit_key = key("fit", code, cohort.sha256, cohort.unit_column, fitted_units, settings, config.sampler, config.validation, seed, ShrinkageSpec())
         fits = cache.load(fit_key)
         if fits is None:
             fits = fit_measure(config, cohort, measure, codes, fitted_units, samplers, seed, reporter)
@@ -160,7 +160,7 @@ def fit_measure(
             reporter.stage(f"{measure.key}: validating the case-mix model ({v.folds}-fold cross-validation)")
             validation = validate(casemix, measure.type == "binary", y, x, used_codes, v.folds, v.deciles, threshold, seed)
         likelihood = {"binary": "binomial", "continuous": family_of(measure)}[measure.type]
-        offset, expected, scale = benchmark_offset(config, measure, casemix, y, used_codes)
+        offset, expected, scale = benchmark_offset(config.reporting.benchmark, measure, casemix, y, used_codes)
         cells = (Cells.from_patients(used_codes, offset, y, n_units) if likelihood == "binomial"
                  else Cells.from_continuous(used_codes, offset, y, n_units, likelihood))
         counts = pd.DataFrame({"code": used_codes, "y": y, "e": expected}).groupby("code").agg(
@@ -185,30 +185,6 @@ def fit_measure(
     ratio_draws = unit_draws(cells, draws, likelihood=likelihood, scale=scale)
     return MeasureFits(counts, casemix, ratio_draws, draws["tau"], diagnostics, validation, without, sensitivity)
 
-
-def benchmark_offset(config: CycleConfig, measure: MeasureSection, casemix, y: np.ndarray, codes: np.ndarray) -> tuple[np.ndarray, np.ndarray, float]:
-    """Per patient: the shrinkage fit's offset and expected value at the benchmark (benchmark.py), and the ratio's scale.
-
-    Binary: the network intercept is set so the network expects the benchmark rate (a fitted
-    model's calibrated intercept when the benchmark is the network; supplied risks shifted on
-    the logit scale). Continuous: the case-mix fit's expected values (or supplied ones) times one
-    factor so they add up to the network's total; the ratio carries that factor and, for
-    log-normal fits, the within-unit over the network smearing factor.
-    """
-    if measure.type == "binary":
-        rate = reference_rate(config.reporting.benchmark, measure.type, casemix.events / casemix.patients)
-        offset = intercept_for(casemix.linear, rate) + casemix.linear
-        return offset, expit(offset), 1.0
-    offset = casemix.intercept + casemix.linear
-    expected, factor = scaled_totals(casemix.expected, float(y.sum()))  # 1 for a Gamma fit; Duan's smearing is close, not exact
-    if not casemix.fitted:  # supplied expected values: the shrinkage fit's offset moves with them
-        return offset + np.log(factor), expected, 1.0
-    scale = 1.0 / factor
-    if family_of(measure) == "lognormal":  # P_i uses the within-unit smearing factor, E_i the network's
-        d = np.log(y) - offset
-        unit_mean = (np.bincount(codes, weights=d) / np.maximum(np.bincount(codes), 1))[codes]
-        scale *= float(np.mean(np.exp(d - unit_mean)) / casemix.smearing)
-    return offset, expected, scale
 
 
 def prior_sensitivity(config, sampler: Sampler, samplers: dict, cells: Cells, draws: dict, seed: int, likelihood: str, reporter: Reporter, key: str) -> tuple:

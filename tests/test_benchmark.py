@@ -20,7 +20,8 @@ from scipy.special import expit, logit
 from pipeline.cache import Cache, code_version
 from pipeline.casemix import fit_with_design
 from pipeline.config import load_config
-from pipeline.cycle import Quiet, benchmark_offset, fit_measures
+from pipeline.benchmark import benchmark_offset
+from pipeline.cycle import Quiet, fit_measures
 from pipeline.data import load_cohort
 from pipeline.shrinkage import Cells, unit_draws
 
@@ -108,7 +109,7 @@ def _balance_anchor(config, rows: pd.DataFrame, units: pd.DataFrame) -> None:
             continue
         for _ in range(6):
             fit, _, y = fit_with_design(measure, rows, codes)
-            _, expected, _ = benchmark_offset(config, measure, fit, y, codes[fit.used])
+            _, expected, _ = benchmark_offset(config.reporting.benchmark, measure, fit, y, codes[fit.used])
             e, o = expected[anchor].sum(), y[anchor].sum()
             if measure.type == "binary":
                 gap = int(round(e - o))
