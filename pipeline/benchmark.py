@@ -79,3 +79,30 @@ def benchmark_offset(fixed: str | float, measure: MeasureSection, casemix: CaseM
         unit_mean = (np.bincount(codes, weights=d) / np.maximum(np.bincount(codes), 1))[codes]
         scale *= float(np.mean(np.exp(d - unit_mean)) / casemix.smearing)
     return offset, expected, scale
+
+
+def patient_cv2(family: str, dispersion: float) -> float:
+    """Squared coefficient of variation of one patient's outcome under a continuous case-mix fit."""
+    if family == "gamma":
+        return float(dispersion)  # Var = phi * mean^2
+    if family == "lognormal":
+        return float(np.expm1(dispersion))  # Var = (exp(sigma^2) - 1) * mean^2
+    raise ValueError(f"no patient variance for case-mix family {family!r}; allowed: gamma, lognormal")
+
+
+def null_variance(measure: MeasureSection, casemix: CaseMixFit, y: np.ndarray, expected: np.ndarray) -> np.ndarray:
+    """Per patient: the variance of the outcome if the patient were treated at the benchmark (the funnel's null).
+
+    Binary: e (1 - e) at the patient's expected risk e. Continuous: cv^2 e^2, with one patient's
+    squared coefficient of variation from the fitted case-mix family, or, for expected values
+    supplied from elsewhere, the network's mean squared relative residual ((y - e) / e)^2
+    (a Pearson estimate of the same quantity).
+    """
+    e = np.asarray(expected, float)
+    if measure.type == "binary":
+        return e * (1.0 - e)
+    if casemix.fitted:
+        cv2 = patient_cv2(family_of(measure), casemix.dispersion)
+    else:
+        cv2 = float(np.mean(((np.asarray(y, float) - e) / e) ** 2))
+    return cv2 * e**2

@@ -74,25 +74,27 @@ def movement(src: str, png: str, data: pd.DataFrame, fmt, benchmark: str, points
            f"Small units move further: the typical move is {small:.1f} {points} for the {k} smallest units and {large:.1f} for the {k} largest. "
            f"The largest move is {attr(top['unit_name'])}, from {fmt(top['raw'])} to {fmt(top['adjusted'])}. The benchmark is {benchmark}.")
     rows = [[md(r.unit_name), f"{r.cases:,}", fmt(r.raw), fmt(r.adjusted), f"{r.adjusted - r.raw:+.1f}"] for r in data.iloc[::-1].itertuples()]
-    return FigureView(src, png, "Each line runs from a unit's raw value (hollow circle) to its adjusted value (marker). Small units are pulled further towards the network.",
+    return FigureView(src, png, "Each line runs from a unit's raw value (hollow circle) to its adjusted value (marker). Small units are pulled further towards the typical unit.",
                       alt, ["Unit", "Cases", "Raw", "Adjusted", "Move"], rows)
 
 
 def funnel(src: str, png: str, points: pd.DataFrame, fmt, benchmark: str, counts: dict, phi: float, widened: bool, md) -> FigureView:
     out95 = points[(points["value"] < points["lower_95"]) | (points["value"] > points["upper_95"])]
     out998 = points[(points["value"] < points["lower_998"]) | (points["value"] > points["upper_998"])]
-    alt = (f"Funnel plot of {counts['units']} units: each unit's case-mix-adjusted value from its observed and expected counts, against its "
-           f"number of cases on a log scale, with 95% and 99.8% control limits around the benchmark of {benchmark}"
+    alt = (f"Funnel plot of {counts['units']} units: each unit's case-mix-adjusted value from its observed and expected counts, against the "
+           f"precision of its O/E on a log scale (higher for units with more expected events), with 95% and 99.8% control limits around the benchmark of {benchmark}"
            f"{', widened for the extra spread between units' if widened else ''}. "
            f"{len(out95)} {'unit lies' if len(out95) == 1 else 'units lie'} outside the 95% limits"
            f"{' (' + _names(list(out95['unit_name']), attr) + ')' if len(out95) else ''} and {len(out998)} outside the 99.8% limits"
            f"{' (' + _names(list(out998['unit_name']), attr) + ')' if len(out998) else ''}. "
            f"The spread between units is {phi:.1f} times what chance alone would give.")
-    rows = [[md(r.unit_name), f"{r.cases:,.0f}", fmt(r.value), f"{fmt(r.lower_95)} to {fmt(r.upper_95)}", f"{fmt(r.lower_998)} to {fmt(r.upper_998)}",
+    rows = [[md(r.unit_name), f"{r.cases:,.0f}", f"{r.expected:,.1f}", fmt(r.value), f"{fmt(r.lower_95)} to {fmt(r.upper_95)}", f"{fmt(r.lower_998)} to {fmt(r.upper_998)}",
              "above" if r.value > r.upper_998 else "below" if r.value < r.lower_998 else "inside"]
-            for r in points.sort_values("cases").itertuples()]
-    return FigureView(src, png, "Each marker is a unit. The funnel lines show how far from the benchmark a unit of that size could land by chance alone (95% and 99.8% of the time).",
-                      alt, ["Unit", "Cases", "Value from O/E", "95% limits", "99.8% limits", "Against the 99.8% limits"], rows)
+            for r in points.sort_values("precision").itertuples()]
+    return FigureView(src, png, ("Each marker is a unit. Its height is what the unit observed, divided by what was expected for its patients (O/E), "
+                      "times the benchmark. This uses the unit's own counts only, with no pull towards other units. "
+                      "The funnel lines show how far from the benchmark a unit with that many expected events could land by chance alone (95% and 99.8% of the time)."),
+                      alt, ["Unit", "Cases", "Expected", "Value from O/E", "95% limits", "99.8% limits", "Against the 99.8% limits"], rows)
 
 
 def position(src: str, data: pd.DataFrame, unit_name: str, md) -> FigureView:
@@ -102,11 +104,11 @@ def position(src: str, data: pd.DataFrame, unit_name: str, md) -> FigureView:
             parts.append(f"{attr(r.measure)}: not reported")
         else:
             parts.append(f"{attr(r.measure)}: {r.ratio:.2f} ({r.lo:.2f} to {r.hi:.2f}), {GROUPS[r.group].lower()}")
-    alt = f"Chart of {attr(unit_name)}'s adjusted ratio to the network on each measure, with its interval, the benchmark and the range where most units sit. " + "; ".join(parts) + "."
+    alt = f"Chart of {attr(unit_name)}'s adjusted ratio to the benchmark on each measure, with its interval, the benchmark and the range where most units sit. " + "; ".join(parts) + "."
     rows = [[md(r.measure), "" if pd.isna(r.ratio) else f"{r.ratio:.2f}", "" if pd.isna(r.ratio) else f"{r.lo:.2f} to {r.hi:.2f}",
              "not reported" if pd.isna(r.ratio) else GROUPS[r.group]] for r in data.itertuples()]
     return FigureView(src, "", "A ratio of 1 means as many events as expected for these patients. The shaded band is where most units sit; the dashed line is the benchmark.",
-                      alt, ["Measure", "Ratio to the network", "Interval", "Group"], rows)
+                      alt, ["Measure", "Ratio to the benchmark", "Interval", "Group"], rows)
 
 
 def trend(src: str, data: pd.DataFrame, unit_name: str, md) -> FigureView:

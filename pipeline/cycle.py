@@ -26,7 +26,7 @@ from .casemix import fit_with_design, unit_summary_fit, without_terms
 from .config import CycleConfig, MeasureSection, family_of
 from .data import Cohort, load_cohort
 from .errors import RenderError, StrictError
-from .benchmark import benchmark_offset, reference_rate, scaled_totals
+from .benchmark import benchmark_offset, null_variance, reference_rate, scaled_totals
 from .cache import Cache, code_version, key, library_versions
 from .figures import (
     MAX_FIGURE_UNITS, draw_all, plan,
@@ -148,7 +148,7 @@ def fit_measure(
         expected, _ = scaled_totals(summary["expected"].to_numpy(), rate * casemix.patients)
         cells, likelihood = Cells.from_units(unit_codes, summary["observed"], expected, n_units), "poisson"
         counts = pd.DataFrame({"cases": summary["cases"].to_numpy(), "observed": summary["observed"].to_numpy(),
-                               "expected": expected}, index=unit_codes).reindex(range(n_units))
+                               "expected": expected, "variance": expected}, index=unit_codes).reindex(range(n_units))
     else:
         reporter.stage(f"{measure.key}: case-mix fit ({casemix_formula or measure.casemix})")
         casemix, x, y = fit_with_design(measure, cohort.rows, codes, casemix_formula)
@@ -163,8 +163,8 @@ def fit_measure(
         offset, expected, scale = benchmark_offset(config.reporting.benchmark, measure, casemix, y, used_codes)
         cells = (Cells.from_patients(used_codes, offset, y, n_units) if likelihood == "binomial"
                  else Cells.from_continuous(used_codes, offset, y, n_units, likelihood))
-        counts = pd.DataFrame({"code": used_codes, "y": y, "e": expected}).groupby("code").agg(
-            cases=("y", "size"), observed=("y", "sum"), expected=("e", "sum")
+        counts = pd.DataFrame({"code": used_codes, "y": y, "e": expected, "v": null_variance(measure, casemix, y, expected)}).groupby("code").agg(
+            cases=("y", "size"), observed=("y", "sum"), expected=("e", "sum"), variance=("v", "sum")
         ).reindex(range(n_units))
     if likelihood not in samplers:
         samplers[likelihood] = Sampler(ShrinkageSpec(likelihood=likelihood), config.sampler, engine=config.sampler.engine)

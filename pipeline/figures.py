@@ -281,19 +281,20 @@ def draw_movement(data: pd.DataFrame, benchmark: float, label: str, path: Path, 
 
 
 def draw_funnel(points: pd.DataFrame, curves: pd.DataFrame, benchmark: float, label: str, path: Path, png: bool) -> None:
-    """Each unit's case-mix-adjusted value against its cases, with 95% and 99.8% control limits (scaled)."""
-    long = curves.melt(id_vars="cases", var_name="limit", value_name="value")
+    """Each unit's value from its O/E against the precision of that O/E, with 95% and 99.8% control limits (scaled)."""
+    long = curves.melt(id_vars="precision", var_name="limit", value_name="value")
     long["limits"] = np.where(long["limit"].str.endswith("998"), "99.8% limits", "95% limits")
     long["side"] = long["limit"].str.split("_").str[0]
     plot = (
         p9.ggplot()
         + p9.geom_hline(yintercept=benchmark, colour=BENCHMARK_INK)
-        + p9.geom_line(long, p9.aes(x="cases", y="value", linetype="limits", group="limit"), colour="#3A3A3A")
-        + p9.geom_point(points, p9.aes(x="cases", y="value", colour="group", shape="group"), size=2.4)
+        + p9.geom_line(long, p9.aes(x="precision", y="value", linetype="limits", group="limit"), colour="#3A3A3A")
+        + p9.geom_point(points, p9.aes(x="precision", y="value", colour="group", shape="group"), size=2.4)
         + p9.scale_linetype_manual(values={"95% limits": "dashed", "99.8% limits": "dotted"}, name="Control limits")
         + _group_scales()
         + p9.scale_x_log10()
-        + p9.labs(x="Cases (log scale)", y=f"{label.replace('Risk-standardised rate', 'Adjusted rate')} from O/E\n(solid line: benchmark {benchmark:.1f})")
+        + p9.labs(x="Precision of the unit's O/E (log scale; grows with its expected events)",
+                  y=f"{label.replace('Risk-standardised rate', 'Adjusted rate')} from O/E\n(solid line: benchmark {benchmark:.1f})")
         + _theme(7.5, 5.6) + p9.theme(legend_box="horizontal")
     )
     _save(plot, path, png)
@@ -304,20 +305,20 @@ def draw_funnel(points: pd.DataFrame, curves: pd.DataFrame, benchmark: float, la
 def position_frame(results: list[MeasureResult]) -> pd.DataFrame:
     """The part of every unit strip that is the same for all units: per measure, where most units sit.
 
-    Ratios to the network: the benchmark's ratio, and the 10th-90th percentile band of the
+    Ratios to the benchmark: the benchmark itself (1, benchmark.py), and the 10th-90th percentile band of the
     reported units' adjusted ratios.
     """
     rows = []
     for r in results:
         t = r.table[r.table["status"] == "reported"]
         lo, hi = (np.quantile(t["ratio_median"], [0.1, 0.9]) if len(t) else (np.nan, np.nan))
-        rows.append({"measure": r.measure.name, "bench": r.benchmark / r.network_rate, "band_lo": lo, "band_hi": hi,
+        rows.append({"measure": r.measure.name, "bench": 1.0, "band_lo": lo, "band_hi": hi,
                      "x_min": float(t["ratio_lower"].min()) if len(t) else 0.8, "x_max": float(t["ratio_upper"].max()) if len(t) else 1.25})
     return pd.DataFrame(rows)
 
 
 def position_data(unit_id: str, results: list[MeasureResult]) -> pd.DataFrame | None:
-    """A unit's adjusted ratio to the network on every measure (NaN where not reported); None if none reported."""
+    """A unit's adjusted ratio to the benchmark on every measure (NaN where not reported); None if none reported."""
     rows = []
     for r in results:
         row = r.table[r.table["unit_id"] == unit_id]
@@ -353,7 +354,7 @@ def draw_positions(frame: pd.DataFrame, items: list[tuple[str, pd.DataFrame]]) -
         + p9.geom_segment(p9.aes(x="bench", xend="bench", y="b_lo", yend="b_hi"), linetype="dashed", colour=BENCHMARK_INK)
         + p9.scale_x_log10(limits=(lo, hi))
         + p9.scale_y_continuous(breaks=list(rows), labels=measures, limits=(-0.6, len(measures) - 0.4))
-        + p9.labs(x="Adjusted ratio to the network (log scale)", y="")
+        + p9.labs(x="Adjusted ratio to the benchmark (log scale)", y="")
         + p9.theme_bw(base_size=9)
         + p9.theme(figure_size=(7.5, 0.9 + 0.42 * len(measures)), panel_grid_minor=p9.element_blank(), panel_grid_major_y=p9.element_blank())
     )

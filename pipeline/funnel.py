@@ -1,17 +1,34 @@
-"""Funnel plot control limits (Spiegelhalter 2005) for a measure's units.
+"""Funnel plot control limits (Spiegelhalter 2005) for a measure's units, from each unit's expected count.
 
-A funnel plot shows each unit's case-mix-adjusted value against its number of cases, with
-control limits around the benchmark that narrow as units get bigger. Rates use exact binomial
-limits with the interpolation of Spiegelhalter (2005, *Statistics in Medicine* 24:1185-1202,
-appendix A.1.1), so limits move smoothly with the number of cases instead of in steps; O/E ratios
-can use the Poisson version. Continuous measures (such as length of stay) use the normal
-approximation with the case-mix fit's coefficient of variation.
+A funnel plot shows each unit's indirectly standardised value, its published O/E times the
+benchmark R, against its precision, with control limits around R that narrow as the precision
+grows. Under "no difference between units" a unit's observed total O has mean E (its published
+expected total) and variance V (the sum over its patients of the variance each would have at the
+benchmark), so its O/E has mean 1 and variance 1 / rho with rho = E^2 / V, the precision on the
+x axis (Spiegelhalter 2005, *Statistics in Medicine* 24:1185-1202, section 2: a funnel is drawn
+against the precision of the null distribution; from memory). The limits follow each unit's own
+null distribution, so a unit of low-risk patients gets the wide limits its few expected events call
+for:
+
+* unit-level counts (observed and expected events per unit): O ~ Poisson(E), the paper's limits
+  for indirectly standardised ratios, and rho = E;
+* binary outcomes with patient risks p: V = sum p(1 - p); O is approximated by a binomial with the
+  same mean and variance at the network's average p (n' = rho (1 - p) / p cases; exactly the
+  paper's binomial limits when every patient has the same risk);
+* continuous outcomes (length of stay, cost): V = cv^2 x sum of the squared expected values, cv^2
+  being one patient's squared coefficient of variation under the case-mix fit, and O/E is
+  approximated by a gamma distribution with mean 1 and variance 1 / rho (our choice over the
+  paper's normal approximation, which is too narrow on the high side for small units; checked by
+  simulation in the tests).
+
+Discrete limits are interpolated as in the paper's appendix A.1.1, so they move smoothly.
 
 Units often differ by more than chance alone allows (over-dispersion). The optional widening
 follows Spiegelhalter (2005, *Quality and Safety in Health Care* 14:347-351): z-scores are
 winsorised at the 10th and 90th percentiles, phi is their mean square, and an additive
-between-unit variance tau^2 widens every limit. The funnel is a view of the raw O/E data beside
-the shrinkage fit; the groups on the site come from the shrinkage fit, not from the funnel.
+between-unit variance tau^2 (on the O/E scale) widens every limit, normal-approximation style.
+The funnel is a view of the raw O/E data beside the shrinkage fit; the groups on the site come
+from the shrinkage fit, not from the funnel.
 """
 
 from __future__ import annotations
@@ -32,7 +49,7 @@ def binomial_limit(theta0: float, n, p: float) -> np.ndarray:
     r = stats.binom.ppf(p, n, theta0)  # smallest r with P(R <= r) >= p
     upper, lower = stats.binom.cdf(r, n, theta0), stats.binom.cdf(r - 1, n, theta0)
     alpha = (upper - p) / np.where(upper > lower, upper - lower, 1.0)
-    return (r - alpha) / n
+    return np.maximum(r - alpha, 0.0) / n  # no fewer than 0 events: the lower limit stops at 0
 
 
 def poisson_limit(expected, p: float) -> np.ndarray:
@@ -41,7 +58,7 @@ def poisson_limit(expected, p: float) -> np.ndarray:
     r = stats.poisson.ppf(p, e)
     upper, lower = stats.poisson.cdf(r, e), stats.poisson.cdf(r - 1, e)
     alpha = (upper - p) / np.where(upper > lower, upper - lower, 1.0)
-    return (r - alpha) / e
+    return np.maximum(r - alpha, 0.0) / e
 
 
 def normal_limit(theta0: float, se, p: float) -> np.ndarray:
@@ -65,13 +82,13 @@ def overdispersion(y, theta0: float, se) -> tuple[float, float]:
 class Funnel:
     """A measure's funnel: per-unit points and limits, the curves to draw, and the dispersion found."""
 
-    points: pd.DataFrame  # unit_name, group, cases, value, and the four limits at each unit's size
-    curves: pd.DataFrame  # cases, then one column per limit, on a grid for drawing
+    points: pd.DataFrame  # unit_name, group, cases, expected, precision, value, and the four limits at each unit's precision
+    curves: pd.DataFrame  # precision, then one column per limit, on a grid for drawing
     benchmark: float
     phi: float
     tau2: float
     widened: bool
-    method: str  # "exact binomial", "normal approximation"
+    method: str  # "Poisson", "binomial", "gamma", or "normal approximation widened for over-dispersion"
 
     def scaled(self, k: float) -> tuple[pd.DataFrame, pd.DataFrame]:
         """(points, curves) with values and limits multiplied by ``k`` (100 for percentages)."""
@@ -80,52 +97,67 @@ class Funnel:
 
 
 LIMIT_COLUMNS = ("lower_998", "lower_95", "upper_95", "upper_998")
+LEVEL_OF = dict(zip(LIMIT_COLUMNS, (0.001, 0.025, 0.975, 0.999)))
+NULLS = ("poisson", "binomial", "gamma")  # the null distribution of O/E, by kind of measure
 
 
-def _limits(method: str, theta0: float, cases: np.ndarray, se_at, tau2: float) -> dict[str, np.ndarray]:
-    out = {}
-    for name, level in zip(LIMIT_COLUMNS, (0.001, 0.025, 0.975, 0.999)):
-        if method == "exact binomial" and tau2 == 0:
-            out[name] = binomial_limit(theta0, cases, level)
-        else:
-            out[name] = normal_limit(theta0, np.sqrt(se_at(cases) ** 2 + tau2), level)
-    return out
+def ratio_limit(null: str, rho, q: float, mean_risk: float = float("nan")) -> np.ndarray:
+    """The O/E ratio below which a unit of precision ``rho`` falls with probability ``q`` by chance alone.
+
+    ``mean_risk`` is the network's average patient risk (binomial null only).
+    """
+    rho = np.asarray(rho, float)
+    if null == "poisson":
+        return poisson_limit(rho, q)
+    if null == "binomial":
+        n = np.maximum(np.round(rho * (1 - mean_risk) / mean_risk), 1.0)
+        return binomial_limit(mean_risk, n, q) / mean_risk
+    if null == "gamma":
+        return stats.gamma.ppf(q, rho, scale=1.0 / rho)
+    raise ValueError(f"unknown null distribution {null!r}; allowed: {', '.join(NULLS)}")
 
 
-def funnel(table: pd.DataFrame, kind: str, network_rate: float, benchmark: float, cv2: float = float("nan"), widen: bool = False) -> Funnel | None:
+def _limits(null: str, rho: np.ndarray, mean_risk: float, tau2: float) -> dict[str, np.ndarray]:
+    if tau2 > 0:
+        return {name: np.maximum(normal_limit(1.0, np.sqrt(1.0 / rho + tau2), q), 0.0) for name, q in LEVEL_OF.items()}
+    return {name: ratio_limit(null, rho, q, mean_risk) for name, q in LEVEL_OF.items()}
+
+
+def funnel(table: pd.DataFrame, null: str, benchmark: float, widen: bool = False) -> Funnel | None:
     """The funnel for a measure's reported units; None when fewer than 3 units are reported.
 
-    ``table`` is the measure's results table (cases, observed, expected, status, group). Each
-    unit's value is its published O/E ratio times the benchmark rate (or mean): its indirectly
-    standardised rate, centred on the same benchmark as every other number (benchmark.py). ``cv2`` is the squared coefficient of variation of one patient's outcome (continuous
-    measures only).
+    ``table`` is the measure's results table: cases, observed, expected, status, group, and
+    ``variance``, the variance of each unit's observed total at the benchmark (for the Poisson
+    null it may be left out: V = E). Each unit's value is its published O/E ratio times the
+    benchmark rate (or mean): its indirectly standardised rate, centred on the same benchmark as
+    every other number (benchmark.py). Values and limits are on the benchmark's scale.
     """
+    if null not in NULLS:
+        raise ValueError(f"unknown null distribution {null!r}; allowed: {', '.join(NULLS)}")
     t = table[(table["status"] == "reported") & (table["expected"] > 0)]
+    if null != "poisson":
+        t = t[t["variance"] > 0]
     if len(t) < 3:
         return None
-    cases = t["cases"].to_numpy(float)
-    value = (t["observed"] / t["expected"]).to_numpy() * benchmark  # the published O/E on the benchmark's scale (benchmark.py)
-    if kind == "binary":
-        method = "exact binomial"
-        def se_at(n):
-            return np.sqrt(benchmark * (1 - benchmark) / np.asarray(n, float))
-    else:
-        if not np.isfinite(cv2) or cv2 <= 0:
-            return None
-        method = "normal approximation"
-        def se_at(n):
-            return benchmark * np.sqrt(cv2 / np.asarray(n, float))
-    phi, tau2 = overdispersion(value, benchmark, se_at(cases))
+    expected = t["expected"].to_numpy(float)
+    variance = expected if null == "poisson" else t["variance"].to_numpy(float)
+    rho = expected**2 / variance
+    mean_risk = float(1.0 - variance.sum() / expected.sum()) if null == "binomial" else float("nan")
+    oe = t["observed"].to_numpy(float) / expected  # the published O/E
+    phi, tau2 = overdispersion(oe, 1.0, 1.0 / np.sqrt(rho))
     used_tau2 = tau2 if widen else 0.0
-    grid = np.unique(np.round(np.geomspace(max(1.0, cases.min() * 0.8), cases.max() * 1.1, 200)))
-    points = pd.DataFrame({"unit_name": t["unit_name"].to_numpy(), "group": t["group"].to_numpy(), "cases": cases, "value": value})
-    for name, limit in _limits(method, benchmark, cases, se_at, used_tau2).items():
-        points[name] = limit
-    curves = pd.DataFrame({"cases": grid, **_limits(method, benchmark, grid, se_at, used_tau2)})
-    if kind == "binary":
-        curves[list(LIMIT_COLUMNS)] = curves[list(LIMIT_COLUMNS)].clip(lower=0.0)
-    if widen:
-        method = "normal approximation widened for over-dispersion"
+    if null == "binomial":  # whole numbers of effective cases, so the drawn curve is the points' own limits
+        per_case = mean_risk / (1 - mean_risk)
+        n = np.unique(np.round(np.geomspace(max(1.0, rho.min() / per_case * 0.8), rho.max() / per_case * 1.1, 400)))
+        grid = n * per_case
+    else:
+        grid = np.geomspace(rho.min() * 0.8, rho.max() * 1.1, 300)
+    points = pd.DataFrame({"unit_name": t["unit_name"].to_numpy(), "group": t["group"].to_numpy(), "cases": t["cases"].to_numpy(float),
+                           "expected": expected, "precision": rho, "value": oe * benchmark})
+    for name, limit in _limits(null, rho, mean_risk, used_tau2).items():
+        points[name] = limit * benchmark
+    curves = pd.DataFrame({"precision": grid, **{k: v * benchmark for k, v in _limits(null, grid, mean_risk, used_tau2).items()}})
+    method = "normal approximation widened for over-dispersion" if widen else null
     return Funnel(points=points, curves=curves, benchmark=benchmark, phi=phi, tau2=tau2, widened=widen, method=method)
 
 
@@ -139,16 +171,13 @@ def outside(f: Funnel) -> dict[str, int]:
     }
 
 
-def patient_cv2(family: str, dispersion: float) -> float:
-    """Squared coefficient of variation of one patient's outcome under a continuous case-mix fit."""
-    if family == "gamma":
-        return dispersion  # Var = phi * mean^2
-    if family == "lognormal":
-        return float(np.expm1(dispersion))  # Var = (exp(sigma^2) - 1) * mean^2
-    return float("nan")
+def null_of(result) -> str:
+    """The null distribution of a measure's O/E: Poisson for unit-level counts, binomial for patients' events, gamma for continuous outcomes."""
+    if result.measure.summary:
+        return "poisson"
+    return "binomial" if result.measure.type == "binary" else "gamma"
 
 
 def for_measure(result, widen: bool) -> Funnel | None:
     """The funnel of one measure's results (``MeasureResult``)."""
-    cv2 = patient_cv2(result.casemix.family, result.casemix.dispersion) if result.measure.type == "continuous" else float("nan")
-    return funnel(result.table, result.measure.type, result.network_rate, result.benchmark, cv2, widen)
+    return funnel(result.table, null_of(result), result.benchmark, widen)

@@ -235,7 +235,7 @@ def _group_sentence(m: MeasureResult, row: pd.Series) -> str:
     shown = int(m.table["status"].eq("reported").sum())
     text += f" Among the {shown} units shown, its rank is likely between {row['rank_lower']:.0f} and {row['rank_upper']:.0f} (1 is best)."
     if pd.notna(row["own_weight"]):
-        text += f" About {row['own_weight'] * 100:.0f}% of this estimate comes from the unit's own patients, and the rest from the network."
+        text += f" About {row['own_weight'] * 100:.0f}% of this estimate comes from the unit's own patients, and the rest from the other units."
     return text
 
 

@@ -53,7 +53,7 @@ RANK_DRAWS = 1000  # draws used for ranks
 class MeasureFits:
     """Everything fitted for one measure (what the cache keeps)."""
 
-    counts: pd.DataFrame  # per fitted unit code: cases, observed, expected
+    counts: pd.DataFrame  # per fitted unit code: cases, observed, expected, variance (of observed at the benchmark)
     casemix: CaseMixFit
     draws: UnitDraws
     tau: np.ndarray
@@ -124,6 +124,7 @@ def _summarise(config: CycleConfig, measure: MeasureSection, units: pd.DataFrame
             "cases": counts["cases"].to_numpy(),
             "observed": counts["observed"].to_numpy(),
             "expected": counts["expected"].to_numpy(),
+            "variance": counts["variance"].to_numpy(),  # of the observed total at the benchmark: the funnel's null (not published)
             "ratio_median": np.median(draws.ratio, axis=0),
             "ratio_lower": np.quantile(draws.ratio, lo_q, axis=0),
             "ratio_upper": np.quantile(draws.ratio, hi_q, axis=0),

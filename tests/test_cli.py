@@ -16,8 +16,6 @@ def test_config_problems_exit_2_before_any_data_are_read(tmp_path, capsys):
 
 
 def test_input_problems_exit_2(cycle_folder, capsys):
-    import pandas as pd
-
     from .conftest import small_cohort
 
     units, cohort = small_cohort()
@@ -40,8 +38,6 @@ def test_strict_stops_on_warnings(cycle_folder, capsys):
 
 
 def test_check_lists_problems_or_passes_without_fitting(cycle_folder, capsys):
-    import pandas as pd
-
     from .conftest import small_cohort
 
     assert main(["check", str(cycle_folder())]) == 0

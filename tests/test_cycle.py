@@ -4,7 +4,6 @@ a failed cycle leaves the last good site untouched."""
 from __future__ import annotations
 
 import dataclasses
-import filecmp
 import re
 import shutil
 from html.parser import HTMLParser

@@ -126,16 +126,40 @@ def test_overdispersion_by_the_published_recipe():
 
 
 def test_funnel_points_and_widening():
+    # Every patient at 10% risk: V = 0.09 n, so a unit's limits are the binomial(n, 0.1) ones above.
     t = pd.DataFrame({
         "unit_name": list("ABCDEF"), "group": ["typical"] * 6, "status": ["reported"] * 5 + ["too_few"],
         "cases": [100, 200, 400, 800, 50, 5], "observed": [10, 30, 30, 120, 2, 1], "expected": [10, 20, 40, 80, 5, 0.5],
     })
-    f = funnel.funnel(t, "binary", network_rate=0.1, benchmark=0.1)
+    t["variance"] = t["expected"] * 0.9
+    f = funnel.funnel(t, "binomial", benchmark=0.1)
     assert len(f.points) == 5  # the unit with too few cases is not shown
     np.testing.assert_allclose(f.points["value"], [0.1, 0.15, 0.075, 0.15, 0.04])
+    np.testing.assert_allclose(f.points["precision"], t["expected"][:5] / 0.9)
     assert f.points.loc[0, "upper_95"] == pytest.approx(0.157719, abs=5e-7)  # 100 cases at 10%, as above
+    assert f.points.loc[0, "lower_998"] == pytest.approx(0.014179, abs=5e-7)
+    # 50 cases at 10%: P(0 events) = 0.005 > 0.001, so the interpolation would go below 0; it stops at 0.
+    assert f.points.loc[4, "lower_998"] == 0.0 and (f.points[list(funnel.LIMIT_COLUMNS)] >= 0).all().all()
     counts = funnel.outside(f)
     assert counts["units"] == 5 and counts["998"] <= counts["95"]
-    wide = funnel.funnel(t, "binary", network_rate=0.1, benchmark=0.1, widen=True)
+    wide = funnel.funnel(t, "binomial", benchmark=0.1, widen=True)
     assert wide.tau2 > 0 and (wide.points["upper_998"] > f.points["upper_998"] - 1e-3).all()
     assert funnel.outside(wide)["95"] <= counts["95"]
+
+
+def test_funnel_limits_follow_expected_events_not_cases():
+    # Two units of 400 patients: one of low-risk patients (E = 8), one of high-risk patients (E = 80).
+    # The low-risk unit's O/E is far less precise, so its limits must be wider (the defect fixed:
+    # limits drawn from binomial(cases, network rate) gave both units the same limits).
+    t = pd.DataFrame({"unit_name": list("ABC"), "group": ["typical"] * 3, "status": ["reported"] * 3,
+                      "cases": [400, 400, 400], "observed": [8, 80, 40], "expected": [8.0, 80.0, 40.0]})
+    t["variance"] = [8 * 0.98, 80 * 0.8, 40 * 0.9]
+    f = funnel.funnel(t, "binomial", benchmark=0.1)
+    low, high = f.points.iloc[0], f.points.iloc[1]
+    assert low["upper_95"] - low["lower_95"] > 2.5 * (high["upper_95"] - high["lower_95"])
+    # Unit-level counts: Poisson limits at each unit's E, exactly the Poisson limits above.
+    p = funnel.funnel(t.drop(columns="variance"), "poisson", benchmark=0.1)
+    np.testing.assert_allclose(p.points["upper_95"], funnel.poisson_limit(t["expected"], 0.975) * 0.1)
+    np.testing.assert_allclose(p.points["precision"], t["expected"])
+    with pytest.raises(ValueError, match="allowed: poisson, binomial, gamma"):
+        funnel.funnel(t, "binary", benchmark=0.1)
