@@ -219,6 +219,12 @@ class MeasureSection:
         "network", doc="Risk above which a patient counts as predicted to have the outcome (sensitivity, specificity, "
         "PPV); \"network\" = the network rate.", check=_threshold,
     )
+    pull_towards: tuple = option(
+        (), doc="What a small unit is pulled towards: unit-level predictors of the shrinkage model's prior mean. Built in: "
+        "log_cases (unit size), case_mix (the unit's average patient risk), kind (from the units table); or any numeric "
+        "column of the units table. Empty = every unit is pulled towards one typical unit. Verdicts still compare "
+        "with the benchmark; the methods page shows the groups with and without these predictors.",
+    )
 
 
 # Built-in outcome types: a data table, one row per type; the first family is the default.

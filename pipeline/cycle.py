@@ -37,7 +37,8 @@ from .pages import render_pages, unit_slugs
 from .render import Renderer, choose_renderer, render_site
 from .results import DICTIONARY, MeasureFits, MeasureResult, PriorAlternative, public_table, results_json, summarise_measure
 from .sampling import K_HAT_MAX, SENSITIVITY_SCALES, Sampler, reweight_tau, with_tau_scale
-from .shrinkage import Cells, ShrinkageSpec, thin, unit_draws
+from .shrinkage import PREDICTOR_PRIOR, Cells, ShrinkageSpec, thin, unit_draws
+from .targets import design as target_design
 from .validation import validate
 
 MARKER = "fairgauge-manifest.json"  # every site's provenance; only folders holding it are ever replaced
@@ -117,8 +118,9 @@ def fit_measures(config: CycleConfig, cohort: Cohort, cache: Cache, reporter: Re
     for i, measure in enumerate(config.measures):
         seed = config.sampler.seed + i
         settings = (measure.type, measure.outcome, measure.casemix, family_of(measure), measure.missing, measure.expected_column,
-                    measure.summary, measure.social_risk, measure.risk_threshold, config.reporting.benchmark)
-        fit_key = key("fit", code, cohort.sha256, cohort.unit_column, fitted_units, settings, config.sampler, config.validation, seed, ShrinkageSpec())
+                    measure.summary, measure.social_risk, measure.risk_threshold, config.reporting.benchmark, tuple(measure.pull_towards))
+        fit_key = key("fit", code, cohort.sha256, cohort.unit_column, fitted_units, settings, config.sampler, config.validation, seed, ShrinkageSpec(),
+                      PREDICTOR_PRIOR)
         fits = cache.load(fit_key)
         if fits is None:
             fits = fit_measure(config, cohort, measure, codes, fitted_units, samplers, seed, reporter)
@@ -166,11 +168,19 @@ def fit_measure(
         counts = pd.DataFrame({"code": used_codes, "y": y, "e": expected, "v": null_variance(measure, casemix, y, expected)}).groupby("code").agg(
             cases=("y", "size"), observed=("y", "sum"), expected=("e", "sum"), variance=("v", "sum")
         ).reindex(range(n_units))
-    if likelihood not in samplers:
-        samplers[likelihood] = Sampler(ShrinkageSpec(likelihood=likelihood), config.sampler, engine=config.sampler.engine)
-    sampler = samplers[likelihood]
+    design = None
+    if measure.pull_towards:
+        present = counts["cases"].fillna(0).to_numpy() > 0
+        mean_risk = (None if measure.summary else
+                     pd.Series(cells_offset_mean(used_codes, offset)).reindex(range(n_units)).to_numpy(float))
+        design = target_design(tuple(measure.pull_towards), fitted_units, present, counts["cases"].fillna(0).to_numpy(float),
+                               mean_risk, cohort.units["kind"], cohort.attributes)
+    plain_cells = cells
+    cells = cells.with_predictors(design.w if design is not None else None)
+    sampler = _sampler(samplers, likelihood, design, config)
     s = config.sampler
-    reporter.stage(f"{measure.key}: shrinkage fit ({likelihood}) on {len(cells.n):,} cells ({s.chains} chains x {s.draws} draws, {s.engine})")
+    terms = f" with {len(design.columns)} predictor term(s) of what units are pulled towards" if design is not None else ""
+    reporter.stage(f"{measure.key}: shrinkage fit ({likelihood}{terms}) on {len(cells.n):,} cells ({s.chains} chains x {s.draws} draws, {s.engine})")
     draws, diagnostics = sampler.run_checked(cells, seed, measure.key, reporter.warn)
     reporter.stage(
         f"{measure.key}: sampled in {diagnostics.seconds:.1f} s; R-hat max {diagnostics.rhat_max:.3f}, "
@@ -183,7 +193,28 @@ def fit_measure(
         reporter.stage(f"{measure.key}: equity sensitivity: refitting without {', '.join(measure.social_risk)}")
         without = fit_measure(config, cohort, measure, codes, fitted_units, samplers, seed, reporter, casemix_formula=reduced)
     ratio_draws = unit_draws(cells, draws, likelihood=likelihood, scale=scale)
-    return MeasureFits(counts, casemix, ratio_draws, draws["tau"], diagnostics, validation, without, sensitivity)
+    plain = None
+    if design is not None and casemix_formula is None:
+        reporter.stage(f"{measure.key}: sensitivity: refitting with every unit pulled towards one typical unit")
+        plain_draws, plain_diagnostics = _sampler(samplers, likelihood, None, config).run_checked(plain_cells, seed, measure.key, reporter.warn)
+        plain = MeasureFits(counts, casemix, unit_draws(plain_cells, plain_draws, likelihood=likelihood, scale=scale), plain_draws["tau"],
+                            plain_diagnostics, validation)
+    return MeasureFits(counts, casemix, ratio_draws, draws["tau"], diagnostics, validation, without, sensitivity,
+                       design=design, beta=draws.get("beta"), without_predictors=plain)
+
+
+def _sampler(samplers: dict, likelihood: str, design, config: CycleConfig) -> Sampler:
+    """One sampler (one compiled model) per likelihood and number of predictor terms."""
+    p = 0 if design is None else len(design.columns)
+    name = likelihood if p == 0 else f"{likelihood}-predictors{p}"
+    if name not in samplers:
+        samplers[name] = Sampler(ShrinkageSpec(likelihood=likelihood, predictors=p), config.sampler, engine=config.sampler.engine)
+    return samplers[name]
+
+
+def cells_offset_mean(codes: np.ndarray, offset: np.ndarray) -> dict[int, float]:
+    """Each unit's mean offset: its patients' average case-mix risk on the link scale (the benchmark's intercept included)."""
+    return pd.Series(offset).groupby(codes).mean().to_dict()
 
 
 
@@ -198,7 +229,7 @@ def prior_sensitivity(config, sampler: Sampler, samplers: dict, cells: Cells, dr
             out.append(PriorAlternative(scale * base, k_hat, "reweighted", log_weights, None))
             continue
         reporter.stage(f"{key}: prior sensitivity: importance weights unreliable (k-hat {k_hat:.2f}); refitting with tau ~ HalfNormal({scale * base:g})")
-        name = f"{likelihood}-tau{scale}"
+        name = f"{likelihood}-predictors{sampler.spec.predictors}-tau{scale}"
         if name not in samplers:
             samplers[name] = Sampler(with_tau_scale(sampler.spec, scale * base), config.sampler, engine=config.sampler.engine)
         refit, _ = samplers[name].run_checked(cells, seed, key, reporter.warn)

@@ -19,6 +19,7 @@ import pandas as pd
 
 from .config import CycleConfig
 from .errors import InputError, Problem
+from .targets import check as check_targets
 
 UNIT_TABLE_COLUMNS = ("id", "name", "kind")
 # Column names that suggest direct identifiers (common practice, no source: the usual
@@ -42,6 +43,7 @@ class Cohort:
     sha256: dict[str, str]  # file name -> SHA-256 of its bytes, for provenance
     warnings: tuple[str, ...]
     summaries: dict[str, pd.DataFrame] = None  # measure key -> unit-level input (index unit id; cases, observed, expected)
+    attributes: pd.DataFrame = None  # the unit table's other columns (index unit id), for pull_towards (targets.py)
 
 
 def _sha256(path: Path) -> str:
@@ -288,11 +290,25 @@ def load_cohort(config: CycleConfig) -> Cohort:
             path = (config.source.parent / m.summary).resolve()
             summaries[m.key] = load_summary(path, m.outcome, unit_col, units.index, problems)
             hashes[path.name] = _sha256(path) if path.is_file() else ""
+    attributes = units.drop(columns=list(UNIT_TABLE_COLUMNS[1:]))
+    for i, m in enumerate(config.measures):
+        if not m.pull_towards:
+            continue
+        if m.summary:
+            cases = summaries[m.key]["cases"] if summaries.get(m.key) is not None else None
+            present = cases.index if cases is not None else units.index[:0]
+        else:
+            cases = rows[unit_col].value_counts()
+            present = pd.Index([u for u in units.index if u in cases.index])
+        for text in check_targets(tuple(m.pull_towards), m.key, attributes, units["kind"].astype("string"), present,
+                                  has_patients=not m.summary, has_risk=m.casemix.strip() != "1" or bool(m.expected_column), cases=cases):
+            problems.append(Problem(f"measures[{i}].pull_towards ({u_where})", text))
     if problems:
         raise InputError(problems)
     return Cohort(
         rows=rows[keep].reset_index(drop=True),
         units=units[["name", "kind"]].astype("string"),
+        attributes=attributes,
         unit_column=unit_col,
         sha256=hashes,
         warnings=tuple(warnings),

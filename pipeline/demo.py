@@ -1,7 +1,10 @@
 """An invented health network for demonstrations and tests.
 
 Everything here is made up: the network, its unit names, patients and outcomes. The true
-unit effects are kept (``truth.csv``) so tests can check that the shrinkage fit recovers them.
+unit effects are kept (``truth.csv``) so tests can check that the shrinkage fit recovers them:
+``true_predicted`` is each unit's expected total given its true quality, so its true ratio to the
+benchmark is ``true_predicted`` over the published expected total (benchmark.py);
+``true_ratio`` is the same against the generator's own intercept.
 Sicker-than-average units are drawn to be somewhat worse on outcomes too, because real
 networks are like that and the case-mix fit must not be fooled by it.
 """
@@ -136,7 +139,8 @@ def invent_network(seed: int = 7, n_units: int = 44, smallest: int = 10, largest
         sums = pd.DataFrame({"u": unit_of, "p": risk, "e": risk_without_unit}).groupby("u").sum()
         truth_rows.append(
             pd.DataFrame(
-                {"measure": key, "unit_id": unit_ids, "true_effect": effect, "true_ratio": (sums["p"] / sums["e"]).to_numpy()}
+                {"measure": key, "unit_id": unit_ids, "true_effect": effect, "true_ratio": (sums["p"] / sums["e"]).to_numpy(),
+                 "true_predicted": sums["p"].to_numpy()}
             )
         )
     # Length of stay: continuous, Gamma-distributed around a case-mix mean and a unit effect.
@@ -149,21 +153,26 @@ def invent_network(seed: int = 7, n_units: int = 44, smallest: int = 10, largest
     ).to_numpy()
     mean = np.exp(t["intercept"] + linear + effect[unit_of])
     cohort["los_days"] = np.maximum(np.round(rng.gamma(t["shape"], mean / t["shape"]), 1), 0.1)
-    truth_rows.append(pd.DataFrame({"measure": "stay", "unit_id": unit_ids, "true_effect": effect, "true_ratio": np.exp(effect)}))
+    truth_rows.append(pd.DataFrame({"measure": "stay", "unit_id": unit_ids, "true_effect": effect, "true_ratio": np.exp(effect),
+                                    "true_predicted": pd.Series(mean).groupby(unit_of).sum().reindex(range(n_units)).to_numpy()}))
     # Pressure injury: only unit totals leave the units, with expected events from an (invented) external tool.
     t = _PRESSURE
     raw = rng.normal(0.0, t["tau"], n_units)
     effect = raw - raw.mean()
     base = expit(t["intercept"] + np.array(t["age"])[age_band])
     events = rng.random(n) < expit(t["intercept"] + np.array(t["age"])[age_band] + effect[unit_of])
-    sums = pd.DataFrame({"u": unit_of, "e": base, "y": events}).groupby("u").sum()
+    sums = pd.DataFrame({"u": unit_of, "e": base, "y": events, "p": expit(t["intercept"] + np.array(t["age"])[age_band] + effect[unit_of])}).groupby("u").sum()
     summary = pd.DataFrame({"unit_id": unit_ids, "cases": sizes, "pressure_injury": sums["y"].astype(int).to_numpy(),
                             "expected": sums["e"].round(2).to_numpy()})
-    truth_rows.append(pd.DataFrame({"measure": "pressure", "unit_id": unit_ids, "true_effect": effect, "true_ratio": np.exp(effect)}))
+    truth_rows.append(pd.DataFrame({"measure": "pressure", "unit_id": unit_ids, "true_effect": effect, "true_ratio": np.exp(effect),
+                                    "true_predicted": sums["p"].to_numpy()}))
     gaps = rng.random(n) < MISSING_DEPRIVATION
     cohort["deprivation_fifth"] = cohort["deprivation_fifth"].astype("Int64").mask(gaps)
     return units, cohort, pd.concat(truth_rows, ignore_index=True), summary
 
+
+PULL_PATIENTS = 'pull_towards = ["log_cases", "case_mix"]\n'
+PULL_UNIT_LEVEL = 'pull_towards = ["log_cases"]\n'  # unit totals carry no patient risks
 
 CONFIG_TEMPLATE = """# Demonstration cycle of an invented network. Every name and number in it is made up.
 [cycle]
@@ -216,5 +225,9 @@ def write_demo(folder: Path, site: Path, seed: int = 7, n_units: int = 44, large
     text += f'type = "continuous"\nfamily = "gamma"\nunit_label = "days"\nbetter = "lower"\ncasemix = "{CASEMIX} + deprivation_fifth"\nmissing = "impute"\n'
     text += "\n[[measures]]\n" + "".join(f'{k} = "{v}"\n' for k, v in PRESSURE_MEASURE.items())
     text += 'type = "binary"\nbetter = "lower"\nsummary = "pressure_by_unit.csv"\n'
+    # What small units are pulled towards: units of similar size and (with patient rows) similar
+    # patients' risk; chosen on benchmarks/coverage_target.py and this network (DEVELOPERS.md).
+    parts = text.split("\n[[measures]]\n")
+    text = "\n[[measures]]\n".join([parts[0], *(p + (PULL_UNIT_LEVEL if "summary = " in p else PULL_PATIENTS) for p in parts[1:])])
     files.config.write_text(text, encoding="utf-8")
     return files

@@ -8,6 +8,7 @@ which makes it literal in both Quarto (pandoc) and the built-in renderer.
 from __future__ import annotations
 
 import hashlib
+import math
 import json
 import re
 from dataclasses import dataclass, field
@@ -199,6 +200,7 @@ class MeasureView:
     coefficients: list[dict[str, str]]
     sensitivity: list[dict[str, str]] = field(default_factory=list)
     rows: list[dict] = field(default_factory=list)  # unit name, href, Cell
+    targets: dict | None = None  # unit-level predictors of what units are pulled towards: words, terms, groups, changes
 
 
 @dataclass(frozen=True)
@@ -222,7 +224,39 @@ def _sentence(name: str, m: MeasureResult, row: pd.Series, level: str, min_cases
             "This unit's numbers are withheld so that a smaller unit's numbers cannot be worked out "
             "by subtracting the published numbers from the network totals."
         )
-    return _estimate_sentence(name, m, row, level) + " " + _group_sentence(m, row)
+    return _estimate_sentence(name, m, row, level) + " " + _group_sentence(m, row) + _target_sentence(m, row)
+
+
+# Plain names of the built-in predictors of what small units are pulled towards (targets.py).
+TARGET_WORDS = {"log_cases": "size (number of cases)", "case_mix": "how ill its patients were on average"}
+TARGET_LIKE = {"log_cases": "size", "case_mix": "how ill their patients are", "kind": "kind"}
+
+
+def target_words(term: str) -> str:
+    """A predictor term in plain words, for tables."""
+    if term in TARGET_WORDS:
+        return TARGET_WORDS[term]
+    if term.startswith("kind: "):
+        return f"being a {term.removeprefix('kind: ')}"
+    return term
+
+
+def like_words(terms: list[str]) -> str:
+    """'size and how ill their patients are': what makes units alike, in plain words."""
+    words = list(dict.fromkeys(TARGET_LIKE.get(t.split(":")[0], f"their {t}") for t in terms))
+    return words[0] if len(words) == 1 else ", ".join(words[:-1]) + " and " + words[-1]
+
+
+def _target_sentence(m: MeasureResult, row: pd.Series) -> str:
+    """One sentence for a unit whose group depends on what small units are pulled towards."""
+    if m.targets is None:
+        return ""
+    changed = m.targets["changed"]
+    hit = changed[changed["unit_id"] == row["unit_id"]]
+    if hit.empty:
+        return ""
+    return (f" Its group depends on a choice in the model: if every unit were pulled towards one typical unit, "
+            f"it would be {GROUPS[hit['group_without'].iloc[0]].lower()}.")
 
 
 def _group_sentence(m: MeasureResult, row: pd.Series) -> str:
@@ -376,6 +410,7 @@ def views(
                  "count": str(len(alt["changed"]))}
                 for alt in m.sensitivity
             ],
+            targets=_targets_view(m),
         )
         ordered = m.table.sort_values(["status", "rsr_median"], key=lambda s: s.map({"reported": 0, "too_few": 1, "withheld": 2, "no_cases": 3}) if s.name == "status" else s)
         for _, row in ordered.iterrows():
@@ -389,6 +424,20 @@ def views(
         for uid, u in units.iterrows()
     ]
     return measures, unit_views
+
+
+def _targets_view(m: MeasureResult) -> dict | None:
+    """What the methods and measure pages say about the predictors of what units are pulled towards."""
+    t = m.targets
+    if t is None:
+        return None
+    terms = [{"term": md(target_words(x["term"])), "code": code(x["term"]),
+              "sd": f"{x['sd']:.2f} (cases x {math.exp(x['sd']):.1f})" if x["term"] == "log_cases" else f"{x['sd']:.3g}", "effect": f"{num(x['effect_median'])} ({num(x['effect_lower'])} to {num(x['effect_upper'])})"}
+             for x in t["terms"]]
+    changed = [{"name": md(c.unit_name), "with": GROUPS[c.group_with].lower(), "without": GROUPS[c.group_without].lower()}
+               for c in t["changed"].itertuples()]
+    groups = {g: f"{n['with']} / {n['without']}" for g, n in t["groups"].items()}
+    return {"words": md(like_words([x["term"] for x in t["terms"]])), "terms": terms, "changed": changed, "groups": groups, "count": len(changed)}
 
 
 def environment() -> jinja2.Environment:

@@ -8,7 +8,7 @@ from __future__ import annotations
 
 import json
 import math
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 
 import numpy as np
 import pandas as pd
@@ -61,6 +61,9 @@ class MeasureFits:
     validation: Validation | None  # None for unit-level input
     without_social_risk: "MeasureFits | None" = None  # the equity sensitivity refit
     sensitivity: tuple = ()  # PriorAlternative per alternative between-unit prior
+    design: object = None  # targets.TargetDesign of the unit-level predictors (None: one common target)
+    beta: np.ndarray | None = None  # (draws, terms) their coefficients per standard deviation, on the link scale
+    without_predictors: "MeasureFits | None" = None  # the same fit with one common target (sensitivity)
 
 
 @dataclass(frozen=True)
@@ -89,6 +92,7 @@ class MeasureResult:
     equity: pd.DataFrame | None = None  # reported units: position with and without the social-risk factors
     sensitivity: tuple = ()  # per alternative prior: {"scale", "k_hat", "method", "changed": [(unit, group now, group then)]}
     typical: float = float("nan")  # adjusted value of the typical unit (mu), what small units are pulled towards
+    targets: dict | None = None  # with unit-level predictors of the target: terms, groups with and without, units that change
 
 
 def summarise_measure(
@@ -96,6 +100,8 @@ def summarise_measure(
 ) -> MeasureResult:
     """Posterior summaries per unit for one measure (``fits.counts`` in the order of ``unit_ids``)."""
     result = _summarise(config, measure, units, unit_ids, fits)
+    if fits.without_predictors is not None:
+        result = replace(result, targets=_targets(config, measure, units, unit_ids, fits, result))
     if fits.without_social_risk is None:
         return result
     other = _summarise(config, measure, units, unit_ids, fits.without_social_risk).table.set_index("unit_id")
@@ -106,9 +112,30 @@ def summarise_measure(
         "position_without": other.loc[mine.index, "position"], "rsr_without": other.loc[mine.index, "rsr_median"],
     })
     equity["changed"] = equity["position_with"] != equity["position_without"]
-    from dataclasses import replace
-
     return replace(result, equity=equity.reset_index())
+
+
+def _targets(config: CycleConfig, measure: MeasureSection, units: pd.DataFrame, unit_ids: list[str], fits: MeasureFits,
+             result: MeasureResult) -> dict:
+    """The unit-level predictors of what units are pulled towards: their effects, and the groups with and without them.
+
+    Each term's effect is exp(beta) per standard deviation of the predictor: the factor by which the
+    odds (or the mean) of the unit a small unit is pulled towards changes (median and interval).
+    """
+    level = config.reporting.interval
+    lo_q, hi_q = (1 - level) / 2, 1 - (1 - level) / 2
+    design = fits.design
+    effect = np.exp(fits.beta)
+    terms = [{"term": term, "mean": float(design.centre[k]), "sd": float(design.spread[k]),
+              "effect_median": float(np.median(effect[:, k])), "effect_lower": float(np.quantile(effect[:, k], lo_q)),
+              "effect_upper": float(np.quantile(effect[:, k], hi_q))} for k, term in enumerate(design.columns)]
+    other = _summarise(config, measure, units, unit_ids, fits.without_predictors).table.set_index("unit_id")
+    mine = result.table[result.table["status"] == "reported"].set_index("unit_id")
+    compare = pd.DataFrame({"unit_name": mine["unit_name"], "group_with": mine["group"], "group_without": other.loc[mine.index, "group"],
+                            "rsr_with": mine["rsr_median"], "rsr_without": other.loc[mine.index, "rsr_median"]})
+    changed = compare[compare["group_with"] != compare["group_without"]].reset_index()
+    count = {g: {"with": int((compare["group_with"] == g).sum()), "without": int((compare["group_without"] == g).sum())} for g in GROUPS}
+    return {"terms": terms, "groups": count, "changed": changed, "tau_without": float(np.median(fits.without_predictors.tau))}
 
 
 def _summarise(config: CycleConfig, measure: MeasureSection, units: pd.DataFrame, unit_ids: list[str], fits: MeasureFits) -> MeasureResult:
@@ -265,6 +292,16 @@ def public_table(results: list[MeasureResult]) -> pd.DataFrame:
     return table
 
 
+def _pulled_towards(r: MeasureResult) -> dict:
+    """What small units are pulled towards, for results.json: one typical unit, or the predictors and their effects."""
+    if r.targets is None:
+        return {"predictors": [], "typical_unit": r.typical}
+    t = r.targets
+    return {"predictors": t["terms"], "groups": t["groups"],
+            "units_whose_group_depends_on_the_predictors": [
+                {"unit_id": c.unit_id, "with": c.group_with, "without": c.group_without} for c in t["changed"].itertuples()]}
+
+
 def _clean(value):
     if isinstance(value, float) and math.isnan(value):
         return None
@@ -299,6 +336,7 @@ def results_json(table: pd.DataFrame, results: list[MeasureResult], about: dict)
             "excluded_patients": (r.casemix.exclusions or {}).get("dropped_rows", 0),
             "imputed_patients": (r.casemix.exclusions or {}).get("imputed_rows", 0),
             "between_unit_sd": dict(zip(["median", "lower", "upper"], r.tau)),
+            "pulled_towards": _pulled_towards(r),
             "diagnostics": {
                 "rhat_max": r.diagnostics.rhat_max,
                 "ess_bulk_min": r.diagnostics.ess_bulk_min,

@@ -82,7 +82,7 @@ class Sampler:
             if self.engine == "nutpie":
                 import nutpie
 
-                shape = (cells.n_units, tuple(sorted(data)))
+                shape = (cells.n_units, tuple(sorted(data)), self.spec.predictors)
                 if shape not in self._compiled:  # compile once per cycle and kind of data
                     self._compiled[shape] = nutpie.compile_pymc_model(build_model(self.spec, cells, data))
                 compiled = self._compiled[shape].with_data(**data)
@@ -117,7 +117,7 @@ class Sampler:
             bfmi_min=float(np.min(bfmi)),
             retried=settings is not None,
         )
-        draws = posterior_draws(self.spec, idata.posterior, cells.n_units, data.get("centred"))
+        draws = posterior_draws(self.spec, idata.posterior, cells.n_units, data.get("centred"), data.get("w"))
         return {**draws, "curves": curves}, diagnostics
 
     def run_checked(self, cells: Cells, seed: int, measure: str, warn=lambda text: None):
@@ -132,8 +132,10 @@ class Sampler:
         return draws, diagnostics
 
 
-def posterior_draws(spec: ShrinkageSpec, post, n_units: int, centred: np.ndarray | None) -> dict[str, np.ndarray]:
-    """Flatten chains: mu (draws,), tau (draws,), u (draws, units) with intercept = mu + u."""
+def posterior_draws(spec: ShrinkageSpec, post, n_units: int, centred: np.ndarray | None, w: np.ndarray | None = None) -> dict[str, np.ndarray]:
+    """Flatten chains: mu (draws,), tau (draws,), u (draws, units) with intercept = mu + u; with unit-level
+    predictors also beta (draws, predictors) and pull (draws, units) = w . beta, so that a unit's prior
+    mean is mu + pull and u - pull is its departure from units like it."""
     if spec.pooling == "beta":
         alpha, beta = post["alpha"].values.reshape(-1), post["beta"].values.reshape(-1)
         return {"alpha": alpha, "beta": beta, "mu": np.log(alpha / beta), "tau": np.full(len(alpha), np.nan), "u": np.zeros((len(alpha), n_units))}
@@ -141,6 +143,11 @@ def posterior_draws(spec: ShrinkageSpec, post, n_units: int, centred: np.ndarray
         mu = post["mu"].values.reshape(-1)
         tau = post["tau"].values.reshape(-1)
         v = post["v"].values.reshape(-1, n_units)
+        if spec.predictors:
+            beta = post["beta"].values.reshape(-1, spec.predictors)
+            pull = beta @ np.asarray(w, float).T
+            u = np.where(centred.astype(bool), v - mu[:, None], pull + tau[:, None] * v)
+            return {"mu": mu, "tau": tau, "u": u, "beta": beta, "pull": pull}
         u = np.where(centred.astype(bool), v - mu[:, None], tau[:, None] * v)
     else:  # no common mean: the reference intercept is 0 and each unit's own intercept is u
         u = post["a"].values.reshape(-1, n_units)
@@ -155,7 +162,8 @@ K_HAT_MAX = 0.7  # above this, importance weights are unreliable and the fit is 
 
 def with_tau_scale(spec: ShrinkageSpec, scale: float) -> ShrinkageSpec:
     """The same spec with tau ~ HalfNormal(scale)."""
-    return ShrinkageSpec(priors={**spec.priors, "tau": ("HalfNormal", {"sigma": scale})}, pooling=spec.pooling, likelihood=spec.likelihood)
+    return ShrinkageSpec(priors={**spec.priors, "tau": ("HalfNormal", {"sigma": scale})}, pooling=spec.pooling, likelihood=spec.likelihood,
+                         predictors=spec.predictors)
 
 
 def reweight_tau(tau: np.ndarray, scale: float, base: float = 1.0) -> tuple[np.ndarray, float]:

@@ -9,8 +9,11 @@ Spec, build, run (three steps, each testable alone):
 
 Model (binary measure; patient j in unit i, case-mix linear risk x_ij from the case-mix fit)::
 
-    logit P(y_ij = 1) = c + mu + u_i + x_ij,  u_i = tau * z_i,  z_i ~ Normal(0, 1)
-    mu ~ Normal(0, 1),  tau ~ HalfNormal(1)
+    logit P(y_ij = 1) = c + mu + u_i + x_ij,  u_i = w_i . beta + tau * z_i,  z_i ~ Normal(0, 1)
+    mu ~ Normal(0, 1),  tau ~ HalfNormal(1),  beta_k ~ Normal(0, 1)
+
+w_i are the unit's standardised predictors of what it is pulled towards (targets.py; none by
+default, and then u_i = tau * z_i): the prior mean of a unit's intercept is mu + w_i . beta.
 
 Patients of one unit with the same linear risk are pooled into one binomial cell, which
 changes no likelihood value (the binomial is the sum of its Bernoullis).
@@ -50,6 +53,9 @@ PRIORS: dict[str, tuple[str, dict[str, float]]] = {
     "mu": ("Normal", {"mu": 0.0, "sigma": 1.0}),
     "tau": ("HalfNormal", {"sigma": 1.0}),
 }
+# Coefficients of the unit-level predictors (targets.py), per standard deviation of each
+# predictor on the link scale; only in models with predictors.
+PREDICTOR_PRIOR: tuple[str, dict[str, float]] = ("Normal", {"mu": 0.0, "sigma": 1.0})
 # Likelihoods: name -> (what it models, extra priors for its own parameters).
 LIKELIHOODS: dict[str, tuple[str, dict[str, tuple[str, dict[str, float]]]]] = {
     "binomial": ("binary outcomes per patient, pooled into (unit, risk) cells", {}),
@@ -76,6 +82,7 @@ class ShrinkageSpec:
     priors: dict[str, tuple[str, dict[str, float]]] = field(default_factory=lambda: dict(PRIORS))
     pooling: str = "partial"
     likelihood: str = "binomial"
+    predictors: int = 0  # columns of unit-level predictors of the prior mean (targets.py); partial pooling only
 
     def __post_init__(self) -> None:
         if self.pooling not in POOLING:
@@ -84,12 +91,16 @@ class ShrinkageSpec:
             raise ValueError(f"likelihood must be one of {', '.join(LIKELIHOODS)}; got {self.likelihood!r}")
         for name, prior in LIKELIHOODS[self.likelihood][1].items():
             self.priors.setdefault(name, prior)
+        if self.predictors:
+            if self.pooling != "partial":
+                raise ValueError("unit-level predictors need partial pooling")
+            self.priors.setdefault("beta", PREDICTOR_PRIOR)
 
     @property
     def sampled(self) -> list[str]:
         """Names of the sampled parameters (the ones diagnostics are computed on)."""
         own = list(LIKELIHOODS[self.likelihood][1])
-        return {"partial": ["mu", "tau", "v"], "none": ["a"], "beta": ["phi", "kappa"]}[self.pooling] + own
+        return {"partial": ["mu", "tau", "v"], "none": ["a"], "beta": ["phi", "kappa"]}[self.pooling] + own + (["beta"] if self.predictors else [])
 
     def describe(self) -> list[str]:
         """One line per prior, in the notation of the methods page."""
@@ -106,6 +117,12 @@ class Cells:
     r: np.ndarray  # events (binomial, poisson); gamma: sum y exp(-offset); lognormal: sum of log residuals
     n_units: int
     q: np.ndarray | None = None  # gamma: sum of (log y - offset); lognormal: sum of squared log residuals
+    w: np.ndarray | None = None  # (n_units, predictors): standardised unit-level predictors (targets.py), or None
+
+    def with_predictors(self, w: np.ndarray | None) -> "Cells":
+        from dataclasses import replace
+
+        return replace(self, w=None if w is None or w.shape[1] == 0 else np.asarray(w, float))
 
     @classmethod
     def from_patients(cls, unit_codes: np.ndarray, offset: np.ndarray, y: np.ndarray, n_units: int) -> "Cells":
@@ -143,6 +160,8 @@ class Cells:
         out = {"unit": self.unit, "offset": self.offset, "n": self.n, "r": self.r}
         if self.q is not None:
             out["q"] = self.q
+        if self.w is not None:
+            out["w"] = self.w
         return out
 
 
@@ -215,6 +234,8 @@ def model_data(spec: ShrinkageSpec, cells: Cells) -> tuple[dict[str, np.ndarray]
 
         curves = build_curves(cells.unit, cells.offset, cells.n, cells.r, cells.n_units)
         data = curves.data()
+        if cells.w is not None:
+            data["w"] = cells.w
     else:
         data = cells.data()
     if spec.pooling == "partial":
@@ -248,8 +269,9 @@ def build_model(spec: ShrinkageSpec, cells: Cells, data: dict[str, np.ndarray] |
             tau = prior("tau")
             v = pm.Flat("v", shape=cells.n_units)
             c = data["centred"]
-            pm.Potential("units", pt.sum(c * pm.logp(pm.Normal.dist(mu, tau), v) + (1 - c) * pm.logp(pm.Normal.dist(0.0, 1.0), v)))
-            a = c * v + (1 - c) * (mu + tau * v)
+            target = mu + pt.dot(data["w"], prior("beta", shape=spec.predictors)) if spec.predictors else mu
+            pm.Potential("units", pt.sum(c * pm.logp(pm.Normal.dist(target, tau), v) + (1 - c) * pm.logp(pm.Normal.dist(0.0, 1.0), v)))
+            a = c * v + (1 - c) * (target + tau * v)
         else:
             a = pm.Logistic("a", 0.0, 1.0, shape=cells.n_units)
         if "coef" in data:

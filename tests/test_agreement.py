@@ -157,7 +157,16 @@ def test_measure_pages_agree_with_the_downloads(published):
         bench_shown = re.search(r"[Ee]ach unit is compared with this (?:rate|mean|average), the benchmark|benchmark is ([\d.,]+)", text)
         assert bench_shown, key
         stated = re.search(r"typical unit's adjusted value is ([\d.,]+)[^,]*, while the benchmark is ([\d.,]+)", text)
-        if stated:
+        predictors = m["pulled_towards"]["predictors"]
+        if "pulls a small unit towards units like it" in text:
+            assert predictors, key  # the words say predictors are used only when they are
+            changed = m["pulled_towards"]["units_whose_group_depends_on_the_predictors"]
+            said = re.search(r"For (\d+) units?, the group would differ with one typical unit for all", text)
+            assert (int(said.group(1)) if said else 0) == len(changed), key
+            group_of = csv[csv["measure"] == key].set_index("unit_id")["group"]
+            for c in changed:  # each such unit's group, as published, is the fit with the predictors
+                assert group_of[c["unit_id"]] == c["with"] != c["without"], (key, c)
+        elif stated:
             assert close(stated.group(1), m["typical_unit"] * k, 0.1) and close(stated.group(2), bench * k, 0.1)
         else:
             assert f"{m['typical_unit'] * k:.1f}" == f"{bench * k:.1f}", key  # not stated only when it rounds to the benchmark
@@ -206,3 +215,8 @@ def test_unit_pages_agree_with_the_downloads(published):
             above = re.search(r"above (?:the benchmark|it) is (less than 1%|more than 99%|\d+%)", words)
             assert above and chance_ok(above.group(1), r["prob_above_benchmark"]), (unit_id, words)
             assert GROUPS[r["group"]].lower().replace("stands out as ", "") in words.lower(), (unit_id, words)
+            depends = {c["unit_id"]: c["without"] for c in m["pulled_towards"].get("units_whose_group_depends_on_the_predictors", [])}
+            if unit_id in depends:
+                assert f"it would be {GROUPS[depends[unit_id]].lower()}." in words, (unit_id, words)
+            else:
+                assert "Its group depends on a choice in the model" not in words, (unit_id, words)

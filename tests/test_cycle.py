@@ -148,6 +148,8 @@ def test_demo_true_effects_are_recovered_at_about_the_nominal_rate(demo_cycle):
     files, summary, _ = demo_cycle
     truth = pd.read_csv(files.truth, dtype={"unit_id": str})
     fitted = pd.concat([r.table for r in summary.results]).merge(truth, on=["measure", "unit_id"])
+    # The true ratio to the benchmark: the unit's expected total at its true quality over its published E.
+    fitted["true_ratio"] = fitted["true_predicted"] / fitted["expected"]
     inside = (fitted["ratio_lower"] <= fitted["true_ratio"]) & (fitted["true_ratio"] <= fitted["ratio_upper"])
     coverage = inside.mean()
     # 95% intervals over 5 measures x 44 units = 220 intervals: the binomial SD of coverage is
