@@ -38,7 +38,7 @@ def _versions() -> tuple:
 
 # Modules whose code decides the fitted numbers: their source and their upper-case constants are
 # part of every fit key, so an upgrade or a changed setting never reuses a stale fit.
-FITTING_MODULES = ("benchmark", "casemix", "curves", "cycle", "data", "sampling", "shrinkage", "validation")
+FITTING_MODULES = ("benchmark", "casemix", "curves", "cycle", "data", "sampling", "shrinkage", "targets", "validation")
 
 
 def code_version() -> str:

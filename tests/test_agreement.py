@@ -220,3 +220,32 @@ def test_unit_pages_agree_with_the_downloads(published):
                 assert f"it would be {GROUPS[depends[unit_id]].lower()}." in words, (unit_id, words)
             else:
                 assert "Its group depends on a choice in the model" not in words, (unit_id, words)
+
+
+def test_methods_page_predictors_and_sensitivity_agree_with_the_downloads(published):
+    site, csv, about = published
+    page = (site / "methods.html").read_text()
+    targeted = {k: m for k, m in about.items() if m["pulled_towards"]["predictors"]}
+    if not targeted:
+        assert "What small units are pulled towards</strong> (unit-level predictors" not in page
+        return
+    names = {m["name"]: k for k, m in targeted.items()}
+    effects = table_with(page, "Measure", "Predictor", "Effect per SD")
+    assert len(effects) == sum(len(m["pulled_towards"]["predictors"]) for m in targeted.values())
+    for row in effects:
+        m = targeted[names[row["Measure"]]]
+        term = next(t for t in m["pulled_towards"]["predictors"] if f"({t['term']})" in row["Predictor"])
+        median, lo, hi = numbers(col(row, "Effect per SD"))[:3]
+        assert close(median, term["effect_median"], 0.01) and close(lo, term["effect_lower"], 0.01) and close(hi, term["effect_upper"], 0.01)
+        assert lo <= median <= hi
+    sensitivity = table_with(page, "Measure", "Units whose group changes", GROUPS["better"])
+    for row in sensitivity:
+        if row["Measure"] not in names:
+            continue
+        m = targeted[names[row["Measure"]]]
+        for g in ("better", "typical", "worse"):
+            shown = numbers(row[GROUPS[g]])
+            assert shown == [m["pulled_towards"]["groups"][g]["with"], m["pulled_towards"]["groups"][g]["without"]], (row, g)
+            published = csv[(csv["measure"] == names[row["Measure"]]) & (csv["status"] == "reported")]
+            assert shown[0] == (published["group"] == g).sum()  # the published groups are the fit with the predictors
+        assert number(row["Units whose group changes"]) == len(m["pulled_towards"]["units_whose_group_depends_on_the_predictors"])
