@@ -72,7 +72,8 @@ def main(argv: list[str] | None = None) -> int:
             cohort = load_cohort(load_config(args.config))
             for w in cohort.warnings:
                 reporter.warn(w)
-            print(f"fairgauge: check passed: {len(cohort.rows):,} patient rows, {cohort.rows[cohort.unit_column].nunique()} units with cases, "
+            with_cases = set(cohort.rows[cohort.unit_column]) | {u for t in (cohort.summaries or {}).values() if t is not None for u in t.index}
+            print(f"fairgauge: check passed: {len(cohort.rows):,} patient rows, {len(with_cases)} units with cases, "
                   f"{len(cohort.units)} in the unit table; {len(cohort.warnings)} warning(s). Nothing was fitted.")
             return 0
         if args.command == "demo":

@@ -99,8 +99,11 @@ class CycleSection:
 class InputsSection:
     """[inputs]: the cohort file and the unit table."""
 
-    cohort: Path = option(doc="Patient-level rows (CSV or Parquet), one per index admission or procedure.")
     units: Path = option(doc="Unit table (CSV or Parquet) with columns id, name, kind.")
+    cohort: Path = option(
+        None, doc="Patient-level rows (CSV or Parquet), one per index admission or procedure. Required unless every "
+        "measure is read from unit totals (summary).",
+    )
     unit_column: str = option("unit_id", doc="Cohort column holding the unit id.", check=_nonempty)
     record_column: str = option(
         "", doc="Optional cohort column with a unique record id; repeated ids are rejected as duplicates."
@@ -321,7 +324,7 @@ def _build_section(cls: type, table: Any, where: str, base: Path, problems: list
         if f.name not in table:
             if f.default is MISSING:
                 problems.append(Problem(key, f"is required ({f.metadata['doc']})"))
-            elif hints[f.name] is Path:
+            elif hints[f.name] is Path and f.default is not None:
                 values[f.name] = (base / f.default).resolve()  # defaults, too, are relative to the config file
             continue
         value = table[f.name]
@@ -403,6 +406,11 @@ def load_config(path: str | Path) -> CycleConfig:
         raw_measures = []
     measures = [_build_section(MeasureSection, t, f"measures[{i}]", base, problems) for i, t in enumerate(raw_measures)]
     _check_measures([m for m in measures if m is not None], problems)
+    inputs = sections.get("inputs")
+    if inputs is not None and inputs.cohort is None and any(m is not None and not m.summary for m in measures):
+        patient = [m.key for m in measures if m is not None and not m.summary]
+        problems.append(Problem("inputs.cohort", f"is required: measure(s) {', '.join(patient)} read patient rows. "
+                                "Name the cohort file, or give every measure a summary file of unit totals."))
 
     if problems:
         raise ConfigError(problems)

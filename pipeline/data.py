@@ -214,7 +214,10 @@ def load_cohort(config: CycleConfig) -> Cohort:
     unit_col = inputs.unit_column
     units = read_table(inputs.units, text_columns=("id",))
     text_cols = tuple(c for c in (unit_col, inputs.record_column) if c)
-    rows = read_table(inputs.cohort, text_columns=text_cols)
+    if inputs.cohort is None:  # every measure is read from unit totals (config.py checks this)
+        rows = pd.DataFrame({c: pd.Series([], dtype="string") for c in text_cols})
+    else:
+        rows = read_table(inputs.cohort, text_columns=text_cols)
     problems: list[Problem] = []
     warnings: list[str] = []
     u_where, c_where = str(inputs.units), str(inputs.cohort)
@@ -267,7 +270,8 @@ def load_cohort(config: CycleConfig) -> Cohort:
         _check_outcome(rows, m.outcome, m.type, c_where, problems)
         if m.expected_column:
             _check_expected(rows, m.expected_column, m.type, c_where, problems)
-    _check_comparable(config, rows, unit_col, c_where, problems)
+    if patient_measures:
+        _check_comparable(config, rows, unit_col, c_where, problems)
     looks_identifying = [str(c) for c in rows.columns if _IDENTIFIER.search(str(c))]
     if looks_identifying:
         warnings.append(
@@ -279,11 +283,10 @@ def load_cohort(config: CycleConfig) -> Cohort:
     if problems:
         raise InputError(problems)
 
-    idle = units.index[~units.index.isin(rows[unit_col])]
-    if len(idle):
-        warnings.append(f"{len(idle)} unit(s) in {u_where} have no cases this cycle and are listed without results: {', '.join(idle[:5])}.")
     keep = [unit_col, *dict.fromkeys([m.outcome for m in patient_measures] + [m.expected_column for m in patient_measures if m.expected_column] + risk_factors)]
-    hashes = {inputs.cohort.name: _sha256(inputs.cohort), inputs.units.name: _sha256(inputs.units)}
+    hashes = {inputs.units.name: _sha256(inputs.units)}
+    if inputs.cohort is not None:
+        hashes = {inputs.cohort.name: _sha256(inputs.cohort), **hashes}
     summaries = {}
     for i, m in enumerate(config.measures):
         if m.summary:
@@ -305,6 +308,10 @@ def load_cohort(config: CycleConfig) -> Cohort:
             problems.append(Problem(f"measures[{i}].pull_towards ({u_where})", text))
     if problems:
         raise InputError(problems)
+    with_cases = set(rows[unit_col]) | {u for t in summaries.values() if t is not None for u in t.index}
+    idle = units.index[~units.index.isin(with_cases)]
+    if len(idle):
+        warnings.append(f"{len(idle)} unit(s) in {u_where} have no cases this cycle and are listed without results: {', '.join(idle[:5])}.")
     return Cohort(
         rows=rows[keep].reset_index(drop=True),
         units=units[["name", "kind"]].astype("string"),

@@ -269,3 +269,64 @@ def test_groups_ranks_and_weights_follow_their_rules(demo_cycle):
         assert [alt["scale"] for alt in r.sensitivity] == [0.5, 2.0]
     hidden = table[table["status"] != "reported"]
     assert hidden[["rank_median", "own_weight", "prob_other_side"]].isna().all().all() and hidden["group"].isna().all()
+
+
+TOTALS_CONFIG = """
+[cycle]
+title = "Unit totals only (invented)"
+publisher = "Test publisher"
+period = "Totals period"
+output = "site"
+renderer = "builtin"
+invented_data = true
+
+[inputs]
+units = "units.csv"
+
+[sampler]
+chains = 2
+draws = 500
+tune = 500
+
+[[measures]]
+key = "falls"
+name = "Falls in hospital"
+definition = "Inpatients who fell during their stay (invented)."
+outcome = "falls"
+type = "binary"
+better = "lower"
+summary = "falls_by_unit.csv"
+"""
+
+
+@pytest.mark.slow
+def test_a_cycle_of_unit_totals_alone_needs_no_patient_rows(tmp_path):
+    # Many teams receive only observed and expected counts per unit from a risk tool run elsewhere.
+    rng = np.random.default_rng(8)
+    n = 15
+    ids = [f"w{i:02d}" for i in range(n)]
+    cases = rng.integers(40, 900, n)
+    expected = np.round(cases * rng.uniform(0.02, 0.08, n), 2)
+    observed = rng.poisson(expected)
+    pd.DataFrame({"id": ids, "name": [f"Ward {i}" for i in range(n)], "kind": "ward"}).to_csv(tmp_path / "units.csv", index=False)
+    pd.DataFrame({"unit_id": ids, "cases": cases, "falls": observed, "expected": expected}).to_csv(tmp_path / "falls_by_unit.csv", index=False)
+    (tmp_path / "cycle.toml").write_text(TOTALS_CONFIG, encoding="utf-8")
+    summary = run_cycle(load_config(tmp_path / "cycle.toml"))
+    table = pd.read_csv(tmp_path / "site" / "downloads" / "results.csv")
+    assert summary.patients == 0 and len(table) == n and table["status"].eq("reported").sum() >= n - 1
+    reported = table[table["status"] == "reported"]
+    assert (reported["observed"] == pd.Series(observed, index=ids)[reported["unit_id"]].to_numpy()).all()
+    # Supplied expected totals are scaled by one factor so the network expects what it observed (benchmark.py).
+    factor = observed.sum() / expected.sum()
+    np.testing.assert_allclose(reported["expected"], expected[[ids.index(u) for u in reported["unit_id"]]] * factor, rtol=1e-5)
+    manifest = (tmp_path / "site" / "fairgauge-manifest.json").read_text()
+    assert "falls_by_unit.csv" in manifest and "cohort" not in manifest.split('"input_sha256"')[1].split("}")[0]
+
+
+def test_a_patient_measure_without_a_cohort_file_is_refused(tmp_path):
+    from pipeline.errors import ConfigError
+
+    text = TOTALS_CONFIG.replace('summary = "falls_by_unit.csv"\n', 'casemix = "1"\n')
+    (tmp_path / "cycle.toml").write_text(text, encoding="utf-8")
+    with pytest.raises(ConfigError, match=r"inputs.cohort: is required: measure\(s\) falls read patient rows"):
+        load_config(tmp_path / "cycle.toml")
