@@ -14,11 +14,12 @@ import re
 import tomllib
 import types
 import typing
-from dataclasses import MISSING, dataclass, field, fields
+from dataclasses import MISSING, dataclass, field, fields, replace
 from pathlib import Path
 from typing import Any, Callable, Literal
 
 from .errors import ConfigError, Problem
+from .warehouse import has_password
 
 Check = Callable[[Any], "str | None"]
 
@@ -99,11 +100,19 @@ class CycleSection:
 class InputsSection:
     """[inputs]: the cohort file and the unit table."""
 
-    units: Path = option(doc="Unit table (CSV or Parquet) with columns id, name, kind.")
+    units: Path = option(None, doc="Unit table (CSV or Parquet) with columns id, name, kind (or units_query).")
     cohort: Path = option(
         None, doc="Patient-level rows (CSV or Parquet), one per index admission or procedure. Required unless every "
-        "measure is read from unit totals (summary).",
+        "measure is read from unit totals (summary), or cohort_query is given.",
     )
+    database: str = option(
+        "", doc="PostgreSQL connection for cohort_query and units_query: a libpq connection string "
+        "(\"host=... dbname=... user=...\"), a URI or \"service=name\". Never a password: libpq reads it from "
+        "PGPASSWORD, ~/.pgpass or the service file.",
+    )
+    cohort_query: str = option("", doc="Read the cohort from the database: a SELECT, a .sql file beside the config, or a table name.")
+    units_query: str = option("", doc="Read the unit table from the database: a SELECT, a .sql file beside the config, or a table name.")
+    statement_timeout: float = option(60.0, doc="Seconds a database query may run before it is cancelled.", check=_between(1, 86_400))
     unit_column: str = option("unit_id", doc="Cohort column holding the unit id.", check=_nonempty)
     record_column: str = option(
         "", doc="Optional cohort column with a unique record id; repeated ids are rejected as duplicates."
@@ -347,6 +356,29 @@ def _build_section(cls: type, table: Any, where: str, base: Path, problems: list
         return None
 
 
+def _check_inputs(inputs: "InputsSection", base: Path, problems: list[Problem]) -> "InputsSection":
+    """Files or database queries, never both for one table; no password in the config; .sql files read here."""
+    if inputs.database and has_password(inputs.database):
+        problems.append(Problem("inputs.database", "contains a password. Remove it from the config (it is not shown here) "
+                                "and let libpq read it from PGPASSWORD, ~/.pgpass or a service file (PGSERVICEFILE)."))
+    queries = {}
+    for name in ("cohort", "units"):
+        query = getattr(inputs, f"{name}_query")
+        if query and getattr(inputs, name) is not None:
+            problems.append(Problem(f"inputs.{name}_query", f"is set together with inputs.{name}; give the file or the query, not both."))
+        if query and not inputs.database:
+            problems.append(Problem(f"inputs.{name}_query", "needs inputs.database, the connection to read it from."))
+        if query.strip().lower().endswith(".sql"):
+            path = (base / query.strip()).resolve()
+            if not path.is_file():
+                problems.append(Problem(f"inputs.{name}_query", f"names the SQL file {path}, which does not exist."))
+            else:
+                queries[f"{name}_query"] = path.read_text(encoding="utf-8")
+    if inputs.units is None and not inputs.units_query:
+        problems.append(Problem("inputs.units", "is required (the unit table file), or give inputs.units_query."))
+    return replace(inputs, **queries)
+
+
 def _check_measures(measures: list[MeasureSection], problems: list[Problem]) -> None:
     """Checks across measures (each field was checked on its own already)."""
     seen: dict[str, int] = {}
@@ -407,7 +439,10 @@ def load_config(path: str | Path) -> CycleConfig:
     measures = [_build_section(MeasureSection, t, f"measures[{i}]", base, problems) for i, t in enumerate(raw_measures)]
     _check_measures([m for m in measures if m is not None], problems)
     inputs = sections.get("inputs")
-    if inputs is not None and inputs.cohort is None and any(m is not None and not m.summary for m in measures):
+    if inputs is not None:
+        inputs = _check_inputs(inputs, base, problems)
+        sections["inputs"] = inputs
+    if inputs is not None and inputs.cohort is None and not inputs.cohort_query and any(m is not None and not m.summary for m in measures):
         patient = [m.key for m in measures if m is not None and not m.summary]
         problems.append(Problem("inputs.cohort", f"is required: measure(s) {', '.join(patient)} read patient rows. "
                                 "Name the cohort file, or give every measure a summary file of unit totals."))

@@ -239,7 +239,8 @@ def prior_sensitivity(config, sampler: Sampler, samplers: dict, cells: Cells, dr
 
 def about(config: CycleConfig, cohort: Cohort, renderer: Renderer, results: list[MeasureResult]) -> dict:
     """The manifest: what this build is and how it was made (site root, results.json, methods page)."""
-    return {
+    database = {"database": cohort.provenance} if cohort.provenance else {}  # server, database, query and rows hashes; never credentials
+    return {**database,
         "title": config.cycle.title, "publisher": config.cycle.publisher, "period": config.cycle.period,
         "invented_data": config.cycle.invented_data, "version": __version__,
         "built": datetime.now(timezone.utc).strftime("%Y-%m-%d %H:%M UTC"),

@@ -20,6 +20,7 @@ import pandas as pd
 from .config import CycleConfig
 from .errors import InputError, Problem
 from .targets import check as check_targets
+from .warehouse import read_query
 
 UNIT_TABLE_COLUMNS = ("id", "name", "kind")
 # Column names that suggest direct identifiers (common practice, no source: the usual
@@ -44,6 +45,7 @@ class Cohort:
     warnings: tuple[str, ...]
     summaries: dict[str, pd.DataFrame] = None  # measure key -> unit-level input (index unit id; cases, observed, expected)
     attributes: pd.DataFrame = None  # the unit table's other columns (index unit id), for pull_towards (targets.py)
+    provenance: dict = None  # "cohort"/"units" -> where rows read from a database came from (warehouse.Provenance)
 
 
 def _sha256(path: Path) -> str:
@@ -91,6 +93,18 @@ def read_table(path: Path, text_columns: tuple[str, ...] = ()) -> pd.DataFrame:
     if frame.empty:
         raise InputError([Problem(where, "has a header but no data rows.")])
     return frame
+
+
+def _read_input(inputs, name: str, text_columns: tuple[str, ...], provenance: dict) -> tuple[pd.DataFrame, str]:
+    """The cohort or the unit table, from its file or from the database; (rows, how errors name it)."""
+    query = getattr(inputs, f"{name}_query")
+    if not query:
+        path = getattr(inputs, name)
+        return read_table(path, text_columns=text_columns), str(path)
+    where = f"database {name} (inputs.{name}_query)"
+    frame, origin = read_query(inputs.database, query, where, inputs.statement_timeout, text_columns=text_columns)
+    provenance[name] = origin.as_dict()
+    return frame, where
 
 
 def _rows(mask: pd.Series | np.ndarray) -> str:
@@ -212,15 +226,15 @@ def load_cohort(config: CycleConfig) -> Cohort:
     """Read the unit table and the cohort named in ``config`` and check them together."""
     inputs = config.inputs
     unit_col = inputs.unit_column
-    units = read_table(inputs.units, text_columns=("id",))
     text_cols = tuple(c for c in (unit_col, inputs.record_column) if c)
-    if inputs.cohort is None:  # every measure is read from unit totals (config.py checks this)
-        rows = pd.DataFrame({c: pd.Series([], dtype="string") for c in text_cols})
+    provenance: dict[str, dict] = {}
+    units, u_where = _read_input(inputs, "units", ("id",), provenance)
+    if inputs.cohort is None and not inputs.cohort_query:  # every measure is read from unit totals (config.py checks this)
+        rows, c_where = pd.DataFrame({c: pd.Series([], dtype="string") for c in text_cols}), "cohort"
     else:
-        rows = read_table(inputs.cohort, text_columns=text_cols)
+        rows, c_where = _read_input(inputs, "cohort", text_cols, provenance)
     problems: list[Problem] = []
     warnings: list[str] = []
-    u_where, c_where = str(inputs.units), str(inputs.cohort)
     _check_units(units, u_where, problems)
 
     needed: dict[str, str] = {unit_col: "[inputs].unit_column"}
@@ -284,9 +298,12 @@ def load_cohort(config: CycleConfig) -> Cohort:
         raise InputError(problems)
 
     keep = [unit_col, *dict.fromkeys([m.outcome for m in patient_measures] + [m.expected_column for m in patient_measures if m.expected_column] + risk_factors)]
-    hashes = {inputs.units.name: _sha256(inputs.units)}
-    if inputs.cohort is not None:
-        hashes = {inputs.cohort.name: _sha256(inputs.cohort), **hashes}
+    hashes = {}
+    for name, path in (("cohort", inputs.cohort), ("units", inputs.units)):
+        if name in provenance:
+            hashes[f"database {name}"] = provenance[name]["rows_sha256"]  # order-free hash of the rows read
+        elif path is not None:
+            hashes[path.name] = _sha256(path)
     summaries = {}
     for i, m in enumerate(config.measures):
         if m.summary:
@@ -320,6 +337,7 @@ def load_cohort(config: CycleConfig) -> Cohort:
         sha256=hashes,
         warnings=tuple(warnings),
         summaries=summaries,
+        provenance=provenance,
     )
 
 

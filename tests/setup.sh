@@ -2,6 +2,7 @@
 # Installs everything the test suite needs, then nothing else:
 #   - fairgauge with its test extras (pytest, scikit-learn, textstat, playwright);
 #   - Debian's chromium for the browser tests (Playwright's own browser download is not used);
+#   - Debian's postgresql for the database tests (they start and stop their own throwaway server);
 #   - axe-core from npm, for the accessibility checks (into ./node_modules, not saved anywhere else).
 set -euo pipefail
 cd "$(dirname "$0")/.."
@@ -11,6 +12,7 @@ pip install -e ".[test]"
 missing=()
 command -v chromium >/dev/null 2>&1 || missing+=(chromium)
 command -v npm >/dev/null 2>&1 || missing+=(npm)
+ls /usr/lib/postgresql/*/bin/initdb >/dev/null 2>&1 || missing+=(postgresql)
 if [ ${#missing[@]} -gt 0 ]; then
   $SUDO apt-get update
   $SUDO apt-get install -y --no-install-recommends "${missing[@]}"
