@@ -67,7 +67,7 @@ def rows_sha256(frame: pd.DataFrame) -> str:
     """SHA-256 over the column names, their types and the rows, the same in any row order."""
     digest = hashlib.sha256()
     digest.update(repr([(str(c), str(t)) for c, t in frame.dtypes.items()]).encode())
-    row_hashes = pd.util.hash_pandas_object(frame, index=False).to_numpy(np.uint64)
+    row_hashes = pd.util.hash_pandas_object(frame, index=False, categorize=False).to_numpy(np.uint64)
     digest.update(str(len(frame)).encode())
     digest.update(int(row_hashes.sum(dtype=np.uint64)).to_bytes(8, "little"))  # sum mod 2^64: order-free
     digest.update(int(np.bitwise_xor.reduce(row_hashes) if len(row_hashes) else 0).to_bytes(8, "little"))
@@ -116,19 +116,25 @@ def read_query(conninfo: str, source: str, where: str, timeout_seconds: float, c
         server_version, database = cursor.fetchone()
         try:
             cursor.execute(sql)
-            table = cursor.fetch_arrow_table()
+            table = cursor.fetch_arrow_table()  # record batches from the binary COPY, in Arrow buffers
         except Exception as exc:
             raise InputError([Problem(where, _query_problem(str(exc), conninfo, timeout_seconds))]) from None
     finally:
         connection.close()
-    frame = table.to_pandas()
-    for c in text_columns:
-        if c in frame.columns:
-            frame[c] = frame[c].astype("string")
+    frame = _to_pandas(table, text_columns)
     if frame.empty:
         raise InputError([Problem(where, "the query returned no rows. Check its WHERE clause and the reporting period.")])
     provenance = Provenance(str(server_version), str(database), hashlib.sha256(sql.encode()).hexdigest(), len(frame), rows_sha256(frame))
     return frame, provenance
+
+
+def _to_pandas(table, text_columns: tuple[str, ...]) -> pd.DataFrame:
+    """Arrow to pandas, freeing each Arrow buffer as soon as it is converted (lower peak memory); ids as text."""
+    frame = table.to_pandas(self_destruct=True, split_blocks=True)
+    for c in text_columns:
+        if c in frame.columns and not pd.api.types.is_string_dtype(frame[c]):  # Arrow text is already text
+            frame[c] = frame[c].astype("string")
+    return frame
 
 
 def _query_problem(message: str, conninfo: str, timeout_seconds: float) -> str:

@@ -204,5 +204,5 @@ def test_unit_names_with_quotes_and_accents_arrive_unchanged(server, reader, tmp
     _load(connect, "cohort", cohort)
     read = load_cohort(load_config(_config(tmp_path, _db_inputs(port))))
     assert list(read.units["name"].iloc[:2]) == ["St. Mary's \"North\" Ward", "Clínica Þórsmörk – Süd"]
-    assert len(read.rows) == len(cohort) and read.rows["unit_id"].dtype == "string"
+    assert len(read.rows) == len(cohort) and pd.api.types.is_string_dtype(read.rows["unit_id"])
     assert set(read.provenance) == {"cohort", "units"} and read.provenance["cohort"]["rows"] == len(cohort)
