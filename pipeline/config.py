@@ -221,7 +221,8 @@ class MeasureSection:
     )
     summary: str = option(
         "", doc="Unit-level input: a CSV or Parquet file (relative to the config file) with the unit column and columns "
-        "cases, <outcome> and expected; no patient rows are read for this measure. Binary measures only.",
+        "cases, <outcome> and expected; no patient rows are read for this measure. Binary measures only. With "
+        "inputs.database it may instead be a table name, a SELECT or a .sql file giving those columns.",
     )
     social_risk: tuple = option(
         (), doc="Social-risk variables of the case-mix formula; the cycle also fits without them and reports which units' "

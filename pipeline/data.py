@@ -306,7 +306,24 @@ def load_cohort(config: CycleConfig) -> Cohort:
             hashes[path.name] = _sha256(path)
     summaries = {}
     for i, m in enumerate(config.measures):
-        if m.summary:
+        if m.summary and summary_from_database(inputs, m.summary):
+            where = f"database unit totals of measure '{m.key}' (measures[{i}].summary)"
+            query = m.summary
+            if query.strip().lower().endswith(".sql"):
+                sql_file = (config.source.parent / query.strip()).resolve()
+                if not sql_file.is_file():
+                    problems.append(Problem(f"measures[{i}].summary", f"names the SQL file {sql_file}, which does not exist."))
+                    continue
+                query = sql_file.read_text(encoding="utf-8")
+            try:
+                frame, origin = read_query(inputs.database, query, where, inputs.statement_timeout, text_columns=(unit_col,))
+            except InputError as exc:
+                problems.extend(exc.problems)
+                continue
+            provenance[f"summary {m.key}"] = origin.as_dict()
+            summaries[m.key] = load_summary(Path(where), m.outcome, unit_col, units.index, problems, frame=frame)
+            hashes[f"database summary {m.key}"] = origin.rows_sha256
+        elif m.summary:
             path = (config.source.parent / m.summary).resolve()
             summaries[m.key] = load_summary(path, m.outcome, unit_col, units.index, problems)
             hashes[path.name] = _sha256(path) if path.is_file() else ""
@@ -341,14 +358,21 @@ def load_cohort(config: CycleConfig) -> Cohort:
     )
 
 
-def load_summary(path: Path, observed: str, unit_col: str, unit_ids: pd.Index, problems: list[Problem]) -> pd.DataFrame | None:
-    """Unit-level input of one measure: per unit its cases, observed events and expected events."""
+def summary_from_database(inputs, summary: str) -> bool:
+    """A measure's ``summary`` is a database query or table when a database is configured and it is not a data file."""
+    return bool(inputs.database) and not summary.strip().lower().endswith((".csv", ".parquet", ".pq"))
+
+
+def load_summary(path: Path, observed: str, unit_col: str, unit_ids: pd.Index, problems: list[Problem],
+                 frame: pd.DataFrame | None = None) -> pd.DataFrame | None:
+    """Unit-level input of one measure: per unit its cases, observed events and expected events (``frame``: rows already read)."""
     where = str(path)
-    try:
-        frame = read_table(path, text_columns=(unit_col,))
-    except InputError as exc:
-        problems.extend(exc.problems)
-        return None
+    if frame is None:
+        try:
+            frame = read_table(path, text_columns=(unit_col,))
+        except InputError as exc:
+            problems.extend(exc.problems)
+            return None
     columns = {unit_col: "the unit id", "cases": "patients counted", observed: "observed events", "expected": "expected events"}
     absent = [c for c in columns if c not in frame.columns]
     for c in absent:

@@ -206,3 +206,35 @@ def test_unit_names_with_quotes_and_accents_arrive_unchanged(server, reader, tmp
     assert list(read.units["name"].iloc[:2]) == ["St. Mary's \"North\" Ward", "Clínica Þórsmörk – Süd"]
     assert len(read.rows) == len(cohort) and pd.api.types.is_string_dtype(read.rows["unit_id"])
     assert set(read.provenance) == {"cohort", "units"} and read.provenance["cohort"]["rows"] == len(cohort)
+
+
+def test_unit_totals_alone_from_the_database_need_no_cohort(server, reader, tmp_path):
+    port, connect = server
+    units, _ = _network()
+    totals = pd.DataFrame({"unit_id": units["id"], "cases": np.arange(100, 100 + len(units)), "falls": np.arange(len(units)) % 7,
+                           "expected": np.linspace(2.0, 6.0, len(units))})
+    _load(connect, "units", units)
+    _load(connect, "falls_totals", totals)
+    text = _config(tmp_path, "").read_text(encoding="utf-8")
+    text = text.replace("[inputs]\n", f'[inputs]\ndatabase = "host=127.0.0.1 port={port} dbname=warehouse user=fg_reader"\nunits_query = "units"\n')
+    text = text.replace('casemix = "age + frail"', 'summary = "falls_totals"').replace('outcome = "readmit"', 'outcome = "falls"')
+    (tmp_path / "cycle.toml").write_text(text, encoding="utf-8")
+    read = load_cohort(load_config(tmp_path / "cycle.toml"))
+    assert read.rows.empty and list(read.summaries["readmit"]["observed"]) == list(totals["falls"])
+    assert set(read.provenance) == {"units", "summary readmit"} and "database summary readmit" in read.sha256
+
+
+def test_a_server_that_never_answers_fails_within_the_connect_timeout(reader, tmp_path):
+    import socket
+    import time
+
+    with socket.socket() as silent:  # accepts the connection, then says nothing
+        silent.bind(("127.0.0.1", 0))
+        silent.listen(1)
+        port = silent.getsockname()[1]
+        inputs = (f'database = "host=127.0.0.1 port={port} dbname=warehouse user=fg_reader connect_timeout=2"\n'
+                  'cohort_query = "cohort"\nunits_query = "units"')
+        start = time.perf_counter()
+        text = _problems(_config(tmp_path, inputs))
+        assert time.perf_counter() - start < 10
+    assert "cannot connect to the database" in text and "timeout" in text.lower(), text
