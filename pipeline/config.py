@@ -19,7 +19,6 @@ from pathlib import Path
 from typing import Any, Callable, Literal
 
 from .errors import ConfigError, Problem
-from .warehouse import has_password
 
 Check = Callable[[Any], "str | None"]
 
@@ -355,6 +354,14 @@ def _build_section(cls: type, table: Any, where: str, base: Path, problems: list
         return cls(**values)
     except TypeError:  # a required key was missing: already reported
         return None
+
+
+_PASSWORD = re.compile(r"(^|\s)password\s*=|^[a-z]+://[^/@\s]*:[^/@\s]*@", re.IGNORECASE)
+
+
+def has_password(conninfo: str) -> bool:
+    """True when a libpq connection string carries a password (key=value, or user:password@ in a URI)."""
+    return bool(_PASSWORD.search(conninfo.strip()))
 
 
 def _check_inputs(inputs: "InputsSection", base: Path, problems: list[Problem]) -> "InputsSection":

@@ -171,8 +171,8 @@ def fit_measure(
     design = None
     if measure.pull_towards:
         present = counts["cases"].fillna(0).to_numpy() > 0
-        mean_risk = (None if measure.summary else
-                     pd.Series(cells_offset_mean(used_codes, offset)).reindex(range(n_units)).to_numpy(float))
+        # case_mix: each unit's mean offset, its patients' average risk on the link scale (no patients: unit totals)
+        mean_risk = None if measure.summary else pd.Series(offset).groupby(used_codes).mean().reindex(range(n_units)).to_numpy(float)
         design = target_design(tuple(measure.pull_towards), fitted_units, present, counts["cases"].fillna(0).to_numpy(float),
                                mean_risk, cohort.units["kind"], cohort.attributes)
     plain_cells = cells
@@ -210,11 +210,6 @@ def _sampler(samplers: dict, likelihood: str, design, config: CycleConfig) -> Sa
     if name not in samplers:
         samplers[name] = Sampler(ShrinkageSpec(likelihood=likelihood, predictors=p), config.sampler, engine=config.sampler.engine)
     return samplers[name]
-
-
-def cells_offset_mean(codes: np.ndarray, offset: np.ndarray) -> dict[int, float]:
-    """Each unit's mean offset: its patients' average case-mix risk on the link scale (the benchmark's intercept included)."""
-    return pd.Series(offset).groupby(codes).mean().to_dict()
 
 
 

@@ -3,7 +3,7 @@
 The connection is a libpq connection string (``host=... dbname=... user=...``, a URI, or
 ``service=name``); the password never lives in the config: libpq takes it from ``PGPASSWORD``,
 the password file (``~/.pgpass``) or the service file, and a connection string that carries one is
-refused (config.py) without being echoed. Each read:
+refused (``config.has_password``) without being echoed. Each read:
 
 * runs in read-only transactions (``SET SESSION CHARACTERISTICS AS TRANSACTION READ ONLY``) with a
   ``statement_timeout``, through one prepared statement, so a query cannot write and cannot
@@ -30,12 +30,6 @@ from .errors import InputError, Problem
 
 CONNECT_TIMEOUT = 10  # seconds libpq waits for a server before giving up (connect_timeout)
 _TABLE_NAME = re.compile(r"^[A-Za-z_][A-Za-z0-9_$]*(\.[A-Za-z_][A-Za-z0-9_$]*)?$")
-_PASSWORD = re.compile(r"(^|\s)password\s*=|^[a-z]+://[^/@\s]*:[^/@\s]*@", re.IGNORECASE)
-
-
-def has_password(conninfo: str) -> bool:
-    """True when a libpq connection string carries a password (key=value or user:password@ in a URI)."""
-    return bool(_PASSWORD.search(conninfo.strip()))
 
 
 @dataclass(frozen=True)
