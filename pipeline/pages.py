@@ -8,8 +8,8 @@ which makes it literal in both Quarto (pandoc) and the built-in renderer.
 from __future__ import annotations
 
 import hashlib
-import math
 import json
+import math
 import re
 from dataclasses import dataclass, field
 from pathlib import PurePosixPath

@@ -47,13 +47,12 @@ class Provenance:
                 "rows": self.rows, "rows_sha256": self.rows_sha256}
 
 
-def query_text(source: str, columns: tuple[str, ...] = ()) -> str:
-    """SQL for ``source``: a query as given, or, for a table name, a SELECT of ``columns`` (all when empty)."""
+def query_text(source: str) -> str:
+    """SQL for ``source``: a query as given, or, for a table name, a SELECT of all its columns."""
     source = source.strip()
     if _TABLE_NAME.match(source):
         name = ".".join(f'"{part}"' for part in source.split("."))
-        picked = ", ".join('"' + c.replace('"', '""') + '"' for c in columns) if columns else "*"
-        return f"SELECT {picked} FROM {name}"
+        return f"SELECT * FROM {name}"
     return source
 
 
@@ -85,7 +84,7 @@ def _clean(message: str, conninfo: str) -> str:
     return re.sub(r"^ERROR:\s+", "", " ".join(lines))
 
 
-def read_query(conninfo: str, source: str, where: str, timeout_seconds: float, columns: tuple[str, ...] = (),
+def read_query(conninfo: str, source: str, where: str, timeout_seconds: float,
                text_columns: tuple[str, ...] = ()) -> tuple[pd.DataFrame, Provenance]:
     """Rows of ``source`` (a query or a table name) as a DataFrame, and where they came from.
 
@@ -96,7 +95,7 @@ def read_query(conninfo: str, source: str, where: str, timeout_seconds: float, c
         import adbc_driver_postgresql.dbapi as pg
     except ImportError:  # pragma: no cover - depends on the installation
         raise InputError([Problem(where, "reading from a database needs the database extra: pip install 'fairgauge[database]'.")]) from None
-    sql = query_text(source, columns)
+    sql = query_text(source)
     try:
         connection = pg.connect(_with_timeout(conninfo), autocommit=True)
     except Exception as exc:  # the driver raises several types; all mean "could not connect"
