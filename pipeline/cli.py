@@ -59,6 +59,25 @@ def _summary(summary, reporter: ConsoleReporter) -> None:
     print(f"  site:     {(summary.site / 'index.html').resolve()}")
 
 
+def hidden_values(config, cohort) -> list[str]:
+    """Per measure, how many values the disclosure rules will hide (before patients with missing risk factors are left out)."""
+    from .disclosure import planned
+
+    lines = []
+    for m in config.measures:
+        summary = (cohort.summaries or {}).get(m.key)
+        if summary is not None:
+            cases, observed = summary["cases"], summary["observed"]
+        else:
+            grouped = cohort.rows.groupby(cohort.unit_column)[m.outcome]
+            cases, observed = grouped.size(), grouped.sum()
+        n = planned(cases, observed, cohort.units.index, m.type == "binary", config.reporting.hide_counts_below,
+                    config.reporting.minimum_cases)
+        lines.append(f"{m.key}: {n['units']} unit(s) hidden (too few cases or withheld); {n['small']} small count(s) shown as a "
+                     f"range and {n['protects']} more count(s) hidden to protect them")
+    return lines
+
+
 def main(argv: list[str] | None = None) -> int:
     args = _parser().parse_args(argv)
     reporter = ConsoleReporter()
@@ -69,12 +88,15 @@ def main(argv: list[str] | None = None) -> int:
         if args.command == "check":
             from .data import load_cohort
 
-            cohort = load_cohort(load_config(args.config))
+            config = load_config(args.config)
+            cohort = load_cohort(config)
             for w in cohort.warnings:
                 reporter.warn(w)
             with_cases = set(cohort.rows[cohort.unit_column]) | {u for t in (cohort.summaries or {}).values() if t is not None for u in t.index}
             print(f"fairgauge: check passed: {len(cohort.rows):,} patient rows, {len(with_cases)} units with cases, "
                   f"{len(cohort.units)} in the unit table; {len(cohort.warnings)} warning(s). Nothing was fitted.")
+            for line in hidden_values(config, cohort):
+                print(f"fairgauge: {line}")
             return 0
         if args.command == "demo":
             from .demo import write_demo

@@ -129,6 +129,14 @@ class ReportingSection:
         "(common practice for small-cell suppression in public health reporting, no source).",
         check=_between(1, 10_000),
     )
+    hide_counts_below: int = option(
+        11,
+        doc="Small-count rule: on a published unit, a count of patients with the outcome (or without it) from 1 to this "
+        "number minus 1 is shown as a range, with everything that would give it back (raw rate, O/E, own-data weight, and "
+        "one more count where the network total would). 0 shows every count. At most minimum_cases, so that no published "
+        "patient count is small either (a rule of 11 is common practice in US public reporting; from memory, no source).",
+        check=lambda v: None if v == 0 or 3 <= v <= 1000 else f"must be 0 (off) or a whole number from 3 to 1000; got {v}",
+    )
     benchmark: str | float = option(
         "network", doc="\"network\" (the network's observed rate, or mean for continuous measures) or a fixed rate between 0 "
         "and 1 (binary measures; continuous measures always use the network mean).", check=_benchmark
@@ -446,6 +454,11 @@ def load_config(path: str | Path) -> CycleConfig:
         raw_measures = []
     measures = [_build_section(MeasureSection, t, f"measures[{i}]", base, problems) for i, t in enumerate(raw_measures)]
     _check_measures([m for m in measures if m is not None], problems)
+    reporting = sections.get("reporting")
+    if reporting is not None and reporting.hide_counts_below > reporting.minimum_cases:
+        problems.append(Problem("reporting.hide_counts_below", f"is {reporting.hide_counts_below}, above reporting.minimum_cases "
+                                f"({reporting.minimum_cases}): a unit with fewer patients than that would show a small patient count. "
+                                "Raise minimum_cases to at least hide_counts_below, or lower hide_counts_below."))
     inputs = sections.get("inputs")
     if inputs is not None:
         inputs = _check_inputs(inputs, base, problems)

@@ -194,6 +194,8 @@ record_column = "stay_id"
 [reporting]
 interval = 0.95
 minimum_cases = 11
+# Counts of 1 to 10 patients with (or without) an outcome are shown as ranges.
+hide_counts_below = 11
 benchmark = "network"
 
 [sampler]

@@ -252,7 +252,7 @@ def draw_intervals(data: pd.DataFrame, benchmark: float, label: str, path: Path,
 
 def movement_figure_data(result: MeasureResult) -> pd.DataFrame:
     """Each reported unit's raw and adjusted value, fewest cases first (small units move most)."""
-    t = result.table[result.table["status"] == "reported"].sort_values(["cases", "unit_name"])
+    t = result.table[(result.table["status"] == "reported") & result.table["raw_rate"].notna()].sort_values(["cases", "unit_name"])
     k = axis(result)[0]
     return pd.DataFrame(
         {"unit_name": t["unit_name"], "cases": t["cases"].astype(int), "raw": t["raw_rate"] * k, "adjusted": t["rsr_median"] * k, "group": t["group"]}

@@ -134,7 +134,7 @@ def funnel(table: pd.DataFrame, null: str, benchmark: float, widen: bool = False
     """
     if null not in NULLS:
         raise ValueError(f"unknown null distribution {null!r}; allowed: {', '.join(NULLS)}")
-    t = table[(table["status"] == "reported") & (table["expected"] > 0)]
+    t = table[(table["status"] == "reported") & (table["expected"] > 0) & table["observed"].notna()]  # small counts are not drawn
     if null != "poisson":
         t = t[t["variance"] > 0]
     if len(t) < 3:

@@ -201,6 +201,7 @@ class MeasureView:
     sensitivity: list[dict[str, str]] = field(default_factory=list)
     rows: list[dict] = field(default_factory=list)  # unit name, href, Cell
     targets: dict | None = None  # unit-level predictors of what units are pulled towards: words, terms, groups, changes
+    count_note: str = ""  # what the small-count rule hid on this measure, in plain words ("" when nothing)
 
 
 @dataclass(frozen=True)
@@ -224,7 +225,18 @@ def _sentence(name: str, m: MeasureResult, row: pd.Series, level: str, min_cases
             "This unit's numbers are withheld so that a smaller unit's numbers cannot be worked out "
             "by subtracting the published numbers from the network totals."
         )
-    return _estimate_sentence(name, m, row, level) + " " + _group_sentence(m, row) + _target_sentence(m, row)
+    return _estimate_sentence(name, m, row, level) + _count_sentence(row) + " " + _group_sentence(m, row) + _target_sentence(m, row)
+
+
+def _count_sentence(row: pd.Series) -> str:
+    """What the small-count rule hides on this unit (disclosure.py), in plain words."""
+    if row.get("count_status") == "small":
+        return (f" Between {row['observed_low']:,.0f} and {row['observed_high']:,.0f} of its {row['cases']:,.0f} patients had this "
+                "outcome. The exact number is not shown, to protect patients' privacy.")
+    if row.get("count_status") == "protects":
+        return (" Its exact number of patients with this outcome is not shown, so that another unit's small number "
+                "cannot be worked out from the network total.")
+    return ""
 
 
 # Plain names of the built-in predictors of what small units are pulled towards (targets.py).
@@ -290,14 +302,16 @@ def _estimate_sentence(name: str, m: MeasureResult, row: pd.Series, level: str) 
 def _cell(m: MeasureResult, row: pd.Series, level: str, min_cases: int) -> Cell:
     reported = row["status"] == "reported"
     show = (lambda v: v) if reported else (lambda v: "")
+    count = row.get("count_status", "shown") if reported else ""
+    counted = (lambda v: v) if reported and count == "shown" else (lambda v: "")
     return Cell(
         status=row["status"],
         status_words=STATUS[row["status"]],
         cases=f"{int(row['cases']):,}" if reported else {"too_few": f"fewer than {min_cases}", "withheld": "withheld"}.get(row["status"], "0"),
-        observed=f"{row['observed']:,.0f}" if reported else "",
+        observed=_observed_words(row, count),
         expected=(f"{row['expected']:,.1f}" if m.measure.type == "binary" else f"{row['expected']:,.0f}") if reported else "",
-        raw_rate=show(value(m.measure, row["raw_rate"])),
-        oe_ratio=show(num(row["oe_ratio"])),
+        raw_rate=counted(value(m.measure, row["raw_rate"])),
+        oe_ratio=counted(num(row["oe_ratio"])),
         rate=show(value(m.measure, row["rsr_median"])),
         interval=show(value_span(m.measure, row["rsr_lower"], row["rsr_upper"])),
         ratio=show(num(row["ratio_median"])),
@@ -311,9 +325,33 @@ def _cell(m: MeasureResult, row: pd.Series, level: str, min_cases: int) -> Cell:
         group_words=GROUPS.get(row["group"], STATUS[row["status"]]) if reported else STATUS[row["status"]],
         group_symbol=GROUP_SYMBOLS.get(row["group"], "") if reported else "",
         rank=f"{row['rank_median']:.0f} ({row['rank_lower']:.0f} to {row['rank_upper']:.0f})" if reported else "",
-        weight=f"{row['own_weight'] * 100:.0f}%" if reported and pd.notna(row["own_weight"]) else "",
+        weight=counted(f"{row['own_weight'] * 100:.0f}%") if pd.notna(row["own_weight"]) else "",
         other_side=show(chance(row["prob_other_side"])),
     )
+
+
+def count_note(table: pd.DataFrame, threshold: int) -> str:
+    """One measure's small-count rule in plain words: how many counts are ranges, how many hidden to protect them."""
+    status = table["count_status"] if "count_status" in table else pd.Series(dtype=str)
+    few, cover = int((status == "small").sum()), int((status == "protects").sum())
+    if not few and not cover:
+        return ""
+    text = (f"On {few} {'unit' if few == 1 else 'units'}, fewer than {threshold} patients had this outcome, or fewer than {threshold} "
+            "did not. To protect those patients, the table gives a range instead of the number, and leaves out the raw "
+            "rate, the O/E ratio and the share of own data, which would give the number back.")
+    if cover:
+        text += (f" On {cover} more {'unit' if cover == 1 else 'units'}, the number is not shown either, because the network "
+                 "total minus the numbers shown would give a small number back.")
+    return text + " These units are left out of the funnel plot and the raw-to-adjusted picture. Their adjusted values are shown."
+
+
+def _observed_words(row: pd.Series, count: str) -> str:
+    """The observed count as published: the number, its range when small, or "not shown" when it protects another."""
+    if count == "shown":
+        return f"{row['observed']:,.0f}"
+    if count == "small":
+        return f"{row['observed_low']:,.0f} to {row['observed_high']:,.0f}"
+    return "not shown" if count == "protects" else ""
 
 
 def _if_drawn(path: str, drawn: dict) -> str:
@@ -411,6 +449,7 @@ def views(
                 for alt in m.sensitivity
             ],
             targets=_targets_view(m),
+            count_note=count_note(m.table, config.reporting.hide_counts_below),
         )
         ordered = m.table.sort_values(["status", "rsr_median"], key=lambda s: s.map({"reported": 0, "too_few": 1, "withheld": 2, "no_cases": 3}) if s.name == "status" else s)
         for _, row in ordered.iterrows():

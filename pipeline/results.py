@@ -14,6 +14,7 @@ import numpy as np
 import pandas as pd
 
 from .casemix import CaseMixFit
+from .disclosure import hide_small_counts, protect_units
 from .config import CycleConfig, MeasureSection
 from .sampling import Diagnostics
 from .benchmark import reference_rate
@@ -42,9 +43,9 @@ GROUPS = {
 NUMERIC_PUBLIC = [
     "cases", "observed", "expected", "raw_rate", "oe_ratio", "rsr_median", "rsr_lower", "rsr_upper", "ratio_median",
     "ratio_lower", "ratio_upper", "prob_above_benchmark", "prob_below_benchmark", "rank_median", "rank_lower", "rank_upper",
-    "own_weight", "prob_other_side",
+    "own_weight", "prob_other_side", "observed_low", "observed_high",
 ]
-PUBLIC_COLUMNS = ["measure", "unit_id", "unit_name", "unit_kind", "status", *NUMERIC_PUBLIC, "position", "group"]
+PUBLIC_COLUMNS = ["measure", "unit_id", "unit_name", "unit_kind", "status", "count_status", *NUMERIC_PUBLIC, "position", "group"]
 HISTORY_DRAWS = 1000  # draws kept per unit for comparing cycles
 RANK_DRAWS = 1000  # draws used for ranks
 
@@ -178,7 +179,7 @@ def _summarise(config: CycleConfig, measure: MeasureSection, units: pd.DataFrame
         [table["rsr_lower"] > benchmark, table["rsr_upper"] < benchmark, table["status"] == "reported"],
         ["above", "below", "spans"], "",
     )
-    withhold_complement(table, config.reporting.minimum_cases)
+    protect_units(table, config.reporting.minimum_cases)
     table.loc[table["status"] != "reported", "position"] = ""
     reported = table.loc[table["status"] == "reported", "unit_id"].to_numpy()
     position_of = {u: i for i, u in enumerate(unit_ids)}
@@ -197,6 +198,8 @@ def _summarise(config: CycleConfig, measure: MeasureSection, units: pd.DataFrame
         table["own_weight"] = table["unit_id"].map(dict(zip(unit_ids, weight)))
     else:
         table["own_weight"] = np.nan
+    threshold = config.reporting.hide_counts_below if measure.type == "binary" else 0  # continuous: minimum_cases covers it
+    hide_small_counts(table, threshold, config.reporting.minimum_cases)
     changes = []
     for alt in fits.sensitivity:
         alt_rsr = (alt.draws.ratio * benchmark) if alt.draws is not None else rsr
@@ -263,24 +266,6 @@ def rank_summary(rsr: np.ndarray, better: str, lo_q: float, hi_q: float) -> np.n
     rsr = rsr[thin(len(rsr), RANK_DRAWS)]
     ranks = np.argsort(np.argsort(rsr if better == "lower" else -rsr, axis=1), axis=1) + 1
     return np.column_stack([np.median(ranks, axis=0), np.quantile(ranks, lo_q, axis=0, method="lower"), np.quantile(ranks, hi_q, axis=0, method="higher")])
-
-
-def withhold_complement(table: pd.DataFrame, minimum: int) -> None:
-    """Complementary suppression, in place.
-
-    Network totals are published, so the suppressed units' combined cases and events can be
-    worked out by subtraction. While fewer than two units are suppressed, or they hold fewer
-    than ``minimum`` cases between them, the smallest reported unit is withheld too, so no single
-    small unit's numbers can be recovered (common practice in official statistics, no source).
-    """
-    while True:
-        hidden = table["status"].isin(["too_few", "withheld"])
-        if not hidden.any() or (hidden.sum() >= 2 and table.loc[hidden, "cases"].sum() >= minimum):
-            return
-        reported = table[table["status"] == "reported"]
-        if reported.empty:
-            return
-        table.loc[reported["cases"].idxmin(), "status"] = "withheld"
 
 
 def public_table(results: list[MeasureResult]) -> pd.DataFrame:
@@ -365,6 +350,7 @@ DICTIONARY = {
     "unit_name": "The unit's name.",
     "unit_kind": "What kind of unit it is.",
     "status": "reported; too_few (fewer cases than the publication minimum: numbers withheld); withheld (numbers withheld so a smaller unit's cannot be worked out from network totals); no_cases.",
+    "count_status": "For reported units: shown; small (fewer than [reporting].hide_counts_below patients with the outcome, or without it: observed, raw_rate, oe_ratio and own_weight are left empty and observed_low to observed_high gives the range); protects (the same values left empty so that a small count cannot be worked out from the network total).",
     "cases": "Patients counted for this measure.",
     "observed": "Patients who had the outcome.",
     "expected": "Patients expected to have the outcome given their recorded risk factors, at the benchmark (case-mix fit; over the network, expected adds up to the benchmark rate times cases).",
@@ -382,6 +368,8 @@ DICTIONARY = {
     "rank_lower": "Lower end of the credible interval of the rank.",
     "rank_upper": "Upper end of the credible interval of the rank.",
     "own_weight": "Share of the estimate that rests on the unit's own patients (tau^2 / (tau^2 + se^2)); the rest comes from the network.",
+    "observed_low": "For a small count: the lowest number of patients with the outcome it can be (empty otherwise).",
+    "observed_high": "For a small count: the highest number it can be.",
     "prob_other_side": "Posterior probability that the unit is really on the other side of the benchmark from its group (for 'typical': the less likely side).",
     "position": "above / spans / below: where the credible interval sits relative to the benchmark.",
     "group": "better / typical / worse than the benchmark, by the rule in the methods ([reporting].grouping).",

@@ -150,3 +150,25 @@ def hostile_cycle(tmp_path_factory):
     (folder / "cycle.toml").write_text(HOSTILE_CONFIG)
     summary = run_cycle(load_config(folder / "cycle.toml"))
     return folder, markers, summary, folder / "site"
+
+
+DEMO_RISK = ["age_band", "sex", "emergency", "heart_failure", "copd", "diabetes", "renal_disease", "cancer"]
+
+
+def demo_counts(inputs: Path) -> pd.DataFrame:
+    """The demo's true cases and counts per measure and unit, from its invented inputs (not from the pipeline).
+
+    Patient rows count where the outcome and every risk factor the measure drops on are recorded
+    (readmit30 drops rows without deprivation_fifth; stay imputes it); pressure comes as unit totals.
+    For stay, ``observed`` is the total of days.
+    """
+    cohort = pd.read_csv(inputs / "cohort.csv")
+    parts = []
+    for measure, outcome, needed in [("readmit30", "readmit30", [*DEMO_RISK, "deprivation_fifth"]), ("death30", "death30", DEMO_RISK),
+                                     ("complication", "complication", DEMO_RISK), ("stay", "los_days", DEMO_RISK)]:
+        rows = cohort.dropna(subset=[outcome, *needed]).groupby("unit_id")[outcome]
+        parts.append(pd.DataFrame({"measure": measure, "unit_id": rows.size().index.astype(str), "cases": rows.size().to_numpy(),
+                                   "observed": rows.sum().to_numpy()}))
+    pressure = pd.read_csv(inputs / "pressure_by_unit.csv", dtype={"unit_id": str})
+    parts.append(pressure.rename(columns={"pressure_injury": "observed"})[["unit_id", "cases", "observed"]].assign(measure="pressure"))
+    return pd.concat(parts, ignore_index=True)

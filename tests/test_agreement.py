@@ -20,6 +20,8 @@ import pytest
 from pipeline import readability
 from pipeline.pages import GROUPS
 
+from .conftest import demo_counts
+
 pytestmark = pytest.mark.slow
 
 GROUP_WORDS = {v: k for k, v in GROUPS.items()}
@@ -81,6 +83,25 @@ def scale(kind: str) -> float:
     return 1.0 if kind == "continuous" else 100.0  # continuous values in the outcome's unit, rates in %
 
 
+def hidden_count(r) -> bool:
+    return r.get("count_status") in ("small", "protects")
+
+
+def assert_count_hidden(shown: dict[str, str], r, where) -> None:
+    """A row whose count is hidden: the range of the download in the Observed cell, and no raw rate, O/E or own data."""
+    for column in ("observed", "raw_rate", "oe_ratio", "own_weight"):
+        assert pd.isna(r[column]), (where, column)
+    observed = col(shown, "Observed")
+    if r["count_status"] == "small":
+        assert numbers(observed) == [r["observed_low"], r["observed_high"]], (where, observed)
+        assert 1 <= r["observed_low"] <= r["observed_high"] <= r["cases"] - 1
+    else:
+        assert observed == "not shown" and pd.isna(r["observed_low"]), (where, observed)
+    for head, cell in shown.items():
+        if head.startswith(("Raw", "O/E", "Own data")):
+            assert cell == "", (where, head, cell)
+
+
 @pytest.fixture(scope="module")
 def published(demo_cycle):
     _, _, site = demo_cycle
@@ -101,9 +122,13 @@ def test_measure_pages_agree_with_the_downloads(published):
         assert set(rows.index) <= set(full), key
         for name, r in rows.iterrows():
             shown = full[name]
-            assert number(shown["Cases"]) == r["cases"] and close(col(shown, "Observed"), r["observed"], 1), (key, name)
+            assert number(shown["Cases"]) == r["cases"], (key, name)
             assert close(col(shown, "Expected"), r["expected"], step(m)), (key, name, shown["Expected"])
-            assert close(shown["O/E"], r["oe_ratio"], 0.01) and r["oe_ratio"] == pytest.approx(r["observed"] / r["expected"], rel=1e-4)
+            if not hidden_count(r):
+                assert close(col(shown, "Observed"), r["observed"], 1), (key, name)
+                assert close(shown["O/E"], r["oe_ratio"], 0.01) and r["oe_ratio"] == pytest.approx(r["observed"] / r["expected"], rel=1e-4)
+            else:  # the small-count rule: the page says what the download says, and nothing that gives the count back
+                assert_count_hidden(shown, r, (key, name))
             adjusted, interval = col(shown, "Adjusted"), col(shown, "95% interval")
             assert close(adjusted, r["rsr_median"] * k, 0.1), (key, name)
             lo, hi = numbers(interval)[:2]
@@ -112,7 +137,8 @@ def test_measure_pages_agree_with_the_downloads(published):
             assert chance_ok(shown["Chance on the other side"], r["prob_other_side"]), (key, name)
             ranks = numbers(shown["Rank"])  # a median rank can end in .5 and is shown rounded
             assert close(ranks[0], r["rank_median"], 1) and ranks[1:] == [r["rank_lower"], r["rank_upper"]], (key, name)
-            assert close(shown["Own data"], r["own_weight"] * 100, 1)
+            if not hidden_count(r):
+                assert close(shown["Own data"], r["own_weight"] * 100, 1)
             # One benchmark: adjusted = ratio x benchmark, draw by draw, so for the medians too.
             assert r["rsr_median"] == pytest.approx(r["ratio_median"] * bench, rel=1e-4)
 
@@ -122,16 +148,18 @@ def test_measure_pages_agree_with_the_downloads(published):
             assert close(chart[name]["Adjusted"], r["rsr_median"] * k, 0.1)
             assert GROUP_WORDS[chart[name]["Group"]] == r["group"]
 
+        counted = rows[~rows.apply(hidden_count, axis=1)]  # units whose count is hidden are left out of both figures
         moves = {r["Unit"]: r for r in table_with(page, "Unit", "Raw", "Adjusted", "Move")}
-        for name, r in rows.iterrows():
+        assert set(moves) == set(counted.index), key
+        for name, r in counted.iterrows():
             mv = moves[name]
             assert close(mv["Raw"], r["raw_rate"] * k, 0.1) and close(mv["Adjusted"], r["rsr_median"] * k, 0.1)
             assert abs(number(mv["Move"]) - (number(mv["Adjusted"]) - number(mv["Raw"]))) <= 0.1 + 1e-9, (key, name)
 
         funnel = {r["Unit"]: r for r in table_with(page, "Value from O/E", "99.8% limits")}
-        assert set(funnel) == set(rows.index), key
+        assert set(funnel) == set(counted.index), key
         outside = 0
-        for name, r in rows.iterrows():
+        for name, r in counted.iterrows():
             f = funnel[name]
             value = r["oe_ratio"] * bench * k
             assert close(f["Value from O/E"], value, 0.1), (key, name)
@@ -151,7 +179,7 @@ def test_measure_pages_agree_with_the_downloads(published):
             outside += verdict != "inside"
         text = " ".join(readability.prose(page))
         said = re.search(r"(\d+) of (\d+) units are outside the outer \(99\.8%\) limits", text)
-        assert said and int(said.group(1)) == outside and int(said.group(2)) == len(rows), (key, said and said.group(0))
+        assert said and int(said.group(1)) == outside and int(said.group(2)) == len(counted), (key, said and said.group(0))
 
         # The benchmark and the typical unit, as stated in words.
         bench_shown = re.search(r"[Ee]ach unit is compared with this (?:rate|mean|average), the benchmark|benchmark is ([\d.,]+)", text)
@@ -182,6 +210,26 @@ def test_binary_expected_counts_add_up_to_the_benchmark(published):
         assert rows["observed"].sum() == pytest.approx(m["events"]), key
 
 
+def test_hidden_counts_add_up_with_the_shown_ones_to_the_network_total(demo_cycle, published):
+    """Counts shown plus the true hidden counts are the network's published total; each true count is in its range."""
+    files, _, _ = demo_cycle
+    _, csv, about = published
+    counts = demo_counts(files.config.parent).set_index(["measure", "unit_id"])["observed"]
+    for key, m in about.items():
+        if m["type"] != "binary":
+            continue
+        rows = csv[csv["measure"] == key].set_index("unit_id")
+        true = counts.loc[key]
+        shown = rows["count_status"] == "shown"
+        assert rows.loc[shown, "observed"].sum() + true[rows.index[~shown]].sum() == m["events"], key
+        assert (rows.loc[shown, "observed"] == true[rows.index[shown]]).all(), key
+        small = rows[rows["count_status"] == "small"]
+        assert ((small["observed_low"] <= true[small.index]) & (true[small.index] <= small["observed_high"])).all(), key
+        assert ((true[small.index] < 11) | (small["cases"] - true[small.index] < 11)).all(), key  # the demo's threshold
+        big = rows[shown & (rows["status"] == "reported")]
+        assert not ((big["observed"].between(1, 10)) | (big["cases"] - big["observed"]).between(1, 10)).any(), key
+
+
 def test_unit_pages_agree_with_the_downloads(published):
     site, csv, about = published
     for unit_id, rows in csv[csv["status"] == "reported"].groupby("unit_id"):
@@ -196,6 +244,10 @@ def test_unit_pages_agree_with_the_downloads(published):
             name = m["name"]
             row = numbers_table[name]
             assert number(row["Cases"]) == r["cases"] and close(row["Expected"], r["expected"], step(m)), (unit_id, name)
+            if hidden_count(r):
+                assert_count_hidden(row, r, (unit_id, name))
+            else:
+                assert close(row["Observed"], r["observed"], 1), (unit_id, name)
             adjusted = col(row, "Adjusted")
             assert close(adjusted, r["rsr_median"] * k, 0.1), (unit_id, name)
             assert close(row["Ratio to the benchmark"], r["ratio_median"], 0.01), (unit_id, name)
@@ -210,6 +262,10 @@ def test_unit_pages_agree_with_the_downloads(published):
             words = text[start:next((i for i in starts if i > start), start + 1200)]
             between = re.search(r"between ([\d.,]+)%?(?: days)? and ([\d.,]+)", words)
             assert between and close(between.group(1), r["rsr_lower"] * k, 0.1) and close(between.group(2), r["rsr_upper"] * k, 0.1), (unit_id, words)
+            if r["count_status"] == "small":
+                assert f"Between {r['observed_low']:,.0f} and {r['observed_high']:,.0f} of its {r['cases']:,.0f} patients had this outcome." in words
+            elif r["count_status"] == "protects":
+                assert "Its exact number of patients with this outcome is not shown" in words
             bench = re.search(r"(?:benchmark|network average) is ([\d.,]+)", words)
             assert bench and close(bench.group(1), m["benchmark"] * k, 0.1), (unit_id, words)
             above = re.search(r"above (?:the benchmark|it) is (less than 1%|more than 99%|\d+%)", words)

@@ -36,7 +36,7 @@ def test_every_problem_is_reported_at_once_with_hints(tmp_path):
     assert found == [
         "cycle.title: is required (Site title shown on every page.)",
         "cycle.renderer: must be one of 'auto', 'quarto', 'builtin'; got 'quatro' Did you mean 'quarto'?",
-        "reporting.minimum_case: unknown key. Did you mean 'minimum_cases'? Allowed: benchmark, funnel_overdispersion, grouping, grouping_probability, interval, minimum_cases.",
+        "reporting.minimum_case: unknown key. Did you mean 'minimum_cases'? Allowed: benchmark, funnel_overdispersion, grouping, grouping_probability, hide_counts_below, interval, minimum_cases.",
         "reporting.interval: must be strictly between 0.5 and 1; got 1.5",
         "sampler.chians: unknown key. Did you mean 'chains'? Allowed: chains, cores, draws, engine, seed, target_accept, tune.",
         "measures[0].type: 'binari' is not an outcome type fairgauge fits. Allowed: binary, continuous. Did you mean 'binary'?",

@@ -20,6 +20,8 @@ from pipeline.errors import FitError, RenderError
 from pipeline.pages import unit_slugs
 from pipeline.sampling import Diagnostics, Sampler
 
+from .conftest import demo_counts
+
 pytestmark = pytest.mark.slow
 
 
@@ -156,9 +158,14 @@ def test_demo_true_effects_are_recovered_at_about_the_nominal_rate(demo_cycle):
     # about 1.5 points, so 89% is 4 SD below nominal.
     assert len(fitted) == 220
     assert 0.89 <= coverage <= 1.0, f"coverage {coverage:.3f}"
-    # Shrinkage must pay off: adjusted ratios closer to the truth than raw O/E ratios.
+    # Shrinkage must pay off: adjusted ratios closer to the truth than raw O/E ratios. The raw ratios come
+    # from the true counts (conftest.demo_counts), since small counts and their O/E are not published.
+    true = demo_counts(files.config.parent).rename(columns={"observed": "true_observed"})
+    fitted = fitted.merge(true[["measure", "unit_id", "true_observed"]], on=["measure", "unit_id"])
+    assert (np.isclose(fitted["observed"], fitted["true_observed"], rtol=1e-9) | fitted["observed"].isna()).all()
+    fitted["oe_ratio"] = fitted["true_observed"] / fitted["expected"]
     error_shrunk = np.sqrt(np.mean(np.log(fitted["ratio_median"] / fitted["true_ratio"]) ** 2))
-    with_events = fitted[fitted["observed"] > 0]
+    with_events = fitted[fitted["true_observed"] > 0]
     error_raw = np.sqrt(np.mean(np.log(with_events["oe_ratio"] / with_events["true_ratio"]) ** 2))
     assert error_shrunk < 0.8 * error_raw, (error_shrunk, error_raw)
 
@@ -263,7 +270,9 @@ def test_groups_ranks_and_weights_follow_their_rules(demo_cycle):
         assert t.loc[t["group"] != "typical", "prob_other_side"].lt(0.025 + 0.01).all()  # outside a 95% interval
         assert t["rank_lower"].le(t["rank_median"]).all() and t["rank_median"].le(t["rank_upper"]).all()
         assert t["rank_upper"].max() <= len(t) and t["rank_lower"].min() >= 1
-        assert t["own_weight"].between(0, 1).all()
+        shown = t["count_status"] == "shown"  # the small-count rule hides the weight with the count (disclosure.py)
+        assert t.loc[shown, "own_weight"].between(0, 1).all() and t.loc[~shown, "own_weight"].isna().all()
+        t = t[shown]
         big, small = t.loc[t["cases"].idxmax()], t.loc[t["cases"].idxmin()]
         assert big["own_weight"] > small["own_weight"]  # large units rest on their own data
         assert [alt["scale"] for alt in r.sensitivity] == [0.5, 2.0]
@@ -315,7 +324,11 @@ def test_a_cycle_of_unit_totals_alone_needs_no_patient_rows(tmp_path):
     table = pd.read_csv(tmp_path / "site" / "downloads" / "results.csv")
     assert summary.patients == 0 and len(table) == n and table["status"].eq("reported").sum() >= n - 1
     reported = table[table["status"] == "reported"]
-    assert (reported["observed"] == pd.Series(observed, index=ids)[reported["unit_id"]].to_numpy()).all()
+    true = pd.Series(observed, index=ids)[reported["unit_id"]].to_numpy()
+    shown = (reported["count_status"] == "shown").to_numpy()
+    assert (reported["observed"].to_numpy()[shown] == true[shown]).all()
+    small = (reported["count_status"] == "small").to_numpy()  # the default small-count rule (11) applies
+    assert small.any() and ((reported["observed_low"].to_numpy()[small] <= true[small]) & (true[small] <= reported["observed_high"].to_numpy()[small])).all()
     # Supplied expected totals are scaled by one factor so the network expects what it observed (benchmark.py).
     factor = observed.sum() / expected.sum()
     np.testing.assert_allclose(reported["expected"], expected[[ids.index(u) for u in reported["unit_id"]]] * factor, rtol=1e-5)

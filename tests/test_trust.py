@@ -24,7 +24,7 @@ from pipeline import readability
 from pipeline.config import load_config
 from pipeline.cycle import MARKER, remove_stale_builds, run_cycle
 from pipeline.errors import RenderError
-from pipeline.results import withhold_complement
+from pipeline.disclosure import protect_units
 
 
 def _files(site: Path) -> list[Path]:
@@ -36,15 +36,21 @@ def _snapshot(folder: Path) -> dict[str, bytes]:
 
 
 def test_complementary_suppression_hides_enough_to_protect_a_lone_small_unit():
-    table = pd.DataFrame({"status": ["reported", "too_few", "reported", "reported", "no_cases"], "cases": [300, 4, 25, 40, 0]})
-    withhold_complement(table, 11)
+    table = pd.DataFrame({"unit_id": list("abcde"), "status": ["reported", "too_few", "reported", "reported", "no_cases"], "cases": [300, 4, 25, 40, 0]})
+    protect_units(table, 11)
     assert table["status"].tolist() == ["reported", "too_few", "withheld", "reported", "no_cases"]
-    two_small = pd.DataFrame({"status": ["too_few", "too_few", "reported"], "cases": [6, 7, 90]})
-    withhold_complement(two_small, 11)  # 6 + 7 >= 11 and two units: nothing more to hide
+    two_small = pd.DataFrame({"unit_id": list("abc"), "status": ["too_few", "too_few", "reported"], "cases": [6, 7, 90]})
+    protect_units(two_small, 11)  # 6 + 7 >= 11 and two units: nothing more to hide
     assert two_small["status"].tolist() == ["too_few", "too_few", "reported"]
-    tiny = pd.DataFrame({"status": ["too_few", "too_few", "reported", "reported"], "cases": [2, 3, 50, 20]})
-    withhold_complement(tiny, 11)  # 2 + 3 < 11: the smallest reported unit joins them
+    tiny = pd.DataFrame({"unit_id": list("abcd"), "status": ["too_few", "too_few", "reported", "reported"], "cases": [2, 3, 50, 20]})
+    protect_units(tiny, 11)  # 2 + 3 < 11: the smallest reported unit joins them
     assert tiny["status"].tolist() == ["too_few", "too_few", "reported", "withheld"]
+    # A unit of 1 case and a withheld unit of 11: a reader knows the withheld unit has at least 11
+    # cases and at most as many as the smallest unit shown, so 12 hidden cases would give 1 and 11
+    # back. A second unit is withheld.
+    pinned_pair = pd.DataFrame({"unit_id": list("abcd"), "status": ["too_few", "reported", "reported", "reported"], "cases": [1, 11, 30, 200]})
+    protect_units(pinned_pair, 11)
+    assert pinned_pair["status"].tolist() == ["too_few", "withheld", "withheld", "reported"]
 
 
 @pytest.mark.slow
