@@ -18,8 +18,9 @@ Routes (each tried on every hidden value it applies to; ``Report.tries`` counts 
 ``ratio``        O/E x expected, the same way;
 ``weight``       the share of own data, which with the published between-unit SD gives the count back
                  (treated as a leak when published at all: counted, not solved);
-``cell``         a page's table cell under an Observed, Raw or O/E heading, in the unit's row (pages,
-                 figure data tables, the Quarto sources), solved as above;
+``cell``         a table cell under an Observed, Raw, O/E or Own data heading, in the unit's row of the
+                 measure's page or the measure's row of the unit's page (tables of numbers, figure data
+                 tables, the Quarto sources' pipe tables), solved as above;
 ``words``        a sentence, alt text, title or search-index entry that names the unit and says
                  "k of n" (or "k among n", "k out of n", "k/n") with n its published cases;
 ``total``        the network's published total minus every count shown: an exact audit (every whole
@@ -27,8 +28,14 @@ Routes (each tried on every hidden value it applies to; ``Report.tries`` counts 
                  to the total), by dynamic programming over sums, not the pipeline's interval arithmetic
                  (a count worked out to be zero is not counted: the rule shows zeros);
 ``cases total``  the same for withheld units' cases, from the network's published number of patients;
-``other cycle``  any of the routes above applied to the files of every other cycle given (a later site
-                 re-publishing an earlier cycle's table, or an earlier history kept unblanked).
+``... (other cycle)``  the field, rate, ratio and weight routes on another cycle's tables that carry this
+                 cycle's period in a ``period`` column, and the words route on another cycle's sentences
+                 that name this cycle's period (a later site re-publishing an earlier cycle's counts).
+
+What it does not try, and why: inverting the model (adjusted values blend the unit's count with the
+network's; :func:`guess_by_inversion` measures how often a best guess is right, since such a guess
+cannot be confirmed from the site); network-level tables (risk groups of the case-mix fit's
+calibration, which pool patients of every unit); subtotals by unit kind (the site publishes none).
 """
 
 from __future__ import annotations
@@ -127,6 +134,13 @@ class _Page(HTMLParser):
         self._flush()
 
 
+def _js_string(body: str) -> str:
+    try:
+        return json.loads(f'"{body}"')
+    except ValueError:
+        return body
+
+
 def _markdown_tables(text: str) -> list[dict]:
     """Pipe tables of a Quarto source: header cells and body rows."""
     tables, lines = [], text.splitlines()
@@ -199,7 +213,7 @@ def read_site(site: Path, extra_tables: list[Path] = ()) -> Published:
             out.pages.append((name, page.fragments, page.tables))
         elif path.suffix == ".js":
             found = re.findall(r'"((?:[^"\\]|\\.)*)"', text)
-            out.pages.append((name, [html.unescape(json.loads(f'"{s}"')) for s in found], []))
+            out.pages.append((name, [html.unescape(_js_string(s)) for s in found], []))
         else:
             fragments = [" ".join(line.split()) for line in re.split(r"\n\s*\n|(?<=\.)\s", text) if line.strip()]
             out.pages.append((name, fragments, _markdown_tables(text)))
@@ -237,8 +251,6 @@ def solve(published: str, divisor: float, most: int) -> list[int]:
     if v is None or not divisor or not math.isfinite(divisor):
         return []
     step = 0.5 * 10 ** -_decimals(published)
-    if not str(published).strip().endswith("%") and "e" in str(published).lower():
-        step = abs(v) * 5e-6  # csv written with six significant digits
     lo, hi = (v - step) * divisor, (v + step) * divisor
     return [k for k in range(max(0, math.ceil(lo - 1e-9)), min(most, math.floor(hi + 1e-9)) + 1)]
 

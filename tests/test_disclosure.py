@@ -101,3 +101,14 @@ def test_the_rule_off_shows_every_count():
     t = _table([100, 200], [4, 30])
     hide_small_counts(t, 0, 11)
     assert t["count_status"].tolist() == ["shown", "shown"] and t["observed"].tolist() == [4, 30]
+
+
+def test_a_hidden_count_worked_out_to_be_zero_needs_no_protection():
+    # The network total says the unit too small to show had no patient with the outcome: what a shown zero says.
+    t = _table([5, 100, 200], [0, 30, 40], status=["too_few", "reported", "reported"])
+    hide_small_counts(t, 11, 11)
+    assert t["count_status"].tolist() == ["", "shown", "shown"]
+    # A measure on which no unit is reported at all is not an error either.
+    t = _table([3, 3], [1, 2], status=["too_few", "too_few"])
+    hide_small_counts(t, 11, 11)
+    assert t["count_status"].tolist() == ["", ""] and t["observed"].isna().all()
