@@ -160,12 +160,12 @@ def _check_outcome(rows: pd.DataFrame, column: str, kind: str, where: str, probl
             sample = numeric[bad].iloc[0]
             problems.append(Problem(f"{where}, column '{column}'", f"must be 0 or 1 for a binary measure; found {sample:g} at {_rows(bad)}."))
     elif kind == "continuous":
-        bad = numeric.notna() & ~(numeric > 0) | ~np.isfinite(numeric.fillna(1.0))
+        bad = numeric.notna() & ~(numeric > 0) | ~np.isfinite(numeric.fillna(1.0)) | numeric.ge(TOO_LARGE)
         if bad.any():
             sample = numeric[bad].iloc[0]
             problems.append(Problem(
                 f"{where}, column '{column}'",
-                f"must be a positive number for a continuous measure (gamma and log-normal models need values above 0); found {sample:g} at {_rows(bad)}. "
+                f"must be a positive number below {TOO_LARGE:g} for a continuous measure (gamma and log-normal models need values above 0); found {sample:g} at {_rows(bad)}. "
                 "For stays shorter than a day, record the fraction of a day (e.g. 0.5).",
             ))
 
@@ -176,13 +176,41 @@ def _check_expected(rows: pd.DataFrame, column: str, kind: str, where: str, prob
     if kind == "binary":
         bad, allowed = ~((values > 0) & (values < 1)), "a risk strictly between 0 and 1"
     else:
-        bad, allowed = ~((values > 0) & np.isfinite(values)), "a positive number"
+        bad, allowed = ~((values > 0) & (values < TOO_LARGE)), f"a positive number below {TOO_LARGE:g}"
     if bad.any():
         sample = rows[column][bad].iloc[0]
         problems.append(Problem(f"{where}, column '{column}'", f"must hold {allowed} for every row (a supplied expected value); found '{sample}' at {_rows(bad)}."))
 
 
-def _check_risk_factor(rows: pd.DataFrame, column: str, where: str, problems: list[Problem], stop_on_missing: bool = True) -> None:
+TOO_LARGE = 1e12  # a magnitude no risk factor, outcome or expected value in these reports reaches (common practice, no source)
+FAR_OUT = 100  # a value this many interquartile ranges from the median is counted in a warning
+
+
+def _check_magnitude(numeric: pd.Series, column: str, where: str, problems: list[Problem], warnings: list[str]) -> None:
+    """Numbers the fits can use: finite, below TOO_LARGE in size; values far from the rest are counted in a warning."""
+    infinite = pd.Series(np.isinf(numeric.to_numpy(dtype=float)), index=numeric.index)
+    if infinite.any():
+        sample = numeric[infinite].iloc[0]
+        problems.append(Problem(f"{where}, column '{column}'", f"must hold finite numbers; found {sample} at {_rows(infinite)}. "
+                                "Replace the value, or leave the cell empty if it is unknown."))
+    huge = numeric.abs().ge(TOO_LARGE) & ~infinite
+    if huge.any():
+        sample = numeric[huge].iloc[0]
+        problems.append(Problem(f"{where}, column '{column}'", f"has a value too large to fit ({sample:g}; allowed: below {TOO_LARGE:g} "
+                                f"in size) at {_rows(huge)}. Check the extract, or rescale the column."))
+    usable = numeric[np.isfinite(numeric.to_numpy(dtype=float)) & ~huge]
+    if len(usable) >= 4:
+        low, median, high = usable.quantile([0.25, 0.5, 0.75])
+        spread = high - low
+        if spread > 0:
+            far = (numeric - median).abs().gt(FAR_OUT * spread) & ~infinite & ~huge
+            if far.any():
+                warnings.append(f"{where}, column '{column}': {int(far.sum())} value(s) lie more than {FAR_OUT} interquartile "
+                                f"ranges from the median (such as {numeric[far].iloc[0]:g}, at {_rows(far)}); check that they are real.")
+
+
+def _check_risk_factor(rows: pd.DataFrame, column: str, where: str, problems: list[Problem], stop_on_missing: bool = True,
+                       warnings: list[str] | None = None) -> None:
     values = rows[column]
     missing = values.isna()
     if missing.any() and stop_on_missing:
@@ -202,6 +230,8 @@ def _check_risk_factor(rows: pd.DataFrame, column: str, where: str, problems: li
             problems.append(
                 Problem(f"{where}, column '{column}'", f"looks numeric but has text such as '{sample}' at {_rows(odd)}; use numbers only, or wrap the column in C() if it is a category.")
             )
+    elif pd.api.types.is_numeric_dtype(values) and not pd.api.types.is_bool_dtype(values):
+        _check_magnitude(values.astype(float), column, where, problems, warnings if warnings is not None else [])
 
 
 def _check_comparable(config: CycleConfig, rows: pd.DataFrame, unit_col: str, where: str, problems: list[Problem]) -> None:
@@ -293,7 +323,7 @@ def load_cohort(config: CycleConfig) -> Cohort:
             "or publish them, but they should not be in the extract at all: remove them at the source."
         )
     for v in dict.fromkeys(risk_factors):
-        _check_risk_factor(rows, v, c_where, problems, stop_on_missing[v])
+        _check_risk_factor(rows, v, c_where, problems, stop_on_missing[v], warnings)
     if problems:
         raise InputError(problems)
 
@@ -389,7 +419,7 @@ def load_summary(path: Path, observed: str, unit_col: str, unit_ids: pd.Index, p
     numbers = {c: pd.to_numeric(frame[c], errors="coerce") for c in ("cases", observed, "expected")}
     cases, events, expected = numbers["cases"], numbers[observed], numbers["expected"]
     checks = [
-        ("cases", ~((cases >= 1) & (cases == cases.round())), "must be a whole number of at least 1"),
+        ("cases", ~((cases >= 1) & (cases < TOO_LARGE) & (cases == cases.round())), f"must be a whole number from 1 to below {TOO_LARGE:g}"),
         (observed, ~((events >= 0) & (events == events.round()) & (events <= cases)), "must be a whole number from 0 to the unit's cases"),
         ("expected", ~((expected > 0) & (expected < cases)), "must be a number above 0 and below the unit's cases"),
     ]

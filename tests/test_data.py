@@ -5,6 +5,7 @@ from __future__ import annotations
 import shutil
 from pathlib import Path
 
+import pandas as pd
 import pytest
 
 from pipeline.config import load_config
@@ -60,3 +61,16 @@ def test_formula_variables_skip_function_names():
     assert formula_variables("C(age_band) + np.log(weight) + a:b + bs(age, df=3)") == ["age_band", "weight", "a", "b", "age"]
     with pytest.raises(ValueError, match="is not a valid formula"):
         formula_variables("age +")
+
+
+def test_a_value_far_from_the_rest_is_counted_in_a_warning(cycle_folder):
+    """A finite but implausible risk factor (an age of 5,000) is a warning at the data stage, not a crash later."""
+    from .conftest import small_cohort
+
+    units, cohort = small_cohort()
+    cohort = pd.concat([cohort] * 3, ignore_index=True)
+    cohort["stay_id"] = [f"s{i}" for i in range(len(cohort))]
+    cohort.loc[4, "age"] = 5000
+    loaded = load_cohort(load_config(cycle_folder(units=units, cohort=cohort)))
+    far = [w for w in loaded.warnings if "column 'age'" in w]
+    assert far and "1 value(s) lie more than 100 interquartile ranges from the median (such as 5000, at row 5)" in far[0]
