@@ -1,6 +1,6 @@
 #!/usr/bin/env bash
 # Installs everything the test suite needs, then nothing else:
-#   - fairgauge with its test extras (pytest, scikit-learn, textstat, playwright);
+#   - fairgauge with its test extras (pytest, scikit-learn, textstat, playwright, hypothesis);
 #   - Debian's chromium for the browser tests (Playwright's own browser download is not used);
 #   - Debian's postgresql for the database tests (they start and stop their own throwaway server);
 #   - axe-core from npm, for the accessibility checks (into ./node_modules, not saved anywhere else).
