@@ -31,6 +31,7 @@ class FigureView:
     alt: str  # attribute-safe text
     head: list[str] = field(default_factory=list)
     rows: list[list[str]] = field(default_factory=list)
+    kind: str = ""  # intervals, movement, funnel, position, trend, roc or calibration: templates place a figure by it
 
 
 def _names(names: list[str], md) -> str:
@@ -61,7 +62,7 @@ def intervals(src: str, png: str, data: pd.DataFrame, fmt, span, benchmark: str,
            f"Lowest: {attr(low['unit_name'])}, {fmt(low['rsr'])}; highest: {attr(high['unit_name'])}, {fmt(high['rsr'])}.")
     rows = [[md(r.unit_name), fmt(r.rsr), span(r.lo, r.hi), GROUPS[r.group]] for r in data.itertuples()]
     return FigureView(src, png, f"Each unit's adjusted value (marker) and {level} credible interval (line). The dashed line is the benchmark.",
-                      alt, ["Unit", "Adjusted", f"{level} interval", "Group"], rows)
+                      alt, ["Unit", "Adjusted", f"{level} interval", "Group"], rows, kind="intervals")
 
 
 def movement(src: str, png: str, data: pd.DataFrame, fmt, benchmark: str, points: str, md) -> FigureView:
@@ -75,7 +76,7 @@ def movement(src: str, png: str, data: pd.DataFrame, fmt, benchmark: str, points
            f"The largest move is {attr(top['unit_name'])}, from {fmt(top['raw'])} to {fmt(top['adjusted'])}. The benchmark is {benchmark}.")
     rows = [[md(r.unit_name), f"{r.cases:,}", fmt(r.raw), fmt(r.adjusted), f"{r.adjusted - r.raw:+.1f}"] for r in data.iloc[::-1].itertuples()]
     return FigureView(src, png, "Each line runs from a unit's raw value (hollow circle) to its adjusted value (marker). Small units are pulled further towards the typical unit.",
-                      alt, ["Unit", "Cases", "Raw", "Adjusted", "Move"], rows)
+                      alt, ["Unit", "Cases", "Raw", "Adjusted", "Move"], rows, kind="movement")
 
 
 def funnel(src: str, png: str, points: pd.DataFrame, fmt, benchmark: str, counts: dict, phi: float, widened: bool, md) -> FigureView:
@@ -94,7 +95,8 @@ def funnel(src: str, png: str, points: pd.DataFrame, fmt, benchmark: str, counts
     return FigureView(src, png, ("Each marker is a unit. Its height is what the unit observed, divided by what was expected for its patients (O/E), "
                       "times the benchmark. This uses the unit's own counts only, with no pull towards other units. "
                       "The funnel lines show how far from the benchmark a unit with that many expected events could land by chance alone (95% and 99.8% of the time)."),
-                      alt, ["Unit", "Cases", "Expected", "Value from O/E", "95% limits", "99.8% limits", "Against the 99.8% limits"], rows)
+                      alt, ["Unit", "Cases", "Expected", "Value from O/E", "95% limits", "99.8% limits", "Against the 99.8% limits"], rows,
+                      kind="funnel")
 
 
 def position(src: str, data: pd.DataFrame, unit_name: str, md) -> FigureView:
@@ -108,7 +110,7 @@ def position(src: str, data: pd.DataFrame, unit_name: str, md) -> FigureView:
     rows = [[md(r.measure), "" if pd.isna(r.ratio) else f"{r.ratio:.2f}", "" if pd.isna(r.ratio) else f"{r.lo:.2f} to {r.hi:.2f}",
              "not reported" if pd.isna(r.ratio) else GROUPS[r.group]] for r in data.itertuples()]
     return FigureView(src, "", "A ratio of 1 means as many events as expected for these patients. The shaded band is where most units sit; the dashed line is the benchmark.",
-                      alt, ["Measure", "Ratio to the benchmark", "Interval", "Group"], rows)
+                      alt, ["Measure", "Ratio to the benchmark", "Interval", "Group"], rows, kind="position")
 
 
 def trend(src: str, data: pd.DataFrame, unit_name: str, md) -> FigureView:
@@ -118,4 +120,4 @@ def trend(src: str, data: pd.DataFrame, unit_name: str, md) -> FigureView:
     alt = f"Chart of {attr(unit_name)}'s adjusted value in each cycle, one panel per measure (percent for rates). " + "; ".join(parts) + "."
     rows = [[md(r.measure), md(r.period), f"{r.value:.1f}", f"{r.lo:.1f} to {r.hi:.1f}"] for r in data.sort_values(["measure", "order"]).itertuples()]
     return FigureView(src, "", "Each point is the adjusted value published for that cycle, with its interval. Methods and coding can change between cycles.",
-                      alt, ["Measure", "Cycle", "Adjusted value", "Interval"], rows)
+                      alt, ["Measure", "Cycle", "Adjusted value", "Interval"], rows, kind="trend")

@@ -112,7 +112,7 @@ def _roc_figure(m: MeasureResult, path: str) -> FigureView:
     cv = at(v.cross_validated.roc) if v.cross_validated is not None else None
     rows = [[f"{g:.2f}", f"{a:.3f}", f"{cv[i]:.3f}" if cv is not None else ""] for i, (g, a) in enumerate(zip(grid, inside))]
     return FigureView(path, "", "ROC curve: the further above the dotted diagonal, the better the model tells patients apart.", attr(_alt_roc(m)),
-                      ["False-positive rate", "True-positive rate, in sample", "True-positive rate, cross-validated"], rows)
+                      ["False-positive rate", "True-positive rate, in sample", "True-positive rate, cross-validated"], rows, kind="roc")
 
 
 def _calibration_figure(m: MeasureResult, path: str, unit: str) -> FigureView:
@@ -124,7 +124,7 @@ def _calibration_figure(m: MeasureResult, path: str, unit: str) -> FigureView:
              f"{cvg['observed_mean'].iloc[i] * k:.2f}" if cvg is not None and i < len(cvg) else ""]
             for i, g in v.in_sample.groups.iterrows()]
     return FigureView(path, "", "Calibration: observed against expected by risk group; points on the dotted diagonal are perfectly calibrated.",
-                      attr(_alt_calibration(m, unit)), ["Risk group", f"Expected ({unit})", f"Observed ({unit})", "Expected, cross-validated", "Observed, cross-validated"], rows)
+                      attr(_alt_calibration(m, unit)), ["Risk group", f"Expected ({unit})", f"Observed ({unit})", "Expected, cross-validated", "Observed, cross-validated"], rows, kind="calibration")
 
 
 def _alt_roc(m: MeasureResult) -> str:

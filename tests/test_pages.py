@@ -133,3 +133,16 @@ def test_history_keeps_each_units_address(tmp_path):
     record_cycle(tmp_path, "Cycle one", table, [], {"built": "now"}, {"a": "a", "B/2": "b-2"})
     record_cycle(tmp_path, "Cycle two", table, [], {"built": "now"}, {"a": "a-renamed"})
     assert kept_addresses(past_cycles(tmp_path, "Cycle three")) == {"a": "a-renamed", "B/2": "b-2"}
+
+
+def test_templates_place_figures_by_their_kind_never_by_their_file_name():
+    """A unit or measure whose address contains "position-" or "funnel-" must not move a chart under another heading."""
+    import pandas as pd
+
+    from pipeline import captions, templates_path
+
+    for template in sorted((templates_path() / "qmd").glob("*.j2")):
+        assert not re.search(r"in f\.src", template.read_text()), template.name
+    data = pd.DataFrame({"measure": ["M"], "period": ["P"], "order": [0], "value": [1.0], "lo": [0.5], "hi": [1.5]})
+    trend = captions.trend("figures/trend-unit-position-x.svg", data, "Unit position-x", lambda s: s)
+    assert trend.kind == "trend"
