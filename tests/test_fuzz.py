@@ -30,33 +30,16 @@ from pipeline.config import load_config
 from pipeline.data import load_cohort
 from pipeline.errors import ConfigError, FitError, InputError
 
+from .conftest import BASE_CONFIG
+
 pytestmark = pytest.mark.fuzz
 EXAMPLES = int(os.environ.get("FAIRGAUGE_FUZZ_EXAMPLES", "300"))
 FUZZ = settings(max_examples=EXAMPLES, deadline=None, suppress_health_check=[HealthCheck.too_slow], derandomize=True)
 
-CONFIG = """
-[cycle]
-title = "Fuzz network (invented)"
-publisher = "Fuzz publisher"
-period = "Fuzz period"
-output = "site"
-renderer = "builtin"
-
-[inputs]
-cohort = "cohort.csv"
-units = "units.csv"
-record_column = "stay_id"
-
+CONFIG = BASE_CONFIG + """
 [reporting]
 minimum_cases = 3
 hide_counts_below = 3
-
-[[measures]]
-key = "readmit"
-name = "Readmission"
-definition = "Readmitted within 30 days."
-outcome = "readmit"
-casemix = "age + C(sex)"
 
 [[measures]]
 key = "stay"
@@ -74,7 +57,7 @@ name = "Falls"
 definition = "Falls on the ward."
 outcome = "falls"
 summary = "falls.csv"
-"""
+"""  # the shared test config (one binary measure, readmit) plus a continuous measure and unit totals
 
 ODD_VALUES = ["", "abc", "inf", "-inf", "nan", "NaN", "1e308", "-1e308", "-5", "0", "2", "1,5", "9" * 40, "\u00e9t\u00e9",
               "  ", "NULL", "None", "TRUE", "0x1F", "1e-320", "\u2212" + "3", "3.0", "1 000"]
@@ -222,7 +205,7 @@ CONFIG_EDITS = [
     ('renderer = "builtin"', ['renderer = "quartoo"', "renderer = 1", 'renderer = "builtin"\nrenderer = "quarto"']),
     ('record_column = "stay_id"', ['record_column = "stay"', "record_column = 5"]),
     ('[inputs]', ['[inputs]\nunknown = 1', '[input]']),
-    ('title = "Fuzz network (invented)"', ['title = ""', 'title = """', "title = 3"]),
+    ('title = "Test network"', ['title = ""', 'title = """', "title = 3"]),
 ]
 
 
