@@ -32,6 +32,8 @@ _IDENTIFIER = re.compile(
     re.IGNORECASE,
 )
 _SHOW_ROWS = 5  # offending rows quoted per problem
+TOO_LARGE = 1e12  # a magnitude no risk factor, outcome or expected value in these reports reaches (common practice, no source)
+FAR_OUT = 100  # a value this many interquartile ranges from the median is counted in a warning
 
 
 @dataclass(frozen=True)
@@ -182,10 +184,6 @@ def _check_expected(rows: pd.DataFrame, column: str, kind: str, where: str, prob
         problems.append(Problem(f"{where}, column '{column}'", f"must hold {allowed} for every row (a supplied expected value); found '{sample}' at {_rows(bad)}."))
 
 
-TOO_LARGE = 1e12  # a magnitude no risk factor, outcome or expected value in these reports reaches (common practice, no source)
-FAR_OUT = 100  # a value this many interquartile ranges from the median is counted in a warning
-
-
 def _check_magnitude(numeric: pd.Series, column: str, where: str, problems: list[Problem], warnings: list[str]) -> None:
     """Numbers the fits can use: finite, below TOO_LARGE in size; values far from the rest are counted in a warning."""
     infinite = pd.Series(np.isinf(numeric.to_numpy(dtype=float)), index=numeric.index)
@@ -209,8 +207,8 @@ def _check_magnitude(numeric: pd.Series, column: str, where: str, problems: list
                                 f"ranges from the median (such as {numeric[far].iloc[0]:g}, at {_rows(far)}); check that they are real.")
 
 
-def _check_risk_factor(rows: pd.DataFrame, column: str, where: str, problems: list[Problem], stop_on_missing: bool = True,
-                       warnings: list[str] | None = None) -> None:
+def _check_risk_factor(rows: pd.DataFrame, column: str, where: str, problems: list[Problem], stop_on_missing: bool,
+                       warnings: list[str]) -> None:
     values = rows[column]
     missing = values.isna()
     if missing.any() and stop_on_missing:
@@ -231,7 +229,7 @@ def _check_risk_factor(rows: pd.DataFrame, column: str, where: str, problems: li
                 Problem(f"{where}, column '{column}'", f"looks numeric but has text such as '{sample}' at {_rows(odd)}; use numbers only, or wrap the column in C() if it is a category.")
             )
     elif pd.api.types.is_numeric_dtype(values) and not pd.api.types.is_bool_dtype(values):
-        _check_magnitude(values.astype(float), column, where, problems, warnings if warnings is not None else [])
+        _check_magnitude(values.astype(float), column, where, problems, warnings)
 
 
 def _check_comparable(config: CycleConfig, rows: pd.DataFrame, unit_col: str, where: str, problems: list[Problem]) -> None:

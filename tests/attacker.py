@@ -166,7 +166,6 @@ class Published:
     site: Path
     tables: list[tuple[str, pd.DataFrame]] = field(default_factory=list)  # downloads: (file, table)
     pages: list[tuple[str, list[str], list[dict]]] = field(default_factory=list)  # (file, text fragments, tables)
-    files: int = 0
 
 
 def _json_tables(data) -> list[pd.DataFrame]:
@@ -198,7 +197,6 @@ def read_site(site: Path, extra_tables: list[Path] = ()) -> Published:
         name = path.relative_to(site).as_posix()
         if path.suffix not in TEXT_SUFFIXES:
             continue
-        out.files += 1
         text = path.read_text("utf-8", errors="replace")
         if path.suffix == ".csv":
             out.tables.append((name, pd.read_csv(io.StringIO(text), dtype=str, keep_default_na=False)))
@@ -218,7 +216,6 @@ def read_site(site: Path, extra_tables: list[Path] = ()) -> Published:
             fragments = [" ".join(line.split()) for line in re.split(r"\n\s*\n|(?<=\.)\s", text) if line.strip()]
             out.pages.append((name, fragments, _markdown_tables(text)))
     for path in extra_tables:
-        out.files += 1
         out.tables.append((str(path), pd.read_csv(path, dtype=str, keep_default_na=False)))
     return out
 
