@@ -35,7 +35,13 @@ def invent(patients: int, units: int, seed: int = 1) -> tuple[pd.DataFrame, np.n
     numeric = rng.normal(severity[unit][:, None], 1.0, (patients, 5))
     binary = rng.random((patients, 10)) < expit(-1.5 + severity[unit][:, None])
     b_num, b_bin = np.linspace(0.5, 0.1, 5), np.linspace(0.6, 0.05, 10)
-    eta = -2.2 + numeric @ b_num + binary @ b_bin + 0.3 * severity[unit] + rng.normal(0, 0.2, units)[unit]
+    eta = (
+        -2.2
+        + numeric @ b_num
+        + binary @ b_bin
+        + 0.3 * severity[unit]
+        + rng.normal(0, 0.2, units)[unit]
+    )
     rows = pd.DataFrame(numeric, columns=[f"x{i}" for i in range(5)])
     for j in range(10):
         rows[f"c{j}"] = binary[:, j].astype(np.int8)
@@ -55,20 +61,37 @@ def main() -> None:
     args = parser.parse_args()
     rows, unit = invent(args.patients, args.units)
     formula = " + ".join([f"x{i}" for i in range(5)] + [f"c{j}" for j in range(10)])
-    measure = MeasureSection(key="bench", name="Bench", definition="d", outcome="y", casemix=formula)
-    print(f"{args.patients:,} patients, {args.units} units, 15 risk factors, {int(rows['y'].sum()):,} events; memory after making data {peak_gib():.2f} GiB")
+    measure = MeasureSection(
+        key="bench", name="Bench", definition="d", outcome="y", casemix=formula
+    )
+    print(
+        f"{args.patients:,} patients, {args.units} units, 15 risk factors, "
+        f"{int(rows['y'].sum()):,} events; memory after making data {peak_gib():.2f} GiB"
+    )
 
     start = time.perf_counter()
     fit, x, y = fit_with_design(measure, rows, unit)
     fitted = time.perf_counter()
-    v = validate(fit, True, y, x, unit[fit.used], folds=5, groups=10, threshold=float(y.mean()), seed=1)
+    v = validate(
+        fit, True, y, x, unit[fit.used], folds=5, groups=10, threshold=float(y.mean()), seed=1
+    )
     done = time.perf_counter()
     total = done - start
-    print(f"case-mix fit ({fit.solver}): {fitted - start:.1f} s; 5-fold validation: {done - fitted:.1f} s; "
-          f"total {total:.1f} s; target {TARGET_SECONDS:.0f} s; ratio to target {total / TARGET_SECONDS:.2f}")
-    print(f"peak memory {peak_gib():.2f} GiB; target {TARGET_GIB:.0f} GiB; ratio to target {peak_gib() / TARGET_GIB:.2f}")
-    print(f"C-statistic in sample {v.in_sample.values['c_statistic']:.4f}, cross-validated {v.cross_validated.values['c_statistic']:.4f}; "
-          f"calibration slope cross-validated {v.cross_validated.values['calibration_slope']:.3f}")
+    print(
+        f"case-mix fit ({fit.solver}): {fitted - start:.1f} s; 5-fold validation: "
+        f"{done - fitted:.1f} s; "
+        f"total {total:.1f} s; target {TARGET_SECONDS:.0f} s; ratio to target "
+        f"{total / TARGET_SECONDS:.2f}"
+    )
+    print(
+        f"peak memory {peak_gib():.2f} GiB; target {TARGET_GIB:.0f} GiB; ratio to target "
+        f"{peak_gib() / TARGET_GIB:.2f}"
+    )
+    print(
+        f"C-statistic in sample {v.in_sample.values['c_statistic']:.4f}, cross-validated "
+        f"{v.cross_validated.values['c_statistic']:.4f}; "
+        f"calibration slope cross-validated {v.cross_validated.values['calibration_slope']:.3f}"
+    )
     if args.skip_peer:
         return
     from scipy import sparse
@@ -80,9 +103,12 @@ def main() -> None:
     peer = LogisticRegression(C=np.inf, solver="lbfgs", max_iter=2000, tol=1e-8).fit(design, y)
     peer_seconds = time.perf_counter() - start
     gap = np.max(np.abs(peer.coef_[0, : x.shape[1]] - fit.coefficients["estimate"].to_numpy()))
-    print(f"peer: scikit-learn LogisticRegression (lbfgs, unit one-hot columns), one fit: {peer_seconds:.1f} s; "
-          f"fairgauge fit + 5-fold validation / peer single fit = {total / peer_seconds:.2f}; "
-          f"largest coefficient difference {gap:.2e}")
+    print(
+        "peer: scikit-learn LogisticRegression (lbfgs, unit one-hot columns), one fit: "
+        f"{peer_seconds:.1f} s; "
+        f"fairgauge fit + 5-fold validation / peer single fit = {total / peer_seconds:.2f}; "
+        f"largest coefficient difference {gap:.2e}"
+    )
 
 
 if __name__ == "__main__":

@@ -45,7 +45,12 @@ def invent(kind: str, units: int, seed: int):
     sizes = np.round(np.exp(rng.uniform(np.log(20), np.log(3000), units))).astype(int)
     unit = np.repeat(np.arange(units), sizes)
     severity = rng.normal(0, 0.5, units)
-    x = np.column_stack([rng.normal(severity[unit], 1.0), (rng.random(len(unit)) < expit(-1 + severity[unit])).astype(float)])
+    x = np.column_stack(
+        [
+            rng.normal(severity[unit], 1.0),
+            (rng.random(len(unit)) < expit(-1 + severity[unit])).astype(float),
+        ]
+    )
     if kind == "severity":
         effect = 0.4 * severity + rng.normal(0, 0.2, units)
     else:
@@ -58,7 +63,9 @@ def invent(kind: str, units: int, seed: int):
 def one_network(kind: str, units: int, seed: int, samplers: dict) -> dict[str, dict[str, float]]:
     x, y, unit, sizes, p_true = invent(kind, units, seed)
     rows = pd.DataFrame(x, columns=["x1", "x2"]).assign(y=y)
-    measure = MeasureSection(key="bench", name="Bench", definition="d", outcome="y", casemix="x1 + x2")
+    measure = MeasureSection(
+        key="bench", name="Bench", definition="d", outcome="y", casemix="x1 + x2"
+    )
     casemix, _, y_used = fit_with_design(measure, rows, unit)
     offset, expected, _ = benchmark_offset("network", measure, casemix, y_used, unit)
     e_unit = np.bincount(unit, weights=expected, minlength=units)
@@ -67,12 +74,26 @@ def one_network(kind: str, units: int, seed: int, samplers: dict) -> dict[str, d
     ids = [str(i) for i in range(units)]
     present = np.ones(units, bool)
     mean_risk = pd.Series(offset).groupby(unit).mean().to_numpy()
-    w = design(PREDICTORS, ids, present, sizes.astype(float), mean_risk, pd.Series("unit", index=ids), pd.DataFrame(index=ids)).w
+    w = design(
+        PREDICTORS,
+        ids,
+        present,
+        sizes.astype(float),
+        mean_risk,
+        pd.Series("unit", index=ids),
+        pd.DataFrame(index=ids),
+    ).w
     out = {}
-    for model, cells in (("one common target", plain), ("with predictors", plain.with_predictors(w))):
+    for model, cells in (
+        ("one common target", plain),
+        ("with predictors", plain.with_predictors(w)),
+    ):
         p = 0 if cells.w is None else cells.w.shape[1]
         if p not in samplers:
-            samplers[p] = Sampler(ShrinkageSpec(predictors=p), SamplerSection(chains=4, draws=1000, tune=1000, cores=2, seed=1))
+            samplers[p] = Sampler(
+                ShrinkageSpec(predictors=p),
+                SamplerSection(chains=4, draws=1000, tune=1000, cores=2, seed=1),
+            )
         draws, diagnostics = samplers[p].run(cells, seed=seed)
         ratio = unit_draws(cells, draws).ratio
         lo95, hi95 = np.quantile(ratio, [0.025, 0.975], axis=0)
@@ -86,7 +107,8 @@ def one_network(kind: str, units: int, seed: int, samplers: dict) -> dict[str, d
             "small_worse": int(small_worse.sum()),
             "flagged": int((small_worse & (lo95 > 1)).sum()),
             "false_flags": int(((true_ratio <= 1) & (lo95 > 1)).sum()),
-            "divergences": diagnostics.divergences, "rhat": diagnostics.rhat_max,
+            "divergences": diagnostics.divergences,
+            "rhat": diagnostics.rhat_max,
         }
     return out
 
@@ -103,9 +125,14 @@ def main() -> None:
         for n in range(args.networks):
             for model, figures in one_network(kind, args.units, 100 + n, samplers).items():
                 totals.setdefault((kind, model), []).append(figures)
-                print(f"{kind:8s} network {n + 1} {model:17s}: coverage 95% {figures['cov95'] * 100:5.1f}%, 90% {figures['cov90'] * 100:5.1f}%, "
-                      f"RMSE {figures['rmse']:.4f}, small truly worse flagged {figures['flagged']}/{figures['small_worse']}, "
-                      f"flagged worse but truly not {figures['false_flags']}, R-hat max {figures['rhat']:.3f}, divergences {figures['divergences']}")
+                print(
+                    f"{kind:8s} network {n + 1} {model:17s}: coverage 95% "
+                    f"{figures['cov95'] * 100:5.1f}%, 90% {figures['cov90'] * 100:5.1f}%, "
+                    f"RMSE {figures['rmse']:.4f}, small truly worse flagged "
+                    f"{figures['flagged']}/{figures['small_worse']}, "
+                    f"flagged worse but truly not {figures['false_flags']}, R-hat max "
+                    f"{figures['rhat']:.3f}, divergences {figures['divergences']}"
+                )
     ok = True
     for (kind, model), runs in totals.items():
         cov95 = np.mean([r["cov95"] for r in runs])
@@ -113,16 +140,25 @@ def main() -> None:
         rmse = np.mean([r["rmse"] for r in runs])
         flagged, worse = sum(r["flagged"] for r in runs), sum(r["small_worse"] for r in runs)
         false = sum(r["false_flags"] for r in runs)
-        print(f"{kind:8s} {model:17s} over {len(runs)} networks: coverage 95% {cov95 * 100:.1f}%, 90% {cov90 * 100:.1f}%, RMSE {rmse:.4f}, "
-              f"small truly worse flagged {flagged}/{worse}, flagged worse but truly not {false}")
+        print(
+            f"{kind:8s} {model:17s} over {len(runs)} networks: coverage 95% "
+            f"{cov95 * 100:.1f}%, 90% {cov90 * 100:.1f}%, RMSE {rmse:.4f}, "
+            f"small truly worse flagged {flagged}/{worse}, flagged worse but truly not {false}"
+        )
         if model == "with predictors":
             plain_rmse = np.mean([r["rmse"] for r in totals[(kind, "one common target")]])
             target = 0.93 <= cov95 <= 0.97 and 0.88 <= cov90 <= 0.92 and rmse <= plain_rmse * 1.001
             ok &= target
-            print(f"{kind:8s} target (with predictors: 95% in 93-97, 90% in 88-92, RMSE no worse than one common target, "
-                  f"ratio {rmse / plain_rmse:.3f}): {'met' if target else 'NOT met'}")
-    print(f"summary: {args.networks} networks x 2 kinds x 2 models of {args.units} units in {time.perf_counter() - start:.0f} s; "
-          f"targets {'met' if ok else 'NOT met'}")
+            print(
+                f"{kind:8s} target (with predictors: 95% in 93-97, 90% in 88-92, RMSE no worse "
+                "than one common target, "
+                f"ratio {rmse / plain_rmse:.3f}): {'met' if target else 'NOT met'}"
+            )
+    print(
+        f"summary: {args.networks} networks x 2 kinds x 2 models of {args.units} units in "
+        f"{time.perf_counter() - start:.0f} s; "
+        f"targets {'met' if ok else 'NOT met'}"
+    )
 
 
 if __name__ == "__main__":

@@ -12,7 +12,8 @@ where a fit that shares coefficients across units can be biased.
 
     python benchmarks/glmer_peer.py [--patients N] [--units K] [--no-peer]
 
-Installs nothing itself except, when R or lme4 is missing, `apt-get install r-base-core r-cran-lme4`.
+Installs nothing itself except, when R or lme4 is missing, `apt-get install r-base-core
+r-cran-lme4`.
 """
 
 from __future__ import annotations
@@ -47,20 +48,24 @@ suppressMessages(library(lme4))
 f <- as.formula(paste("y ~", paste(names(d)[1:k], collapse = " + "), "+ (1 | unit)"))
 seconds <- system.time(m <- glmer(f, data = d, family = binomial, nAGQ = 0))[["elapsed"]]
 re <- ranef(m)$unit
-write.csv(data.frame(unit = rownames(re), mode = re[, 1]), file.path(folder, "modes.csv"), row.names = FALSE)
+write.csv(data.frame(unit = rownames(re), mode = re[, 1]), file.path(folder, "modes.csv"),
+          row.names = FALSE)
 writeLines(c(sprintf("%.3f", seconds), sprintf("%.10g", fixef(m))), file.path(folder, "glmer.txt"))
 """
 
 
 def invent(patients: int, units: int, seed: int = 3):
-    """Invented patients: 6 numeric and 4 binary risk factors; unit quality = 0.3 x severity + noise."""
+    """Invented patients: 6 numeric and 4 binary risk factors; unit quality = 0.3 x severity +
+    noise."""
     rng = np.random.default_rng(seed)
     sizes = np.round(np.exp(rng.uniform(np.log(200), np.log(12_000), units)))
     sizes = np.maximum(np.round(sizes / sizes.sum() * patients), 20).astype(int)
     unit = np.repeat(np.arange(units), sizes)
     severity = rng.normal(0, 0.5, units)
-    x = np.column_stack([rng.normal(severity[unit], 1.0, len(unit)) for _ in range(6)]
-                        + [(rng.random(len(unit)) < expit(-1.0 + severity[unit])).astype(float) for _ in range(4)])
+    x = np.column_stack(
+        [rng.normal(severity[unit], 1.0, len(unit)) for _ in range(6)]
+        + [(rng.random(len(unit)) < expit(-1.0 + severity[unit])).astype(float) for _ in range(4)]
+    )
     b = np.array([0.5, 0.4, 0.3, 0.2, 0.1, 0.05, 0.6, 0.4, 0.3, 0.2])
     effect = 0.3 * severity + rng.normal(0, 0.25, units)
     effect -= effect.mean()
@@ -98,11 +103,15 @@ def main() -> None:
     print(f"{len(y):,} patients, {args.units} units, {k} risk factors, {int(y.sum()):,} events")
 
     start = time.perf_counter()
-    measure = MeasureSection(key="bench", name="Bench", definition="d", outcome="y", casemix=" + ".join(rows.columns[:k]))
+    measure = MeasureSection(
+        key="bench", name="Bench", definition="d", outcome="y", casemix=" + ".join(rows.columns[:k])
+    )
     fit, _, _ = fit_with_design(measure, rows, unit)
     casemix_done = time.perf_counter()
     cells = Cells.from_patients(unit, fit.intercept + fit.linear, y, args.units)
-    sampler = Sampler(ShrinkageSpec(), SamplerSection(chains=4, draws=1000, tune=1000, cores=2, seed=1))
+    sampler = Sampler(
+        ShrinkageSpec(), SamplerSection(chains=4, draws=1000, tune=1000, cores=2, seed=1)
+    )
     draws, diagnostics = sampler.run(cells, seed=1)
     ours = unit_draws(cells, draws)
     seconds = time.perf_counter() - start
@@ -113,11 +122,18 @@ def main() -> None:
     median = np.median(centred, axis=0)
     rmse = float(np.sqrt(np.mean((median - effect) ** 2)))
     coverage = float(np.mean((lo <= effect) & (effect <= hi)))
-    print(f"fairgauge whole fit: {seconds:.1f} s (case-mix {casemix_done - start:.1f} s, shrinkage incl. compilation "
-          f"{diagnostics.seconds:.1f} s); R-hat max {diagnostics.rhat_max:.3f}, bulk ESS min {diagnostics.ess_bulk_min:.0f}, "
-          f"divergences {diagnostics.divergences}; peak memory {peak:.2f} GiB (target 4 GiB)")
-    print(f"fairgauge unit effects: RMSE {rmse:.4f} (log-odds); 95% interval coverage {coverage * 100:.1f}%; "
-          f"risk coefficient x1 {fit.coefficients['estimate'].iloc[0]:.4f} (true 0.5)")
+    print(
+        f"fairgauge whole fit: {seconds:.1f} s (case-mix {casemix_done - start:.1f} s, "
+        "shrinkage incl. compilation "
+        f"{diagnostics.seconds:.1f} s); R-hat max {diagnostics.rhat_max:.3f}, bulk ESS min "
+        f"{diagnostics.ess_bulk_min:.0f}, "
+        f"divergences {diagnostics.divergences}; peak memory {peak:.2f} GiB (target 4 GiB)"
+    )
+    print(
+        f"fairgauge unit effects: RMSE {rmse:.4f} (log-odds); 95% interval coverage "
+        f"{coverage * 100:.1f}%; "
+        f"risk coefficient x1 {fit.coefficients['estimate'].iloc[0]:.4f} (true 0.5)"
+    )
     # The series against the exact per-patient likelihood on a 100,000-patient subset (curves.py).
     from pipeline.curves import build_curves, max_error
 
@@ -125,10 +141,21 @@ def main() -> None:
     ones, offset = np.ones(len(subset)), (fit.intercept + fit.linear)[subset]
     sub_curves = build_curves(unit[subset], offset, ones, y[subset], args.units)
     error = max_error(unit[subset], offset, ones, y[subset], args.units, sub_curves, points=50)
-    print(f"unit likelihood series vs exact per-patient log-likelihood, 100,000-patient subset: largest error {error:.2e} "
-          f"(50 random points in every unit's window)")
-    result = {"patients": len(y), "units": args.units, "series_error_100k": error, "fairgauge_seconds": seconds, "fairgauge_rmse": rmse,
-              "fairgauge_coverage": coverage, "peak_gib": peak, "rhat_max": diagnostics.rhat_max}
+    print(
+        "unit likelihood series vs exact per-patient log-likelihood, 100,000-patient subset: "
+        f"largest error {error:.2e} "
+        f"(50 random points in every unit's window)"
+    )
+    result = {
+        "patients": len(y),
+        "units": args.units,
+        "series_error_100k": error,
+        "fairgauge_seconds": seconds,
+        "fairgauge_rmse": rmse,
+        "fairgauge_coverage": coverage,
+        "peak_gib": peak,
+        "rhat_max": diagnostics.rhat_max,
+    }
     if not args.no_peer:
         rscript = ensure_r()
         folder = Path(tempfile.mkdtemp(prefix="fairgauge-glmer-"))
@@ -138,7 +165,9 @@ def main() -> None:
             unit.astype("<i4").tofile(folder / "unit.bin")
             (folder / "fit.R").write_text(R_SCRIPT)
             wall = time.perf_counter()
-            run_tool([rscript, str(folder / "fit.R"), str(folder), str(len(y)), str(k)], timeout=3600)
+            run_tool(
+                [rscript, str(folder / "fit.R"), str(folder), str(len(y)), str(k)], timeout=3600
+            )
             wall = time.perf_counter() - wall
             lines = (folder / "glmer.txt").read_text().split()
             peer_seconds, fixef = float(lines[0]), np.array([float(v) for v in lines[1:]])
@@ -148,10 +177,15 @@ def main() -> None:
             peer_rmse = float(np.sqrt(np.mean((mode - mode.mean() - effect) ** 2)))
         finally:
             shutil.rmtree(folder, ignore_errors=True)
-        print(f"peer: lme4 glmer(nAGQ = 0) fit {peer_seconds:.1f} s (R process in all, with loading the data: {wall:.1f} s); "
-              f"unit effects RMSE {peer_rmse:.4f}; risk coefficient x1 {fixef[1]:.4f}")
-        print(f"ratio fairgauge whole fit / glmer fit = {seconds / peer_seconds:.2f}; "
-              f"RMSE ratio fairgauge / glmer = {rmse / peer_rmse:.2f}")
+        print(
+            f"peer: lme4 glmer(nAGQ = 0) fit {peer_seconds:.1f} s (R process in all, with "
+            f"loading the data: {wall:.1f} s); "
+            f"unit effects RMSE {peer_rmse:.4f}; risk coefficient x1 {fixef[1]:.4f}"
+        )
+        print(
+            f"ratio fairgauge whole fit / glmer fit = {seconds / peer_seconds:.2f}; "
+            f"RMSE ratio fairgauge / glmer = {rmse / peer_rmse:.2f}"
+        )
         result.update(glmer_seconds=peer_seconds, glmer_rmse=peer_rmse)
     if args.json:
         args.json.write_text(json.dumps(result, indent=2))

@@ -7,8 +7,9 @@ correlated. Three ways to bring case mix into the shrinkage fit are compared on 
 * within  - risk coefficients with unit indicators present, then an offset (fairgauge);
 * joint   - risk coefficients and unit effects sampled together in one PyMC model.
 
-For each: error of the estimated risk coefficient, bias of log(adjusted ratio) against the truth along unit severity (the slope; 0 is
-unbiased), root-mean-square error, 95% interval coverage, and wall time.
+For each: error of the estimated risk coefficient, bias of log(adjusted ratio) against the truth
+along unit severity (the slope; 0 is unbiased), root-mean-square error, 95% interval coverage, and
+wall time.
 
     python benchmarks/offset_bias.py [--networks 3]
 """
@@ -18,6 +19,7 @@ from __future__ import annotations
 import argparse
 import time
 import warnings
+from functools import partial
 
 import numpy as np
 import pandas as pd
@@ -45,14 +47,25 @@ def simulate(seed: int, n_units: int = 40):
     z = (rng.random(len(unit)) < 0.4).astype(int)
     base = -2.0 + TRUE_B_X * x + 0.4 * z
     y = (rng.random(len(unit)) < expit(base + effect[unit])).astype(int)
-    frame = pd.DataFrame({"u": unit, "p": expit(base + effect[unit]), "e": expit(base)}).groupby("u").sum()
-    return pd.DataFrame({"x": x, "z": z, "y": y}), unit, severity, (frame["p"] / frame["e"]).to_numpy()
+    frame = (
+        pd.DataFrame({"u": unit, "p": expit(base + effect[unit]), "e": expit(base)})
+        .groupby("u")
+        .sum()
+    )
+    return (
+        pd.DataFrame({"x": x, "z": z, "y": y}),
+        unit,
+        severity,
+        (frame["p"] / frame["e"]).to_numpy(),
+    )
 
 
 def two_stage(rows, unit, n_units, within: bool, sampler: Sampler):
     codes = unit if within else np.zeros(len(unit), dtype=np.int64)
     fit = fit_casemix(MEASURE, rows, codes)
-    cells = Cells.from_patients(unit, fit.intercept + fit.linear, rows["y"].to_numpy(float), n_units)
+    cells = Cells.from_patients(
+        unit, fit.intercept + fit.linear, rows["y"].to_numpy(float), n_units
+    )
     draws, _ = sampler.run(cells, seed=3)
     return unit_draws(cells, draws).ratio, float(fit.coefficients.loc["x", "estimate"])
 
@@ -69,10 +82,26 @@ def joint(rows, unit, n_units):
         b = pm.Normal("b", 0, 2, shape=2)
         tau = pm.HalfNormal("tau", 1)
         zz = pm.Normal("zz", 0, 1, shape=n_units)
-        eta = c + b[0] * cells["x"].to_numpy() + b[1] * cells["z"].to_numpy() + tau * zz[cells["u"].to_numpy()]
-        pm.Potential("ll", pt.sum(cells["sum"].to_numpy() * eta - cells["size"].to_numpy() * pt.softplus(eta)))
-    idata = nutpie.sample(nutpie.compile_pymc_model(model), draws=1000, tune=1000, chains=4, cores=2, seed=3,
-                          progress_bar=False, low_rank_modified_mass_matrix=True)
+        eta = (
+            c
+            + b[0] * cells["x"].to_numpy()
+            + b[1] * cells["z"].to_numpy()
+            + tau * zz[cells["u"].to_numpy()]
+        )
+        pm.Potential(
+            "ll",
+            pt.sum(cells["sum"].to_numpy() * eta - cells["size"].to_numpy() * pt.softplus(eta)),
+        )
+    idata = nutpie.sample(
+        nutpie.compile_pymc_model(model),
+        draws=1000,
+        tune=1000,
+        chains=4,
+        cores=2,
+        seed=3,
+        progress_bar=False,
+        low_rank_modified_mass_matrix=True,
+    )
     post = idata.posterior
     cc, bb = post["c"].values.reshape(-1), post["b"].values.reshape(-1, 2)
     u = (post["tau"].values[..., None] * post["zz"].values).reshape(-1, n_units)
@@ -106,18 +135,37 @@ def main() -> None:
         rows, unit, severity, truth = simulate(seed)
         n_units = len(truth)
         for name, run in [
-            ("pooled", lambda: two_stage(rows, unit, n_units, False, sampler)),
-            ("within", lambda: two_stage(rows, unit, n_units, True, sampler)),
-            ("joint", lambda: joint(rows, unit, n_units)),
+            ("pooled", partial(two_stage, rows, unit, n_units, False, sampler)),
+            ("within", partial(two_stage, rows, unit, n_units, True, sampler)),
+            ("joint", partial(joint, rows, unit, n_units)),
         ]:
             start = time.perf_counter()
             ratio, b_x = run()
-            rows_out.append({"network": seed, "method": name, "b_x_error": b_x - TRUE_B_X, **score(ratio, truth, severity), "seconds": time.perf_counter() - start})
+            rows_out.append(
+                {
+                    "network": seed,
+                    "method": name,
+                    "b_x_error": b_x - TRUE_B_X,
+                    **score(ratio, truth, severity),
+                    "seconds": time.perf_counter() - start,
+                }
+            )
             print(rows_out[-1], flush=True)
     table = pd.DataFrame(rows_out)
-    print(f"\n{len(table) // 3} simulated networks, {len(truth)} units each, severity-quality correlation built in")
-    print(table.groupby("method")[["b_x_error", "bias_slope", "rmse", "coverage", "seconds"]].mean().round(3).to_string())
-    print("b_x_error: estimated minus true risk coefficient (0.7); bias_slope: slope of log-ratio error on unit severity")
+    print(
+        f"\n{len(table) // 3} simulated networks, {len(truth)} units each, severity-quality "
+        "correlation built in"
+    )
+    print(
+        table.groupby("method")[["b_x_error", "bias_slope", "rmse", "coverage", "seconds"]]
+        .mean()
+        .round(3)
+        .to_string()
+    )
+    print(
+        "b_x_error: estimated minus true risk coefficient (0.7); bias_slope: slope of "
+        "log-ratio error on unit severity"
+    )
 
 
 if __name__ == "__main__":

@@ -11,4 +11,7 @@ def templates_path() -> _Path:
     for candidate in (here / "templates", here.parent / "templates"):
         if (candidate / "qmd").is_dir():
             return candidate
-    raise FileNotFoundError(f"fairgauge's templates folder is missing (looked in {here / 'templates'} and {here.parent / 'templates'}); reinstall fairgauge.")
+    raise FileNotFoundError(
+        f"fairgauge's templates folder is missing (looked in {here / 'templates'} and "
+        f"{here.parent / 'templates'}); reinstall fairgauge."
+    )

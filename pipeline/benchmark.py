@@ -45,19 +45,28 @@ def reference_rate(fixed: str | float, measure_type: str, network_rate: float) -
 
 
 def intercept_for(linear: np.ndarray, rate: float) -> float:
-    """The network intercept at which patients with linear risks ``linear`` expect ``rate`` events each on average."""
+    """The network intercept at which patients with linear risks ``linear`` expect ``rate`` events
+    each on average."""
     return calibrate_intercept(linear, rate * len(linear))
 
 
 def scaled_totals(expected: np.ndarray, total: float) -> tuple[np.ndarray, float]:
-    """Supplied expected totals per unit times one factor so they add up to ``total``: (scaled, factor)."""
+    """Supplied expected totals per unit times one factor so they add up to ``total``: (scaled,
+    factor)."""
     expected = np.asarray(expected, float)
     factor = float(total / expected.sum())
     return expected * factor, factor
 
 
-def benchmark_offset(fixed: str | float, measure: MeasureSection, casemix: CaseMixFit, y: np.ndarray, codes: np.ndarray) -> tuple[np.ndarray, np.ndarray, float]:
-    """Per patient (``fixed`` is ``[reporting].benchmark``): the shrinkage fit's offset and expected value at the benchmark (benchmark.py), and the ratio's scale.
+def benchmark_offset(
+    fixed: str | float,
+    measure: MeasureSection,
+    casemix: CaseMixFit,
+    y: np.ndarray,
+    codes: np.ndarray,
+) -> tuple[np.ndarray, np.ndarray, float]:
+    """Per patient (``fixed`` is ``[reporting].benchmark``): the shrinkage fit's offset and expected
+    value at the benchmark (benchmark.py), and the ratio's scale.
 
     Binary: the network intercept is set so the network expects the benchmark rate (a fitted
     model's calibrated intercept when the benchmark is the network; supplied risks shifted on
@@ -70,11 +79,13 @@ def benchmark_offset(fixed: str | float, measure: MeasureSection, casemix: CaseM
         offset = intercept_for(casemix.linear, rate) + casemix.linear
         return offset, expit(offset), 1.0
     offset = casemix.intercept + casemix.linear
-    expected, factor = scaled_totals(casemix.expected, float(y.sum()))  # 1 for a Gamma fit; Duan's smearing is close, not exact
+    # 1 for a Gamma fit; Duan's smearing is close, not exact
+    expected, factor = scaled_totals(casemix.expected, float(y.sum()))
     if not casemix.fitted:  # supplied expected values: the shrinkage fit's offset moves with them
         return offset + np.log(factor), expected, 1.0
     scale = 1.0 / factor
-    if family_of(measure) == "lognormal":  # P_i uses the within-unit smearing factor, E_i the network's
+    # P_i uses the within-unit smearing factor, E_i the network's
+    if family_of(measure) == "lognormal":
         d = np.log(y) - offset
         unit_mean = (np.bincount(codes, weights=d) / np.maximum(np.bincount(codes), 1))[codes]
         scale *= float(np.mean(np.exp(d - unit_mean)) / casemix.smearing)
@@ -87,11 +98,16 @@ def patient_cv2(family: str, dispersion: float) -> float:
         return float(dispersion)  # Var = phi * mean^2
     if family == "lognormal":
         return float(np.expm1(dispersion))  # Var = (exp(sigma^2) - 1) * mean^2
-    raise ValueError(f"no patient variance for case-mix family {family!r}; allowed: gamma, lognormal")
+    raise ValueError(
+        f"no patient variance for case-mix family {family!r}; allowed: gamma, lognormal"
+    )
 
 
-def null_variance(measure: MeasureSection, casemix: CaseMixFit, y: np.ndarray, expected: np.ndarray) -> np.ndarray:
-    """Per patient: the variance of the outcome if the patient were treated at the benchmark (the funnel's null).
+def null_variance(
+    measure: MeasureSection, casemix: CaseMixFit, y: np.ndarray, expected: np.ndarray
+) -> np.ndarray:
+    """Per patient: the variance of the outcome if the patient were treated at the benchmark (the
+    funnel's null).
 
     Binary: e (1 - e) at the patient's expected risk e. Continuous: cv^2 e^2, with one patient's
     squared coefficient of variation from the fitted case-mix family, or, for expected values

@@ -1,10 +1,10 @@
 """Fit cache: a cycle whose data and model settings are unchanged reuses its fits and figures.
 
-Keys hash everything a fit depends on (input file hashes, the measure's outcome, type and
-formula, the sampler settings and seed, the shrinkage spec, and the versions of fairgauge and
-of the fitting libraries, and a hash of fairgauge's own fitting code: ``code_version``) and nothing it does not (names, wording, templates, reporting
-thresholds), so changing only the words re-renders in seconds. Entries are written atomically.
-The cache is local working data, never part of the site.
+Keys hash everything a fit depends on (input file hashes, the measure's outcome, type and formula,
+the sampler settings and seed, the shrinkage spec, and the versions of fairgauge and of the fitting
+libraries, and a hash of fairgauge's own fitting code: ``code_version``) and nothing it does not
+(names, wording, templates, reporting thresholds), so changing only the words re-renders in seconds.
+Entries are written atomically. The cache is local working data, never part of the site.
 """
 
 from __future__ import annotations
@@ -38,11 +38,22 @@ def _versions() -> tuple:
 
 # Modules whose code decides the fitted numbers: their source and their upper-case constants are
 # part of every fit key, so an upgrade or a changed setting never reuses a stale fit.
-FITTING_MODULES = ("benchmark", "casemix", "curves", "cycle", "data", "sampling", "shrinkage", "targets", "validation")
+FITTING_MODULES = (
+    "benchmark",
+    "casemix",
+    "curves",
+    "cycle",
+    "data",
+    "sampling",
+    "shrinkage",
+    "targets",
+    "validation",
+)
 
 
 def code_version() -> str:
-    """SHA-256 of the fitting code: each module's source plus the current values of its upper-case constants."""
+    """SHA-256 of the fitting code: each module's source plus the current values of its upper-case
+    constants."""
     import importlib
     import inspect
 
@@ -56,12 +67,14 @@ def code_version() -> str:
 
 
 def library_versions() -> dict[str, str]:
-    """fairgauge and the libraries its numbers and figures depend on (manifest and cache keys); read once per process."""
+    """fairgauge and the libraries its numbers and figures depend on (manifest and cache keys); read
+    once per process."""
     return dict(_versions())
 
 
 def key(*parts: Any) -> str:
     """A stable hash of JSON-able parts plus the library versions."""
+
     def plain(x: Any) -> Any:
         if hasattr(x, "__dataclass_fields__"):
             return asdict(x)
@@ -99,7 +112,9 @@ class Cache:
 
     def store(self, name: str, value: Any) -> None:
         if self.folder is not None:
-            self._write(self._path(name + ".pkl"), pickle.dumps(value, protocol=pickle.HIGHEST_PROTOCOL))
+            self._write(
+                self._path(name + ".pkl"), pickle.dumps(value, protocol=pickle.HIGHEST_PROTOCOL)
+            )
 
     def file(self, name: str) -> Path | None:
         """Path of a cached raw file, if present."""

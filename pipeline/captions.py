@@ -31,7 +31,9 @@ class FigureView:
     alt: str  # attribute-safe text
     head: list[str] = field(default_factory=list)
     rows: list[list[str]] = field(default_factory=list)
-    kind: str = ""  # intervals, movement, funnel, position, trend, roc or calibration: templates place a figure by it
+    # intervals, movement, funnel, position, trend, roc or calibration: templates place a figure by
+    # it
+    kind: str = ""
 
 
 def _names(names: list[str], md) -> str:
@@ -54,49 +56,129 @@ def _group_counts(groups: pd.Series, names: pd.Series) -> str:
     return "; ".join(parts)
 
 
-def intervals(src: str, png: str, data: pd.DataFrame, fmt, span, benchmark: str, level: str, md) -> FigureView:
+def intervals(
+    src: str, png: str, data: pd.DataFrame, fmt, span, benchmark: str, level: str, md
+) -> FigureView:
     """``fmt(x)`` formats one scaled value; ``span(lo, hi)`` an interval."""
     low, high = data.iloc[0], data.iloc[-1]
-    alt = (f"Chart of the adjusted value of {len(data)} units, each with its {level} credible interval, lowest first, "
-           f"against a dashed benchmark line at {benchmark}. Of these units, {_group_counts(data['group'], data['unit_name'])}. "
-           f"Lowest: {attr(low['unit_name'])}, {fmt(low['rsr'])}; highest: {attr(high['unit_name'])}, {fmt(high['rsr'])}.")
-    rows = [[md(r.unit_name), fmt(r.rsr), span(r.lo, r.hi), GROUPS[r.group]] for r in data.itertuples()]
-    return FigureView(src, png, f"Each unit's adjusted value (marker) and {level} credible interval (line). The dashed line is the benchmark.",
-                      alt, ["Unit", "Adjusted", f"{level} interval", "Group"], rows, kind="intervals")
+    alt = (
+        f"Chart of the adjusted value of {len(data)} units, each with its {level} credible "
+        "interval, lowest first, "
+        f"against a dashed benchmark line at {benchmark}. Of these units, "
+        f"{_group_counts(data['group'], data['unit_name'])}. "
+        f"Lowest: {attr(low['unit_name'])}, {fmt(low['rsr'])}; highest: "
+        f"{attr(high['unit_name'])}, {fmt(high['rsr'])}."
+    )
+    rows = [
+        [md(r.unit_name), fmt(r.rsr), span(r.lo, r.hi), GROUPS[r.group]] for r in data.itertuples()
+    ]
+    return FigureView(
+        src,
+        png,
+        f"Each unit's adjusted value (marker) and {level} credible interval (line). The dashed "
+        "line is the benchmark.",
+        alt,
+        ["Unit", "Adjusted", f"{level} interval", "Group"],
+        rows,
+        kind="intervals",
+    )
 
 
-def movement(src: str, png: str, data: pd.DataFrame, fmt, benchmark: str, points: str, md) -> FigureView:
+def movement(
+    src: str, png: str, data: pd.DataFrame, fmt, benchmark: str, points: str, md
+) -> FigureView:
     """``points`` names the unit of a move ('percentage points' or the outcome's unit)."""
     move = (data["adjusted"] - data["raw"]).abs()
     k = min(10, max(1, len(data) // 4))
     small, large = float(np.median(move.iloc[:k])), float(np.median(move.iloc[-k:]))
     top = data.loc[move.idxmax()]
-    alt = (f"Chart with a line for each of {len(data)} units, from its raw value to its adjusted value, placed by its number of cases (log scale, fewest at the bottom). "
-           f"Small units move further: the typical move is {small:.1f} {points} for the {k} smallest units and {large:.1f} for the {k} largest. "
-           f"The largest move is {attr(top['unit_name'])}, from {fmt(top['raw'])} to {fmt(top['adjusted'])}. The benchmark is {benchmark}.")
-    rows = [[md(r.unit_name), f"{r.cases:,}", fmt(r.raw), fmt(r.adjusted), f"{r.adjusted - r.raw:+.1f}"] for r in data.iloc[::-1].itertuples()]
-    return FigureView(src, png, "Each line runs from a unit's raw value (hollow circle) to its adjusted value (marker). Small units are pulled further towards the typical unit.",
-                      alt, ["Unit", "Cases", "Raw", "Adjusted", "Move"], rows, kind="movement")
+    alt = (
+        f"Chart with a line for each of {len(data)} units, from its raw value to its adjusted "
+        "value, placed by its number of cases (log scale, fewest at the bottom). "
+        f"Small units move further: the typical move is {small:.1f} {points} for the {k} "
+        f"smallest units and {large:.1f} for the {k} largest. "
+        f"The largest move is {attr(top['unit_name'])}, from {fmt(top['raw'])} to "
+        f"{fmt(top['adjusted'])}. The benchmark is {benchmark}."
+    )
+    rows = [
+        [md(r.unit_name), f"{r.cases:,}", fmt(r.raw), fmt(r.adjusted), f"{r.adjusted - r.raw:+.1f}"]
+        for r in data.iloc[::-1].itertuples()
+    ]
+    return FigureView(
+        src,
+        png,
+        "Each line runs from a unit's raw value (hollow circle) to its adjusted value "
+        "(marker). Small units are pulled further towards the typical unit.",
+        alt,
+        ["Unit", "Cases", "Raw", "Adjusted", "Move"],
+        rows,
+        kind="movement",
+    )
 
 
-def funnel(src: str, png: str, points: pd.DataFrame, fmt, benchmark: str, counts: dict, phi: float, widened: bool, md) -> FigureView:
+def funnel(
+    src: str,
+    png: str,
+    points: pd.DataFrame,
+    fmt,
+    benchmark: str,
+    counts: dict,
+    phi: float,
+    widened: bool,
+    md,
+) -> FigureView:
     out95 = points[(points["value"] < points["lower_95"]) | (points["value"] > points["upper_95"])]
-    out998 = points[(points["value"] < points["lower_998"]) | (points["value"] > points["upper_998"])]
-    alt = (f"Funnel plot of {counts['units']} units: each unit's case-mix-adjusted value from its observed and expected counts, against the "
-           f"precision of its O/E on a log scale (higher for units with more expected events), with 95% and 99.8% control limits around the benchmark of {benchmark}"
-           f"{', widened for the extra spread between units' if widened else ''}. "
-           f"{len(out95)} {'unit lies' if len(out95) == 1 else 'units lie'} outside the 95% limits"
-           f"{' (' + _names(list(out95['unit_name']), attr) + ')' if len(out95) else ''} and {len(out998)} outside the 99.8% limits"
-           f"{' (' + _names(list(out998['unit_name']), attr) + ')' if len(out998) else ''}. "
-           f"The spread between units is {phi:.1f} times what chance alone would give.")
-    rows = [[md(r.unit_name), f"{r.cases:,.0f}", f"{r.expected:,.1f}", fmt(r.value), f"{fmt(r.lower_95)} to {fmt(r.upper_95)}", f"{fmt(r.lower_998)} to {fmt(r.upper_998)}",
-             "above" if r.value > r.upper_998 else "below" if r.value < r.lower_998 else "inside"]
-            for r in points.sort_values("precision").itertuples()]
-    return FigureView(src, png, ("Each marker is a unit. Its height is what the unit observed, divided by what was expected for its patients (O/E), "
-                      "times the benchmark. This uses the unit's own counts only, with no pull towards other units. "
-                      "The funnel lines show how far from the benchmark a unit with that many expected events could land by chance alone (95% and 99.8% of the time)."),
-                      alt, ["Unit", "Cases", "Expected", "Value from O/E", "95% limits", "99.8% limits", "Against the 99.8% limits"], rows,
-                      kind="funnel")
+    out998 = points[
+        (points["value"] < points["lower_998"]) | (points["value"] > points["upper_998"])
+    ]
+    alt = (
+        f"Funnel plot of {counts['units']} units: each unit's case-mix-adjusted value from its "
+        "observed and expected counts, against the "
+        "precision of its O/E on a log scale (higher for units with more expected events), "
+        f"with 95% and 99.8% control limits around the benchmark of {benchmark}"
+        f"{', widened for the extra spread between units' if widened else ''}. "
+        f"{len(out95)} {'unit lies' if len(out95) == 1 else 'units lie'} outside the 95% limits"
+        f"{' (' + _names(list(out95['unit_name']), attr) + ')' if len(out95) else ''} and "
+        f"{len(out998)} outside the 99.8% limits"
+        f"{' (' + _names(list(out998['unit_name']), attr) + ')' if len(out998) else ''}. "
+        f"The spread between units is {phi:.1f} times what chance alone would give."
+    )
+    rows = [
+        [
+            md(r.unit_name),
+            f"{r.cases:,.0f}",
+            f"{r.expected:,.1f}",
+            fmt(r.value),
+            f"{fmt(r.lower_95)} to {fmt(r.upper_95)}",
+            f"{fmt(r.lower_998)} to {fmt(r.upper_998)}",
+            "above" if r.value > r.upper_998 else "below" if r.value < r.lower_998 else "inside",
+        ]
+        for r in points.sort_values("precision").itertuples()
+    ]
+    return FigureView(
+        src,
+        png,
+        (
+            "Each marker is a unit. Its height is what the unit observed, divided by what was "
+            "expected for its patients (O/E), "
+            "times the benchmark. This uses the unit's own counts only, with no pull towards "
+            "other units. "
+            "The funnel lines show how far from the benchmark a unit with that many expected "
+            "events could land by chance alone (95% and 99.8% of the time)."
+        ),
+        alt,
+        [
+            "Unit",
+            "Cases",
+            "Expected",
+            "Value from O/E",
+            "95% limits",
+            "99.8% limits",
+            "Against the 99.8% limits",
+        ],
+        rows,
+        kind="funnel",
+    )
 
 
 def position(src: str, data: pd.DataFrame, unit_name: str, md) -> FigureView:
@@ -105,19 +187,59 @@ def position(src: str, data: pd.DataFrame, unit_name: str, md) -> FigureView:
         if pd.isna(r.ratio):
             parts.append(f"{attr(r.measure)}: not reported")
         else:
-            parts.append(f"{attr(r.measure)}: {r.ratio:.2f} ({r.lo:.2f} to {r.hi:.2f}), {GROUPS[r.group].lower()}")
-    alt = f"Chart of {attr(unit_name)}'s adjusted ratio to the benchmark on each measure, with its interval, the benchmark and the range where most units sit. " + "; ".join(parts) + "."
-    rows = [[md(r.measure), "" if pd.isna(r.ratio) else f"{r.ratio:.2f}", "" if pd.isna(r.ratio) else f"{r.lo:.2f} to {r.hi:.2f}",
-             "not reported" if pd.isna(r.ratio) else GROUPS[r.group]] for r in data.itertuples()]
-    return FigureView(src, "", "A ratio of 1 means as many events as expected for these patients. The shaded band is where most units sit; the dashed line is the benchmark.",
-                      alt, ["Measure", "Ratio to the benchmark", "Interval", "Group"], rows, kind="position")
+            parts.append(
+                f"{attr(r.measure)}: {r.ratio:.2f} ({r.lo:.2f} to {r.hi:.2f}), "
+                f"{GROUPS[r.group].lower()}"
+            )
+    alt = (
+        f"Chart of {attr(unit_name)}'s adjusted ratio to the benchmark on each measure, with "
+        "its interval, the benchmark and the range where most units sit. " + "; ".join(parts) + "."
+    )
+    rows = [
+        [
+            md(r.measure),
+            "" if pd.isna(r.ratio) else f"{r.ratio:.2f}",
+            "" if pd.isna(r.ratio) else f"{r.lo:.2f} to {r.hi:.2f}",
+            "not reported" if pd.isna(r.ratio) else GROUPS[r.group],
+        ]
+        for r in data.itertuples()
+    ]
+    return FigureView(
+        src,
+        "",
+        "A ratio of 1 means as many events as expected for these patients. The shaded band is "
+        "where most units sit; the dashed line is the benchmark.",
+        alt,
+        ["Measure", "Ratio to the benchmark", "Interval", "Group"],
+        rows,
+        kind="position",
+    )
 
 
 def trend(src: str, data: pd.DataFrame, unit_name: str, md) -> FigureView:
     parts = []
     for measure, d in data.groupby("measure", sort=False):
-        parts.append(f"{attr(measure)}: " + ", ".join(f"{attr(r.period)} {r.value:.1f}" for r in d.sort_values("order").itertuples()))
-    alt = f"Chart of {attr(unit_name)}'s adjusted value in each cycle, one panel per measure (percent for rates). " + "; ".join(parts) + "."
-    rows = [[md(r.measure), md(r.period), f"{r.value:.1f}", f"{r.lo:.1f} to {r.hi:.1f}"] for r in data.sort_values(["measure", "order"]).itertuples()]
-    return FigureView(src, "", "Each point is the adjusted value published for that cycle, with its interval. Methods and coding can change between cycles.",
-                      alt, ["Measure", "Cycle", "Adjusted value", "Interval"], rows, kind="trend")
+        parts.append(
+            f"{attr(measure)}: "
+            + ", ".join(
+                f"{attr(r.period)} {r.value:.1f}" for r in d.sort_values("order").itertuples()
+            )
+        )
+    alt = (
+        f"Chart of {attr(unit_name)}'s adjusted value in each cycle, one panel per measure "
+        "(percent for rates). " + "; ".join(parts) + "."
+    )
+    rows = [
+        [md(r.measure), md(r.period), f"{r.value:.1f}", f"{r.lo:.1f} to {r.hi:.1f}"]
+        for r in data.sort_values(["measure", "order"]).itertuples()
+    ]
+    return FigureView(
+        src,
+        "",
+        "Each point is the adjusted value published for that cycle, with its interval. Methods "
+        "and coding can change between cycles.",
+        alt,
+        ["Measure", "Cycle", "Adjusted value", "Interval"],
+        rows,
+        kind="trend",
+    )

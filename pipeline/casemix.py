@@ -23,6 +23,7 @@ from __future__ import annotations
 
 import warnings
 from dataclasses import dataclass, field
+from typing import Any
 
 import numpy as np
 import pandas as pd
@@ -48,11 +49,14 @@ class CaseMixFit:
 
     measure: str
     formula: str
-    family: str  # logistic, gamma, lognormal; "supplied" or "unit summary" when nothing was fitted here
+    # logistic, gamma, lognormal; "supplied" or "unit summary" when nothing was fitted here
+    family: str
     patients: int
     events: float  # binary: patients with the outcome; continuous: the outcome's total
-    coefficients: pd.DataFrame  # index term; estimate, std_error, ratio, lower, upper (ratio = odds ratio or mean ratio)
-    linear: np.ndarray  # b'x per patient, no intercept (with the intercept: the shrinkage fit's offset)
+    # index term; estimate, std_error, ratio, lower, upper (ratio = odds ratio or mean ratio)
+    coefficients: pd.DataFrame
+    # b'x per patient, no intercept (with the intercept: the shrinkage fit's offset)
+    linear: np.ndarray
     intercept: float  # network intercept
     expected: np.ndarray  # expected value per patient (risk, or mean on the outcome's scale)
     c_statistic: float  # binary only (nan otherwise)
@@ -60,8 +64,10 @@ class CaseMixFit:
     solver: str  # statsmodels, block-newton, within-ols, none
     used: np.ndarray  # boolean mask over the cohort rows: the patients of this measure
     smearing: float = 1.0  # Duan's factor (log-normal); 1 otherwise
-    dispersion: float = 1.0  # Gamma: Pearson dispersion; log-normal: residual variance on the log scale
-    exclusions: dict = field(default_factory=dict)  # {"dropped": {var: n}, "imputed": {var: n}, "dropped_rows": n, "by_unit": {code: n}}
+    # Gamma: Pearson dispersion; log-normal: residual variance on the log scale
+    dispersion: float = 1.0
+    # {"dropped": {var: n}, "imputed": {var: n}, "dropped_rows": n, "by_unit": {code: n}}
+    exclusions: dict = field(default_factory=dict)
     warnings: tuple[str, ...] = ()
 
     @property
@@ -73,7 +79,10 @@ class CaseMixFit:
 FAMILIES = {
     "logistic": ("logistic regression (binomial, logit link)", "odds ratio"),
     "gamma": ("Gamma GLM with log link", "ratio of means"),
-    "lognormal": ("least squares on log(outcome), Duan's smearing back to the outcome's scale", "ratio of geometric means"),
+    "lognormal": (
+        "least squares on log(outcome), Duan's smearing back to the outcome's scale",
+        "ratio of geometric means",
+    ),
 }
 
 
@@ -102,12 +111,19 @@ def calibrate_intercept(linear: np.ndarray, observed_events: float) -> float:
 
 
 # Above this many cells in the dense design (patients x (risk terms + unit indicators)), the
-# within-unit logistic fit uses the block Newton solver below instead of statsmodels with dummy columns.
+# within-unit logistic fit uses the block Newton solver below instead of statsmodels with dummy
+# columns.
 DENSE_LIMIT = 20_000_000
 
 
 def within_glm(
-    y: np.ndarray, x: np.ndarray, unit: np.ndarray, n_units: int, family: str = "logistic", tol: float = 1e-10, max_iter: int = 100
+    y: np.ndarray,
+    x: np.ndarray,
+    unit: np.ndarray,
+    n_units: int,
+    family: str = "logistic",
+    tol: float = 1e-10,
+    max_iter: int = 100,
 ):
     """A GLM with one intercept per unit, by Newton's method (Fisher scoring) on the block system.
 
@@ -122,7 +138,8 @@ def within_glm(
     logistic = family == "logistic"
 
     def blocks(a_: np.ndarray, b_: np.ndarray):
-        """Score and information blocks: g_a, residuals, h_aa (diagonal), h_ab, Schur complement of h_aa."""
+        """Score and information blocks: g_a, residuals, h_aa (diagonal), h_ab, Schur complement of
+        h_aa."""
         eta = a_[unit] + x @ b_
         if logistic:
             p = expit(eta)
@@ -130,7 +147,13 @@ def within_glm(
         else:  # Gamma, log link: score (y - m)/m per unit of eta, Fisher weight 1
             w, r = np.ones_like(y), y * np.exp(-eta) - 1.0
         h_aa = np.bincount(unit, weights=w, minlength=n_units)
-        h_ab = np.column_stack([np.bincount(unit, weights=w * x[:, c], minlength=n_units) for c in range(k)]) if k else np.zeros((n_units, 0))
+        h_ab = (
+            np.column_stack(
+                [np.bincount(unit, weights=w * x[:, c], minlength=n_units) for c in range(k)]
+            )
+            if k
+            else np.zeros((n_units, 0))
+        )
         schur = (x * w[:, None]).T @ x - h_ab.T @ (h_ab / h_aa[:, None])
         return np.bincount(unit, weights=r, minlength=n_units), r, h_aa, h_ab, schur
 
@@ -164,11 +187,16 @@ def within_glm(
 
 
 def within_ols(y: np.ndarray, x: np.ndarray, unit: np.ndarray, n_units: int):
-    """Least squares with one intercept per unit (demeaning within units): (b, se, residual variance)."""
+    """Least squares with one intercept per unit (demeaning within units): (b, se, residual
+    variance)."""
     counts = np.bincount(unit, minlength=n_units)
     demean = lambda v: v - (np.bincount(unit, weights=v, minlength=n_units) / counts)[unit]  # noqa: E731
     yd = demean(y)
-    xd = np.column_stack([demean(x[:, c]) for c in range(x.shape[1])]) if x.shape[1] else np.zeros((len(y), 0))
+    xd = (
+        np.column_stack([demean(x[:, c]) for c in range(x.shape[1])])
+        if x.shape[1]
+        else np.zeros((len(y), 0))
+    )
     b = np.linalg.solve(xd.T @ xd, xd.T @ yd) if x.shape[1] else np.zeros(0)
     resid = yd - xd @ b
     sigma2 = float(resid @ resid / max(len(y) - x.shape[1] - n_units, 1))
@@ -176,11 +204,21 @@ def within_ols(y: np.ndarray, x: np.ndarray, unit: np.ndarray, n_units: int):
     return b, se, sigma2
 
 
-def prepare(measure: MeasureSection, rows: pd.DataFrame, variables: list[str], unit_codes: np.ndarray) -> tuple[pd.DataFrame, np.ndarray, dict]:
-    """Apply the measure's missing-value policy: (rows to fit, mask of rows used, counts of what was done)."""
+def prepare(
+    measure: MeasureSection, rows: pd.DataFrame, variables: list[str], unit_codes: np.ndarray
+) -> tuple[pd.DataFrame, np.ndarray, dict]:
+    """Apply the measure's missing-value policy: (rows to fit, mask of rows used, counts of what was
+    done)."""
     frame = rows[[measure.outcome, *variables]]
     missing = frame[variables].isna()
-    counts = {"policy": measure.missing, "dropped": {}, "imputed": {}, "dropped_rows": 0, "imputed_rows": 0, "by_unit": {}}
+    counts: dict[str, Any] = {
+        "policy": measure.missing,
+        "dropped": {},
+        "imputed": {},
+        "dropped_rows": 0,
+        "imputed_rows": 0,
+        "by_unit": {},
+    }
     used = np.ones(len(rows), dtype=bool)
     if not missing.to_numpy().any():
         return frame, used, counts
@@ -188,7 +226,10 @@ def prepare(measure: MeasureSection, rows: pd.DataFrame, variables: list[str], u
         used = ~missing.any(axis=1).to_numpy()
         counts["dropped"] = {v: int(n) for v, n in missing.sum().items() if n}
         counts["dropped_rows"] = int((~used).sum())
-        counts["by_unit"] = {int(c): int(n) for c, n in zip(*np.unique(unit_codes[~used], return_counts=True))}
+        counts["by_unit"] = {
+            int(c): int(n)
+            for c, n in zip(*np.unique(unit_codes[~used], return_counts=True), strict=True)
+        }
         return frame[used], used, counts
     if measure.missing == "impute":
         frame = frame.copy()
@@ -203,7 +244,10 @@ def prepare(measure: MeasureSection, rows: pd.DataFrame, variables: list[str], u
             counts["imputed"][v] = int(gaps.sum())
         counts["imputed_rows"] = int(missing.any(axis=1).sum())
         return frame, used, counts
-    raise FitError(f"measure '{measure.key}': risk factors have missing values and missing = \"stop\".")  # data checks catch this first
+    # data checks catch this first
+    raise FitError(
+        f"measure '{measure.key}': risk factors have missing values and missing = \"stop\"."
+    )
 
 
 def design(measure: MeasureSection, rows: pd.DataFrame, casemix: str | None = None) -> pd.DataFrame:
@@ -212,53 +256,76 @@ def design(measure: MeasureSection, rows: pd.DataFrame, casemix: str | None = No
     try:
         matrix = patsy.dmatrix(formula, rows, return_type="dataframe", NA_action="raise")
     except patsy.PatsyError as exc:
-        raise FitError(f"measure '{measure.key}': the case-mix formula '{formula}' cannot be built: {exc.message}") from None
+        raise FitError(
+            f"measure '{measure.key}': the case-mix formula '{formula}' cannot be built: "
+            f"{exc.message}"
+        ) from None
     return matrix.drop(columns=[c for c in matrix.columns if c == "Intercept"])
 
 
-def check_design(measure: MeasureSection, x: pd.DataFrame, y: np.ndarray, binary: bool) -> list[str]:
-    """Explain, in words, what would make the fit fail or mislead. Raises for fatal problems; returns warnings."""
+def check_design(
+    measure: MeasureSection, x: pd.DataFrame, y: np.ndarray, binary: bool
+) -> list[str]:
+    """Explain, in words, what would make the fit fail or mislead. Raises for fatal problems;
+    returns warnings."""
     values = x.to_numpy()
     problems: list[str] = []
     spread = np.ptp(values, axis=0) if len(values) else np.zeros(x.shape[1])
-    for name, col, width in zip(x.columns, values.T, spread):
+    for name, col, width in zip(x.columns, values.T, spread, strict=True):
         if not np.any(col):
-            problems.append(f"'{name}' has no patients (an empty category): merge it with a neighbouring category or drop it")
+            problems.append(
+                f"'{name}' has no patients (an empty category): merge it with a neighbouring "
+                "category or drop it"
+            )
         elif width == 0:
-            problems.append(f"'{name}' is the same for every patient, so its effect cannot be estimated: remove it from the formula")
+            problems.append(
+                f"'{name}' is the same for every patient, so its effect cannot be estimated: "
+                "remove it from the formula"
+            )
         elif binary and np.isin(col, (0.0, 1.0)).all():
             n, events = col.sum(), y[col == 1].sum()
             if events == 0 or events == n:
                 who = "none" if events == 0 else "all"
                 problems.append(
-                    f"{who} of the {n:,.0f} patients with '{name}' had the outcome (perfect separation), so its odds ratio "
+                    f"{who} of the {n:,.0f} patients with '{name}' had the outcome (perfect "
+                    "separation), so its odds ratio "
                     "would be infinite: merge that category with a neighbour or drop the term"
                 )
     if not problems and x.shape[1] > 1:
-        sample = values[:: max(1, len(values) // 200_000)]  # a systematic sample is plenty for rank and correlation
+        # a systematic sample is plenty for rank and correlation
+        sample = values[:: max(1, len(values) // 200_000)]
         centred = (sample - sample.mean(axis=0)) / sample.std(axis=0)
         _, singular, vt = np.linalg.svd(centred / np.sqrt(len(centred)), full_matrices=False)
         if singular[-1] < 1e-6 * singular[0]:
             involved = [x.columns[j] for j in np.flatnonzero(np.abs(vt[-1]) > 0.05)]
             problems.append(
-                f"the terms {', '.join(repr(t) for t in involved)} carry the same information (one is an exact combination of "
+                f"the terms {', '.join(repr(t) for t in involved)} carry the same information "
+                "(one is an exact combination of "
                 "the others), so their separate effects cannot be estimated: remove one of them"
             )
     if problems:
-        raise FitError(f"measure '{measure.key}': the case-mix model cannot be fitted as written: " + "; ".join(problems) + ".")
+        raise FitError(
+            f"measure '{measure.key}': the case-mix model cannot be fitted as written: "
+            + "; ".join(problems)
+            + "."
+        )
     notes = []
     if x.shape[1] > 1:
         corr = np.corrcoef(centred, rowvar=False)
-        for i, j in zip(*np.triu_indices(x.shape[1], 1)):
+        for i, j in zip(*np.triu_indices(x.shape[1], 1), strict=True):
             if abs(corr[i, j]) > 0.98 and x.columns[i].split("[")[0] != x.columns[j].split("[")[0]:
                 notes.append(
-                    f"measure '{measure.key}': risk factors '{x.columns[i]}' and '{x.columns[j]}' are almost the same "
-                    f"(correlation {corr[i, j]:.3f}); the expected values are fine, but their separate coefficients are unstable and should not be read alone."
+                    f"measure '{measure.key}': risk factors '{x.columns[i]}' and "
+                    f"'{x.columns[j]}' are almost the same "
+                    f"(correlation {corr[i, j]:.3f}); the expected values are fine, but their "
+                    "separate coefficients are unstable and should not be read alone."
                 )
     return notes
 
 
-def estimate(family: str, y: np.ndarray, x: np.ndarray, unit_codes: np.ndarray) -> tuple[np.ndarray, np.ndarray, float, int, str]:
+def estimate(
+    family: str, y: np.ndarray, x: np.ndarray, unit_codes: np.ndarray
+) -> tuple[np.ndarray, np.ndarray, float, int, str]:
     """Within-unit coefficients: (b, se, dispersion, units used, solver)."""
     k = x.shape[1]
     if family == "lognormal":
@@ -275,11 +342,20 @@ def estimate(family: str, y: np.ndarray, x: np.ndarray, unit_codes: np.ndarray) 
     keep = informative[unit_codes]
     kept_units = np.flatnonzero(informative)
     if keep.sum() * (1 + k + len(kept_units)) <= DENSE_LIMIT:
-        dummies = (unit_codes[keep, None] == kept_units[None, 1:]).astype(float)  # first kept unit is the reference
+        # first kept unit is the reference
+        dummies = (unit_codes[keep, None] == kept_units[None, 1:]).astype(float)
         exog = np.column_stack([np.ones(keep.sum()), x[keep], dummies])
         result = sm.GLM(y[keep], exog, family=sm.families.Binomial()).fit()
-        return np.asarray(result.params[1 : 1 + k]), np.asarray(result.bse[1 : 1 + k]), 1.0, len(kept_units), "statsmodels"
-    b, se, _ = within_glm(y[keep], x[keep], np.searchsorted(kept_units, unit_codes[keep]), len(kept_units), "logistic")
+        return (
+            np.asarray(result.params[1 : 1 + k]),
+            np.asarray(result.bse[1 : 1 + k]),
+            1.0,
+            len(kept_units),
+            "statsmodels",
+        )
+    b, se, _ = within_glm(
+        y[keep], x[keep], np.searchsorted(kept_units, unit_codes[keep]), len(kept_units), "logistic"
+    )
     return b, se, 1.0, len(kept_units), "block-newton"
 
 
@@ -291,24 +367,31 @@ def network_intercept(family: str, y: np.ndarray, linear: np.ndarray) -> tuple[f
         return float(np.log(y.sum()) - np.log(np.exp(linear).sum())), 1.0
     residual = np.log(y) - linear
     c = float(residual.mean())
-    return c, float(np.mean(np.exp(residual - c)))  # Duan (1983): mean of the exponentiated residuals
+    # Duan (1983): mean of the exponentiated residuals
+    return c, float(np.mean(np.exp(residual - c)))
 
 
-def expected_values(family: str, intercept: float, linear: np.ndarray, smearing: float = 1.0) -> np.ndarray:
+def expected_values(
+    family: str, intercept: float, linear: np.ndarray, smearing: float = 1.0
+) -> np.ndarray:
     if family == "logistic":
         return expit(intercept + linear)
     return np.exp(intercept + linear) * smearing
 
 
-def fit_casemix(measure: MeasureSection, rows: pd.DataFrame, unit_codes: np.ndarray, casemix: str | None = None) -> CaseMixFit:
-    """Fit the measure's case-mix model (within-unit coefficients) and each patient's expected value."""
+def fit_casemix(
+    measure: MeasureSection, rows: pd.DataFrame, unit_codes: np.ndarray, casemix: str | None = None
+) -> CaseMixFit:
+    """Fit the measure's case-mix model (within-unit coefficients) and each patient's expected
+    value."""
     return fit_with_design(measure, rows, unit_codes, casemix)[0]
 
 
 def fit_with_design(
     measure: MeasureSection, rows: pd.DataFrame, unit_codes: np.ndarray, casemix: str | None = None
 ) -> tuple[CaseMixFit, np.ndarray | None, np.ndarray]:
-    """:func:`fit_casemix`, also returning the design matrix (None when nothing was fitted) and the outcome of the rows used."""
+    """:func:`fit_casemix`, also returning the design matrix (None when nothing was fitted) and the
+    outcome of the rows used."""
     from .data import formula_variables
 
     if measure.expected_column:
@@ -322,7 +405,10 @@ def fit_with_design(
     y = frame[measure.outcome].to_numpy(dtype=float)
     if binary and (y.sum() == 0 or y.sum() == len(y)):
         word = "no patient had" if y.sum() == 0 else "every patient had"
-        raise FitError(f"measure '{measure.key}': {word} the outcome '{measure.outcome}', so risks cannot be compared between units.")
+        raise FitError(
+            f"measure '{measure.key}': {word} the outcome '{measure.outcome}', so risks cannot "
+            "be compared between units."
+        )
     x = design(measure, frame, formula)
     notes = check_design(measure, x, y, binary)
     with warnings.catch_warnings():
@@ -330,21 +416,42 @@ def fit_with_design(
         try:
             b, se, dispersion, units_in_fit, solver = estimate(family, y, x.to_numpy(), codes)
         except (np.linalg.LinAlgError, ValueError) as exc:
-            raise FitError(f"measure '{measure.key}': the case-mix fit failed ({exc}). Check for risk factors that never vary or that copy each other.") from None
+            raise FitError(
+                f"measure '{measure.key}': the case-mix fit failed ({exc}). Check for risk "
+                "factors that never vary or that copy each other."
+            ) from None
     if not (np.all(np.isfinite(b)) and np.all(np.isfinite(se))) or np.any(np.abs(b) > 15):
-        bad = [name for name, v, s in zip(x.columns, b, se) if not np.isfinite(v) or not np.isfinite(s) or abs(v) > 15]
+        bad = [
+            name
+            for name, v, s in zip(x.columns, b, se, strict=True)
+            if not np.isfinite(v) or not np.isfinite(s) or abs(v) > 15
+        ]
         raise FitError(
-            f"measure '{measure.key}': the case-mix coefficients for {', '.join(bad)} could not be estimated "
-            "(a risk factor that almost perfectly predicts the outcome, or that is constant). Remove or group it."
+            f"measure '{measure.key}': the case-mix coefficients for {', '.join(bad)} could "
+            "not be estimated "
+            "(a risk factor that almost perfectly predicts the outcome, or that is constant). "
+            "Remove or group it."
         )
     linear = x.to_numpy() @ b if x.shape[1] else np.zeros(len(y))
     intercept, smearing = network_intercept(family, y, linear)
     fit = CaseMixFit(
-        measure=measure.key, formula=f"{measure.outcome} ~ {formula}", family=family, patients=len(y), events=float(y.sum()),
-        coefficients=coefficient_table(x.columns, b, se), linear=linear, intercept=intercept,
-        expected=expected_values(family, intercept, linear, smearing), c_statistic=c_statistic(y, linear) if binary else float("nan"),
-        units_in_fit=units_in_fit, solver=solver, used=used, smearing=smearing, dispersion=dispersion,
-        exclusions=exclusions, warnings=tuple(notes),
+        measure=measure.key,
+        formula=f"{measure.outcome} ~ {formula}",
+        family=family,
+        patients=len(y),
+        events=float(y.sum()),
+        coefficients=coefficient_table(x.columns, b, se),
+        linear=linear,
+        intercept=intercept,
+        expected=expected_values(family, intercept, linear, smearing),
+        c_statistic=c_statistic(y, linear) if binary else float("nan"),
+        units_in_fit=units_in_fit,
+        solver=solver,
+        used=used,
+        smearing=smearing,
+        dispersion=dispersion,
+        exclusions=exclusions,
+        warnings=tuple(notes),
     )
     return fit, x.to_numpy(), y
 
@@ -352,28 +459,53 @@ def fit_with_design(
 def coefficient_table(terms, b: np.ndarray, se: np.ndarray) -> pd.DataFrame:
     """Estimates with Wald 95% intervals, also as ratios (odds ratios or ratios of means)."""
     return pd.DataFrame(
-        {"estimate": b, "std_error": se, "ratio": np.exp(b), "lower": np.exp(b - 1.959964 * se), "upper": np.exp(b + 1.959964 * se)},
+        {
+            "estimate": b,
+            "std_error": se,
+            "ratio": np.exp(b),
+            "lower": np.exp(b - 1.959964 * se),
+            "upper": np.exp(b + 1.959964 * se),
+        },
         index=pd.Index(list(terms), name="term"),
     )
 
 
-def supplied_casemix(measure: MeasureSection, rows: pd.DataFrame, unit_codes: np.ndarray) -> CaseMixFit:
+def supplied_casemix(
+    measure: MeasureSection, rows: pd.DataFrame, unit_codes: np.ndarray
+) -> CaseMixFit:
     """Expected values supplied per patient (a risk model fitted elsewhere): used as they are."""
     y = rows[measure.outcome].to_numpy(dtype=float)
     expected = rows[measure.expected_column].to_numpy(dtype=float)
     binary = measure.type == "binary"
     linear = _logit(expected) if binary else np.log(expected)
     return CaseMixFit(
-        measure=measure.key, formula=f"expected value supplied in column '{measure.expected_column}'", family="supplied",
-        patients=len(y), events=float(y.sum()), coefficients=coefficient_table([], np.zeros(0), np.zeros(0)), linear=linear,
-        intercept=0.0, expected=expected, c_statistic=c_statistic(y, linear) if binary else float("nan"),
-        units_in_fit=len(np.unique(unit_codes)), solver="none", used=np.ones(len(y), dtype=bool),
-        exclusions={"policy": measure.missing, "dropped": {}, "imputed": {}, "dropped_rows": 0, "imputed_rows": 0, "by_unit": {}},
+        measure=measure.key,
+        formula=f"expected value supplied in column '{measure.expected_column}'",
+        family="supplied",
+        patients=len(y),
+        events=float(y.sum()),
+        coefficients=coefficient_table([], np.zeros(0), np.zeros(0)),
+        linear=linear,
+        intercept=0.0,
+        expected=expected,
+        c_statistic=c_statistic(y, linear) if binary else float("nan"),
+        units_in_fit=len(np.unique(unit_codes)),
+        solver="none",
+        used=np.ones(len(y), dtype=bool),
+        exclusions={
+            "policy": measure.missing,
+            "dropped": {},
+            "imputed": {},
+            "dropped_rows": 0,
+            "imputed_rows": 0,
+            "by_unit": {},
+        },
     )
 
 
 def without_terms(casemix: str, variables: tuple[str, ...]) -> str:
-    """The case-mix formula with every term that uses one of ``variables`` removed ("1" if none is left).
+    """The case-mix formula with every term that uses one of ``variables`` removed ("1" if none is
+    left).
 
     Terms are expanded by patsy first, so in ``age * deprivation`` only ``deprivation`` and
     ``age:deprivation`` go and ``age`` stays.
@@ -381,16 +513,30 @@ def without_terms(casemix: str, variables: tuple[str, ...]) -> str:
     from .data import formula_variables
 
     terms = patsy.ModelDesc.from_formula(casemix).rhs_termlist
-    kept = [t for t in terms if t.factors and not set(formula_variables(" + ".join(f.code for f in t.factors))) & set(variables)]
+    kept = [
+        t
+        for t in terms
+        if t.factors
+        and not set(formula_variables(" + ".join(f.code for f in t.factors))) & set(variables)
+    ]
     return " + ".join(":".join(f.code for f in t.factors) for t in kept) if kept else "1"
 
 
 def unit_summary_fit(measure: MeasureSection, summary: pd.DataFrame) -> CaseMixFit:
-    """Stands in for a case-mix fit when expected events per unit were supplied (unit-level input)."""
+    """Stands in for a case-mix fit when expected events per unit were supplied (unit-level
+    input)."""
     return CaseMixFit(
-        measure=measure.key, formula=f"expected events per unit supplied in {measure.summary}", family="unit summary",
-        patients=int(summary["cases"].sum()), events=float(summary["observed"].sum()),
-        coefficients=coefficient_table([], np.zeros(0), np.zeros(0)), linear=np.zeros(0), intercept=0.0,
-        expected=summary["expected"].to_numpy(float), c_statistic=float("nan"), units_in_fit=0, solver="none",
+        measure=measure.key,
+        formula=f"expected events per unit supplied in {measure.summary}",
+        family="unit summary",
+        patients=int(summary["cases"].sum()),
+        events=float(summary["observed"].sum()),
+        coefficients=coefficient_table([], np.zeros(0), np.zeros(0)),
+        linear=np.zeros(0),
+        intercept=0.0,
+        expected=summary["expected"].to_numpy(float),
+        c_statistic=float("nan"),
+        units_in_fit=0,
+        solver="none",
         used=np.zeros(0, dtype=bool),
     )

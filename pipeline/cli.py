@@ -30,27 +30,57 @@ class ConsoleReporter:
 
 
 def _parser() -> argparse.ArgumentParser:
-    parser = argparse.ArgumentParser(prog="fairgauge", description="Risk-adjusted, shrinkage-based unit reports as a static website.")
+    parser = argparse.ArgumentParser(
+        prog="fairgauge",
+        description="Risk-adjusted, shrinkage-based unit reports as a static website.",
+    )
     parser.add_argument("--version", action="version", version=f"fairgauge {__version__}")
     sub = parser.add_subparsers(dest="command", required=True)
     common = argparse.ArgumentParser(add_help=False)
     common.add_argument("--strict", action="store_true", help="treat warnings as errors")
-    common.add_argument("--renderer", choices=["auto", "quarto", "builtin"], help="override [cycle].renderer")
-    common.add_argument("--refit", action="store_true", help="ignore cached fits and figures; fit and draw everything again")
-    build = sub.add_parser("build", parents=[common], help="run the reporting cycle described by a config file")
+    common.add_argument(
+        "--renderer", choices=["auto", "quarto", "builtin"], help="override [cycle].renderer"
+    )
+    common.add_argument(
+        "--refit",
+        action="store_true",
+        help="ignore cached fits and figures; fit and draw everything again",
+    )
+    build = sub.add_parser(
+        "build", parents=[common], help="run the reporting cycle described by a config file"
+    )
     build.add_argument("config", type=Path, help="cycle config (TOML)")
     check = sub.add_parser("check", help="check a config and its data without fitting anything")
     check.add_argument("config", type=Path, help="cycle config (TOML)")
     demo = sub.add_parser("demo", parents=[common], help="invent a network, then build its site")
-    demo.add_argument("--folder", type=Path, default=Path("demo-cycle"), help="where the invented inputs and config go (default: demo-cycle)")
-    demo.add_argument("--site", type=Path, default=Path("site/demo"), help="where the site goes (default: site/demo)")
-    demo.add_argument("--seed", type=int, default=7, help="seed of the invented network (default: 7)")
-    demo.add_argument("--units", type=int, default=44, help="number of invented units, 30-60 recommended (default: 44)")
+    demo.add_argument(
+        "--folder",
+        type=Path,
+        default=Path("demo-cycle"),
+        help="where the invented inputs and config go (default: demo-cycle)",
+    )
+    demo.add_argument(
+        "--site",
+        type=Path,
+        default=Path("site/demo"),
+        help="where the site goes (default: site/demo)",
+    )
+    demo.add_argument(
+        "--seed", type=int, default=7, help="seed of the invented network (default: 7)"
+    )
+    demo.add_argument(
+        "--units",
+        type=int,
+        default=44,
+        help="number of invented units, 30-60 recommended (default: 44)",
+    )
     return parser
 
 
 def _summary(summary, reporter: ConsoleReporter) -> None:
-    reported = {r.measure.key: int((r.table["status"] == "reported").sum()) for r in summary.results}
+    reported = {
+        r.measure.key: int((r.table["status"] == "reported").sum()) for r in summary.results
+    }
     print(f"\nfairgauge: cycle finished in {summary.seconds:.1f} s")
     print(f"  units:    {summary.units} ({summary.patients:,} patient rows)")
     print(f"  measures: {', '.join(f'{k} ({n} units reported)' for k, n in reported.items())}")
@@ -60,7 +90,8 @@ def _summary(summary, reporter: ConsoleReporter) -> None:
 
 
 def hidden_values(config, cohort) -> list[str]:
-    """Per measure, how many values the disclosure rules will hide (before patients with missing risk factors are left out)."""
+    """Per measure, how many values the disclosure rules will hide (before patients with missing
+    risk factors are left out)."""
     from .disclosure import planned
 
     lines = []
@@ -71,10 +102,19 @@ def hidden_values(config, cohort) -> list[str]:
         else:
             grouped = cohort.rows.groupby(cohort.unit_column)[m.outcome]
             cases, observed = grouped.size(), grouped.sum()
-        n = planned(cases, observed, cohort.units.index, m.type == "binary", config.reporting.hide_counts_below,
-                    config.reporting.minimum_cases)
-        lines.append(f"{m.key}: {n['units']} unit(s) hidden (too few cases or withheld); {n['small']} small count(s) shown as a "
-                     f"range and {n['protects']} more count(s) hidden to protect them")
+        n = planned(
+            cases,
+            observed,
+            cohort.units.index,
+            m.type == "binary",
+            config.reporting.hide_counts_below,
+            config.reporting.minimum_cases,
+        )
+        lines.append(
+            f"{m.key}: {n['units']} unit(s) hidden (too few cases or withheld); {n['small']} "
+            "small count(s) shown as a "
+            f"range and {n['protects']} more count(s) hidden to protect them"
+        )
     return lines
 
 
@@ -92,22 +132,32 @@ def main(argv: list[str] | None = None) -> int:
             cohort = load_cohort(config)
             for w in cohort.warnings:
                 reporter.warn(w)
-            with_cases = set(cohort.rows[cohort.unit_column]) | {u for t in (cohort.summaries or {}).values() if t is not None for u in t.index}
-            print(f"fairgauge: check passed: {len(cohort.rows):,} patient rows, {len(with_cases)} units with cases, "
-                  f"{len(cohort.units)} in the unit table; {len(cohort.warnings)} warning(s). Nothing was fitted.")
+            with_cases = set(cohort.rows[cohort.unit_column]) | {
+                u for t in (cohort.summaries or {}).values() if t is not None for u in t.index
+            }
+            print(
+                f"fairgauge: check passed: {len(cohort.rows):,} patient rows, "
+                f"{len(with_cases)} units with cases, "
+                f"{len(cohort.units)} in the unit table; {len(cohort.warnings)} warning(s). "
+                "Nothing was fitted."
+            )
             for line in hidden_values(config, cohort):
                 print(f"fairgauge: {line}")
             return 0
         if args.command == "demo":
             from .demo import write_demo
 
-            reporter.stage(f"inventing a network of {args.units} units in {args.folder}/ (all data made up)")
+            reporter.stage(
+                f"inventing a network of {args.units} units in {args.folder}/ (all data made up)"
+            )
             files = write_demo(args.folder, args.site, seed=args.seed, n_units=args.units)
             config_path = files.config
         else:
             config_path = args.config
         config = load_config(config_path)
-        summary = run_cycle(config, reporter, strict=args.strict, renderer=args.renderer, no_cache=args.refit)
+        summary = run_cycle(
+            config, reporter, strict=args.strict, renderer=args.renderer, no_cache=args.refit
+        )
     except FairgaugeError as exc:
         print(f"fairgauge: ERROR {exc}", file=sys.stderr)
         return exc.exit_code

@@ -26,21 +26,26 @@ import numpy as np
 from numpy.polynomial import chebyshev
 from scipy.special import expit
 
-DEGREE = 32  # measured error: DEVELOPERS.md, "Unit likelihood curves" (benchmarks/glmer_peer.py prints it)
+# measured error: DEVELOPERS.md, "Unit likelihood curves" (benchmarks/glmer_peer.py prints it)
+DEGREE = 32
 WINDOW_SE = 6.0  # half-width of each unit's window, in standard errors of its intercept
-RATIO_DEGREE, RATIO_RANGE = 64, 8.0  # series of log P_i(a) on [-8, 8] for the predicted/expected ratio
+# series of log P_i(a) on [-8, 8] for the predicted/expected ratio
+RATIO_DEGREE, RATIO_RANGE = 64, 8.0
 
 
 @dataclass(frozen=True)
 class Curves:
-    """Chebyshev series of every unit's log-likelihood in its intercept (units without patients: zero)."""
+    """Chebyshev series of every unit's log-likelihood in its intercept (units without patients:
+    zero)."""
 
     centre: np.ndarray  # (units,)
     width: np.ndarray  # (units,) half-width of the window
     coef: np.ndarray  # (units, DEGREE + 1)
     edges: np.ndarray  # (6, units): L, L', L'' at centre - width, then at centre + width
-    ratio_coef: np.ndarray  # (RATIO_DEGREE + 1, units): series of log P_i(a), P_i(a) = sum n expit(offset + a)
-    se: np.ndarray  # (units,) standard error of the intercept at the centre (for the parameterisation)
+    # (RATIO_DEGREE + 1, units): series of log P_i(a), P_i(a) = sum n expit(offset + a)
+    ratio_coef: np.ndarray
+    # (units,) standard error of the intercept at the centre (for the parameterisation)
+    se: np.ndarray
 
     def data(self) -> dict[str, np.ndarray]:
         return {"coef": self.coef, "centre": self.centre, "width": self.width, "edges": self.edges}
@@ -51,7 +56,9 @@ class Curves:
         return chebyshev.chebval(x, self.ratio_coef, tensor=False)
 
 
-def unit_sums(unit: np.ndarray, offset: np.ndarray, n: np.ndarray, r: np.ndarray, n_units: int, a: np.ndarray):
+def unit_sums(
+    unit: np.ndarray, offset: np.ndarray, n: np.ndarray, r: np.ndarray, n_units: int, a: np.ndarray
+):
     """Exact L_i(a_i), L_i'(a_i) and L_i''(a_i) of every unit, from its cells."""
     eta = offset + a[unit]
     p = expit(eta)
@@ -63,7 +70,8 @@ def unit_sums(unit: np.ndarray, offset: np.ndarray, n: np.ndarray, r: np.ndarray
 
 @numba.njit(cache=True, nogil=True)
 def _at_points(unit, offset, n, r, points, shared):
-    """L_i at each unit's own points (units, m) and P_i at the shared points (q,), in one pass over the cells."""
+    """L_i at each unit's own points (units, m) and P_i at the shared points (q,), in one pass over
+    the cells."""
     k, m = points.shape
     value = np.zeros((k, m))
     predicted = np.zeros((k, len(shared)))
@@ -78,8 +86,11 @@ def _at_points(unit, offset, n, r, points, shared):
     return value, predicted
 
 
-def build_curves(unit: np.ndarray, offset: np.ndarray, n: np.ndarray, r: np.ndarray, n_units: int) -> Curves:
-    """Fit each unit's series at Chebyshev points of a window centred on its (lightly penalised) maximum."""
+def build_curves(
+    unit: np.ndarray, offset: np.ndarray, n: np.ndarray, r: np.ndarray, n_units: int
+) -> Curves:
+    """Fit each unit's series at Chebyshev points of a window centred on its (lightly penalised)
+    maximum."""
     sums = lambda a: unit_sums(unit, offset, n, r, n_units, a)  # noqa: E731
     cases = np.bincount(unit, weights=n, minlength=n_units)
     events = np.bincount(unit, weights=r, minlength=n_units)
@@ -98,7 +109,14 @@ def build_curves(unit: np.ndarray, offset: np.ndarray, n: np.ndarray, r: np.ndar
     nodes = np.cos(np.pi * (np.arange(DEGREE + 1) + 0.5) / (DEGREE + 1))
     grid = np.cos(np.pi * (np.arange(RATIO_DEGREE + 1) + 0.5) / (RATIO_DEGREE + 1))
     points = centre[:, None] + width[:, None] * nodes[None, :]
-    values, predicted = _at_points(unit.astype(np.int64), offset.astype(float), n.astype(float), r.astype(float), points, RATIO_RANGE * grid)
+    values, predicted = _at_points(
+        unit.astype(np.int64),
+        offset.astype(float),
+        n.astype(float),
+        r.astype(float),
+        points,
+        RATIO_RANGE * grid,
+    )
     coef = np.ascontiguousarray(chebyshev.chebfit(nodes, values.T, DEGREE).T)
     edges = np.array([*sums(centre - width), *sums(centre + width)])
     ratio_coef = chebyshev.chebfit(grid, np.log(np.maximum(predicted.T, 1e-300)), RATIO_DEGREE)
@@ -132,19 +150,35 @@ def curve_values(a, coef, centre, width, edges, derivative):
     return out
 
 
-def max_error(unit, offset, n, r, n_units: int, curves: Curves, points: int = 20, seed: int = 0) -> float:
-    """Largest absolute difference between the series and the exact L_i at random points of every window."""
+def max_error(
+    unit, offset, n, r, n_units: int, curves: Curves, points: int = 20, seed: int = 0
+) -> float:
+    """Largest absolute difference between the series and the exact L_i at random points of every
+    window."""
     rng = np.random.default_rng(seed)
     worst = 0.0
     for _ in range(points):
         a = curves.centre + curves.width * rng.uniform(-1, 1, n_units)
         exact = unit_sums(unit, offset, n, r, n_units, a)[0]
-        worst = max(worst, float(np.max(np.abs(exact - curve_values(a, curves.coef, curves.centre, curves.width, curves.edges, False)))))
+        worst = max(
+            worst,
+            float(
+                np.max(
+                    np.abs(
+                        exact
+                        - curve_values(
+                            a, curves.coef, curves.centre, curves.width, curves.edges, False
+                        )
+                    )
+                )
+            ),
+        )
     return worst
 
 
 def _op_classes():
-    """The PyTensor Op (built lazily: importing PyTensor is slow and the data stages do not need it)."""
+    """The PyTensor Op (built lazily: importing PyTensor is slow and the data stages do not need
+    it)."""
     import pytensor
     import pytensor.tensor as pt
     from pytensor.graph.basic import Apply
@@ -152,25 +186,30 @@ def _op_classes():
     from pytensor.link.numba.dispatch.basic import register_funcify_default_op_cache_key
 
     class CurveLogLik(Op):
-        """Per-unit log-likelihood from the curves (``derivative=True``: its slope, for the gradient)."""
+        """Per-unit log-likelihood from the curves (``derivative=True``: its slope, for the
+        gradient)."""
 
         __props__ = ("derivative",)
 
         def __init__(self, derivative: bool = False):
             self.derivative = derivative
 
-        def make_node(self, a, coef, centre, width, edges):
+        def make_node(self, a, coef, centre, width, edges):  # type: ignore[override]
             inputs = [pt.as_tensor_variable(v) for v in (a, coef, centre, width, edges)]
             return Apply(self, inputs, [pt.dvector()])
 
         def perform(self, node, inputs, outputs):
-            outputs[0][0] = curve_values(*[np.asarray(v, dtype=float) for v in inputs], self.derivative)
+            outputs[0][0] = curve_values(
+                *[np.asarray(v, dtype=float) for v in inputs], self.derivative
+            )
 
         def grad(self, inputs, output_grads):
             if self.derivative:
                 raise NotImplementedError("the sampler needs first derivatives only")
             slope = CurveLogLik(True)(*inputs)
-            return [output_grads[0] * slope] + [pytensor.gradient.grad_undefined(self, i, v) for i, v in enumerate(inputs[1:], 1)]
+            return [output_grads[0] * slope] + [
+                pytensor.gradient.grad_undefined(self, i, v) for i, v in enumerate(inputs[1:], 1)
+            ]
 
     @register_funcify_default_op_cache_key(CurveLogLik)
     def _numba(op, node=None, **kwargs):
@@ -189,7 +228,8 @@ _OP = None
 
 
 def curve_loglik(a, data: dict):
-    """The symbolic per-unit log-likelihood for a PyMC model (``data``: pm.Data of :meth:`Curves.data`)."""
+    """The symbolic per-unit log-likelihood for a PyMC model (``data``: pm.Data of
+    :meth:`Curves.data`)."""
     global _OP
     if _OP is None:
         _OP = _op_classes()

@@ -1,4 +1,5 @@
-"""Disclosure control: small counts shown as ranges, and no hidden count that adds back up from what is shown.
+"""Disclosure control: small counts shown as ranges, and no hidden count that adds back up from what
+is shown.
 
 Two rules act on one measure's results table, in place, before anything is formatted:
 
@@ -37,7 +38,8 @@ COUNT_STATUS = {
     "small": "Small count, shown as a range",
     "protects": "Not shown, so that a small count cannot be worked out",
 }
-WITH_COUNT = ["observed", "raw_rate", "oe_ratio", "own_weight"]  # each gives the count back; hidden with it
+# each gives the count back; hidden with it
+WITH_COUNT = ["observed", "raw_rate", "oe_ratio", "own_weight"]
 NEVER = 10**15  # "no upper bound" in an integer range
 
 Ranges = list[tuple[int, int]]  # sorted, disjoint, inclusive integer ranges
@@ -62,7 +64,8 @@ def _intersect(a: Ranges, b: Ranges) -> Ranges:
 
 
 def feasible(ranges: list[Ranges], total: int) -> list[Ranges]:
-    """Every value each hidden number can take, given its range and that all of them add up to ``total``."""
+    """Every value each hidden number can take, given its range and that all of them add up to
+    ``total``."""
     n = len(ranges)
     prefix: list[Ranges] = [[(0, 0)]]
     for r in ranges[:-1]:
@@ -102,7 +105,8 @@ def band(cases: int, observed: int, threshold: int) -> tuple[int, int]:
 
 
 def protect_units(table: pd.DataFrame, minimum: int) -> None:
-    """Withhold the smallest reported units until no hidden unit's cases can be worked out (in place)."""
+    """Withhold the smallest reported units until no hidden unit's cases can be worked out (in
+    place)."""
     while True:
         hidden = table["status"].isin(["too_few", "withheld"])
         reported = table[table["status"] == "reported"]
@@ -123,7 +127,8 @@ def _unit_ranges(table: pd.DataFrame, minimum: int) -> list[Ranges]:
 
 
 def hide_small_counts(table: pd.DataFrame, threshold: int, minimum: int) -> None:
-    """Apply the small-count rule to a binary measure's table (in place); ``threshold`` 0 shows every count.
+    """Apply the small-count rule to a binary measure's table (in place); ``threshold`` 0 shows
+    every count.
 
     Adds ``count_status`` (COUNT_STATUS) and the published range ``observed_low``/``observed_high``
     of small counts, and empties WITH_COUNT wherever a count is not shown.
@@ -131,30 +136,48 @@ def hide_small_counts(table: pd.DataFrame, threshold: int, minimum: int) -> None
     table["count_status"] = np.where(table["status"] == "reported", "shown", "")
     table["observed_low"], table["observed_high"] = np.nan, np.nan
     if threshold:
-        where = (table["status"] == "reported") & small(table["cases"], table["observed"], threshold)
+        where = (table["status"] == "reported") & small(
+            table["cases"], table["observed"], threshold
+        )
         table.loc[where, "count_status"] = "small"
         for i in table.index[where]:
-            table.loc[i, ["observed_low", "observed_high"]] = band(int(table.at[i, "cases"]), int(table.at[i, "observed"]), threshold)
+            table.loc[i, ["observed_low", "observed_high"]] = band(
+                int(table.at[i, "cases"]), int(table.at[i, "observed"]), threshold
+            )
         while _given_back(count_ranges(table, threshold, minimum)):
             pool = table[(table["count_status"] == "shown") & (table["observed"] >= threshold)]
             if pool.empty:
-                raise InputError([Problem(
-                    f"measure '{table['measure'].iloc[0]}'", "the small-count rule cannot hide its small counts: every other "
-                    "count is zero or small too, so the network total would give them back. Nothing was published. Raise "
-                    "[reporting].minimum_cases, or pool periods so that counts are larger.")])
-            table.loc[pool.sort_values(["observed", "cases", "unit_id"]).index[0], "count_status"] = "protects"
+                raise InputError(
+                    [
+                        Problem(
+                            f"measure '{table['measure'].iloc[0]}'",
+                            "the small-count rule cannot hide its small counts: every other "
+                            "count is zero or small too, so the network total would give them "
+                            "back. Nothing was published. Raise "
+                            "[reporting].minimum_cases, or pool periods so that counts are larger.",
+                        )
+                    ]
+                )
+            table.loc[
+                pool.sort_values(["observed", "cases", "unit_id"]).index[0], "count_status"
+            ] = "protects"
     table.loc[table["status"] != "reported", WITH_COUNT] = np.nan
     table.loc[table["count_status"].isin(["small", "protects"]), WITH_COUNT] = np.nan
 
 
 def _given_back(ranges: list[Ranges]) -> list[int]:
-    """Hidden counts pinned to one value other than zero (zeros are shown by the rule, so a pinned zero tells nothing new)."""
+    """Hidden counts pinned to one value other than zero (zeros are shown by the rule, so a pinned
+    zero tells nothing new)."""
     return [i for i in pinned(ranges) if ranges[i] != [(0, 0)]]
 
 
 def count_ranges(table: pd.DataFrame, threshold: int, minimum: int) -> list[Ranges]:
-    """What a reader can know of every hidden event count of a measure (feasible values under the network total)."""
-    hidden = table[(table["status"].isin(["too_few", "withheld"])) | table["count_status"].isin(["small", "protects"])]
+    """What a reader can know of every hidden event count of a measure (feasible values under the
+    network total)."""
+    hidden = table[
+        (table["status"].isin(["too_few", "withheld"]))
+        | table["count_status"].isin(["small", "protects"])
+    ]
     if hidden.empty:
         return []
     shown = table[table["count_status"] == "shown"]
@@ -172,22 +195,39 @@ def count_ranges(table: pd.DataFrame, threshold: int, minimum: int) -> list[Rang
             ranges.append([(int(row.observed_low), int(row.observed_high))])
         else:  # protects: a count that was not small, at most the smallest count still shown
             c = int(row.cases)
-            ranges.append(_intersect(_merge([(threshold, c - threshold), (c, c)]), [(threshold, cap_value)]))
+            ranges.append(
+                _intersect(_merge([(threshold, c - threshold), (c, c)]), [(threshold, cap_value)])
+            )
     return feasible(ranges, int(round(hidden["observed"].sum())))
 
 
-def planned(cases: pd.Series, observed: pd.Series, unit_ids, binary: bool, threshold: int, minimum: int) -> dict[str, int]:
-    """What the two rules will hide for one measure, from its counts per unit (for ``fairgauge check``).
+def planned(
+    cases: pd.Series, observed: pd.Series, unit_ids, binary: bool, threshold: int, minimum: int
+) -> dict[str, int]:
+    """What the two rules will hide for one measure, from its counts per unit (for ``fairgauge
+    check``).
 
-    ``cases`` and ``observed`` are indexed by unit id; units of ``unit_ids`` without rows have no cases.
+    ``cases`` and ``observed`` are indexed by unit id; units of ``unit_ids`` without rows have no
+    cases.
     """
     ids = pd.Index(unit_ids)
-    table = pd.DataFrame({"measure": "", "unit_id": ids, "cases": cases.reindex(ids).fillna(0).to_numpy(int),
-                          "observed": observed.reindex(ids).fillna(0).to_numpy(float)})
-    table["status"] = np.select([table["cases"] == 0, table["cases"] < minimum], ["no_cases", "too_few"], "reported")
+    table = pd.DataFrame(
+        {
+            "measure": "",
+            "unit_id": ids,
+            "cases": cases.reindex(ids).fillna(0).to_numpy(int),
+            "observed": observed.reindex(ids).fillna(0).to_numpy(float),
+        }
+    )
+    table["status"] = np.select(
+        [table["cases"] == 0, table["cases"] < minimum], ["no_cases", "too_few"], "reported"
+    )
     protect_units(table, minimum)
     for column in WITH_COUNT[1:]:
         table[column] = np.nan
     hide_small_counts(table, threshold if binary else 0, minimum)
-    return {"units": int(table["status"].isin(["too_few", "withheld"]).sum()),
-            "small": int((table["count_status"] == "small").sum()), "protects": int((table["count_status"] == "protects").sum())}
+    return {
+        "units": int(table["status"].isin(["too_few", "withheld"]).sum()),
+        "small": int((table["count_status"] == "small").sum()),
+        "protects": int((table["count_status"] == "protects").sum()),
+    }

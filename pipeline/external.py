@@ -22,8 +22,15 @@ def run_tool(command: list[str], cwd: Path | None = None, timeout: float | None 
     """Run ``command``, return its combined output; raise ToolError if it fails."""
     try:
         done = subprocess.run(
-            command, cwd=cwd, stdout=subprocess.PIPE, stderr=subprocess.STDOUT, text=True,
-            errors="replace", timeout=timeout, check=False, stdin=subprocess.DEVNULL,
+            command,
+            cwd=cwd,
+            stdout=subprocess.PIPE,
+            stderr=subprocess.STDOUT,
+            text=True,
+            errors="replace",
+            timeout=timeout,
+            check=False,
+            stdin=subprocess.DEVNULL,
         )
     except FileNotFoundError:
         raise ToolError(command, 127, f"'{command[0]}' was not found on PATH.") from None

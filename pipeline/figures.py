@@ -34,7 +34,9 @@ from .cache import Cache, key
 from .results import GROUPS, MeasureResult
 
 matplotlib.use("Agg")
-matplotlib.rcParams.update({"svg.fonttype": "none", "svg.hashsalt": "fairgauge", "font.family": "DejaVu Sans"})
+matplotlib.rcParams.update(
+    {"svg.fonttype": "none", "svg.hashsalt": "fairgauge", "font.family": "DejaVu Sans"}
+)
 
 # group key -> (colour, marker); the words are GROUPS[key]. Shared with captions and pages.
 GROUP_MARKS = {
@@ -54,14 +56,29 @@ LEGEND = "Group"
 def _group_scales():
     labels = {k: GROUPS[k] for k in GROUP_MARKS}
     return [
-        p9.scale_color_manual(values={k: c for k, (c, _) in GROUP_MARKS.items()}, labels=labels, name=LEGEND, drop=False, limits=list(GROUP_MARKS)),
-        p9.scale_shape_manual(values={k: s for k, (_, s) in GROUP_MARKS.items()}, labels=labels, name=LEGEND, drop=False, limits=list(GROUP_MARKS)),
+        p9.scale_color_manual(
+            values={k: c for k, (c, _) in GROUP_MARKS.items()},
+            labels=labels,
+            name=LEGEND,
+            drop=False,
+            limits=list(GROUP_MARKS),
+        ),
+        p9.scale_shape_manual(
+            values={k: s for k, (_, s) in GROUP_MARKS.items()},
+            labels=labels,
+            name=LEGEND,
+            drop=False,
+            limits=list(GROUP_MARKS),
+        ),
     ]
 
 
 def _theme(width: float, height: float):
     return p9.theme_bw(base_size=10) + p9.theme(
-        figure_size=(width, height), legend_position="bottom", legend_direction="vertical", panel_grid_minor=p9.element_blank()
+        figure_size=(width, height),
+        legend_position="bottom",
+        legend_direction="vertical",
+        panel_grid_minor=p9.element_blank(),
     )
 
 
@@ -83,6 +100,7 @@ _SOURCE = hashlib.sha256(Path(__file__).read_bytes()).hexdigest()  # drawing cod
 
 # --- paths ---------------------------------------------------------------------------------
 
+
 def measure_figure_path(measure_key: str, kind: str = "intervals") -> str:
     """kind: intervals | funnel | movement."""
     return f"figures/{kind}-{measure_key}.svg"
@@ -99,6 +117,7 @@ def png_of(relative: str) -> str:
 
 # --- jobs and the cache ----------------------------------------------------------------------
 
+
 @dataclass
 class Job:
     """One drawing: ``draw(*args, path, png)`` writes ``relative`` (and its PNG when ``png``)."""
@@ -108,12 +127,15 @@ class Job:
     data: pd.DataFrame
     args: tuple = ()
     png: bool = False
-    args_text: str = ""  # the args as hashed text, when many jobs share them (computed once by the caller)
+    # the args as hashed text, when many jobs share them (computed once by the caller)
+    args_text: str = ""
     cache_name: str = field(default="", init=False)
 
     def __post_init__(self):
         # DataFrames are hashed by their full CSV text (json's default=str would truncate them).
-        args = self.args_text or tuple(a.to_csv() if isinstance(a, pd.DataFrame) else a for a in self.args)
+        args = self.args_text or tuple(
+            a.to_csv() if isinstance(a, pd.DataFrame) else a for a in self.args
+        )
         self.cache_name = key("figure", self.draw, self.data.to_csv(), args, self.png, _SOURCE)
 
 
@@ -124,8 +146,17 @@ def _run(job_draw: str, data: pd.DataFrame, args: tuple, path: str, png: bool) -
 class Drawing:
     """Figures being drawn: the main process has drawn its share; ``wait`` collects the worker's."""
 
-    def __init__(self, project: Path, jobs: list[Job], todo: list[Job], cache: Cache, pool, futures):
-        self.project, self.jobs, self.todo, self.cache, self.pool, self.futures = project, jobs, todo, cache, pool, futures
+    def __init__(
+        self, project: Path, jobs: list[Job], todo: list[Job], cache: Cache, pool, futures
+    ):
+        self.project, self.jobs, self.todo, self.cache, self.pool, self.futures = (
+            project,
+            jobs,
+            todo,
+            cache,
+            pool,
+            futures,
+        )
         # Every planned file exists once ``wait`` returns: each SVG with the data it was drawn from
         # (pages build alt text and tables from exactly that), each PNG copy with None.
         self.drawn: dict[str, pd.DataFrame | None] = {job.relative: job.data for job in jobs}
@@ -147,7 +178,8 @@ class Drawing:
 
 
 def draw_all(project: Path, jobs: list[Job], cache: Cache, workers: int = WORKERS) -> Drawing:
-    """Start drawing every job into ``project`` (cached ones are copied); call ``wait()`` before using the files.
+    """Start drawing every job into ``project`` (cached ones are copied); call ``wait()`` before
+    using the files.
 
     With 2 workers the main process draws half of the work itself while one spawned process draws
     the other half; the caller can write pages in between, while the worker finishes.
@@ -156,8 +188,9 @@ def draw_all(project: Path, jobs: list[Job], cache: Cache, workers: int = WORKER
     for job in jobs:
         path = project / job.relative
         path.parent.mkdir(parents=True, exist_ok=True)
-        hits = [cache.file(job.cache_name + ".svg")] + ([cache.file(job.cache_name + ".png")] if job.png else [])
-        if all(h is not None for h in hits):
+        names = [job.cache_name + ".svg"] + ([job.cache_name + ".png"] if job.png else [])
+        hits = [h for h in map(cache.file, names) if h is not None]
+        if len(hits) == len(names):
             shutil.copyfile(hits[0], path)
             if job.png:
                 shutil.copyfile(hits[1], path.with_suffix(".png"))
@@ -191,12 +224,20 @@ def _cost(task: tuple) -> float:
 
 
 def _tasks(project: Path, jobs: list[Job], workers: int) -> list[tuple]:
-    """(function name, arguments) per task, costliest first; unit strips in chunks that share one frame."""
+    """(function name, arguments) per task, costliest first; unit strips in chunks that share one
+    frame."""
     strips = [j for j in jobs if j.draw == "draw_position"]
-    tasks = [("_run", (j.draw, j.data, j.args, str(project / j.relative), j.png)) for j in jobs if j.draw != "draw_position"]
+    tasks: list[tuple[str, tuple]] = [
+        ("_run", (j.draw, j.data, j.args, str(project / j.relative), j.png))
+        for j in jobs
+        if j.draw != "draw_position"
+    ]
     chunks = 2 * workers if len(strips) > 40 else 1
-    tasks += [("draw_positions", (_frame_of(strips), [(str(project / j.relative), j.data) for j in part]))
-              for part in (strips[i::chunks] for i in range(chunks)) if part]
+    tasks += [
+        ("draw_positions", (_frame_of(strips), [(str(project / j.relative), j.data) for j in part]))
+        for part in (strips[i::chunks] for i in range(chunks))
+        if part
+    ]
     return sorted(tasks, key=_cost, reverse=True)
 
 
@@ -206,8 +247,10 @@ def _frame_of(strips: list[Job]) -> pd.DataFrame | None:
 
 # --- measure figures -------------------------------------------------------------------------
 
+
 def axis(result: MeasureResult) -> tuple[float, str]:
-    """(multiplier, axis label) for a measure's adjusted values: percent for rates, the outcome's unit otherwise."""
+    """(multiplier, axis label) for a measure's adjusted values: percent for rates, the outcome's
+    unit otherwise."""
     if result.measure.type == "continuous":
         return 1.0, f"Adjusted mean, {result.measure.unit_label}"
     return 100.0, "Risk-standardised rate, %"
@@ -218,7 +261,13 @@ def measure_figure_data(result: MeasureResult) -> pd.DataFrame:
     t = result.table[result.table["status"] == "reported"].sort_values(["rsr_median", "unit_name"])
     k = axis(result)[0]
     return pd.DataFrame(
-        {"unit_name": t["unit_name"], "rsr": t["rsr_median"] * k, "lo": t["rsr_lower"] * k, "hi": t["rsr_upper"] * k, "group": t["group"]}
+        {
+            "unit_name": t["unit_name"],
+            "rsr": t["rsr_median"] * k,
+            "lo": t["rsr_lower"] * k,
+            "hi": t["rsr_upper"] * k,
+            "group": t["group"],
+        }
     ).reset_index(drop=True)
 
 
@@ -234,7 +283,8 @@ def _unit_axis(names: pd.Series) -> pd.Categorical:
 
 
 def draw_intervals(data: pd.DataFrame, benchmark: float, label: str, path: Path, png: bool) -> None:
-    """All reported units' adjusted values with credible intervals against the benchmark (both already scaled)."""
+    """All reported units' adjusted values with credible intervals against the benchmark (both
+    already scaled)."""
     data = data.assign(unit=_unit_axis(data["unit_name"]))
     # Units on the y axis directly (no coord_flip) and one drawing group per colour: plotnine
     # otherwise draws every unit as its own group, which is slow for hundreds of units.
@@ -252,80 +302,127 @@ def draw_intervals(data: pd.DataFrame, benchmark: float, label: str, path: Path,
 
 def movement_figure_data(result: MeasureResult) -> pd.DataFrame:
     """Each reported unit's raw and adjusted value, fewest cases first (small units move most)."""
-    t = result.table[(result.table["status"] == "reported") & result.table["raw_rate"].notna()].sort_values(["cases", "unit_name"])
+    t = result.table[
+        (result.table["status"] == "reported") & result.table["raw_rate"].notna()
+    ].sort_values(["cases", "unit_name"])
     k = axis(result)[0]
     return pd.DataFrame(
-        {"unit_name": t["unit_name"], "cases": t["cases"].astype(int), "raw": t["raw_rate"] * k, "adjusted": t["rsr_median"] * k, "group": t["group"]}
+        {
+            "unit_name": t["unit_name"],
+            "cases": t["cases"].astype(int),
+            "raw": t["raw_rate"] * k,
+            "adjusted": t["rsr_median"] * k,
+            "group": t["group"],
+        }
     ).reset_index(drop=True)
 
 
 def draw_movement(data: pd.DataFrame, benchmark: float, label: str, path: Path, png: bool) -> None:
-    """A line per unit from its raw value (hollow circle) to its adjusted value (group marker), at its number of cases.
+    """A line per unit from its raw value (hollow circle) to its adjusted value (group marker), at
+    its number of cases.
 
     Cases on a log scale up the side: small units sit low and move furthest. Unit names are in
     the table beside the figure, which keeps the chart readable (and quick) for hundreds of units.
     """
+    short_label = label.replace("Adjusted mean", "Mean").replace("Risk-standardised rate", "Rate")
     plot = (
         p9.ggplot(data, p9.aes(y="cases", group="group"))
         + p9.geom_vline(xintercept=benchmark, linetype="dashed", colour=BENCHMARK_INK)
-        + p9.geom_segment(p9.aes(x="raw", xend="adjusted", yend="cases"), colour="#595959", size=0.6)
+        + p9.geom_segment(
+            p9.aes(x="raw", xend="adjusted", yend="cases"), colour="#595959", size=0.6
+        )
         + p9.geom_point(p9.aes(x="raw"), shape="o", fill="white", colour="#595959", size=2.2)
         + p9.geom_point(p9.aes(x="adjusted", colour="group", shape="group"), size=2.6)
         + _group_scales()
         + p9.scale_y_log10()
-        + p9.labs(y="Cases (log scale)", x=f"{label.replace('Adjusted mean', 'Mean').replace('Risk-standardised rate', 'Rate')}\n"
-                  f"hollow circle: raw; marker: adjusted; dashed line: benchmark {benchmark:.1f}")
+        + p9.labs(
+            y="Cases (log scale)",
+            x=f"{short_label}\n"
+            f"hollow circle: raw; marker: adjusted; dashed line: benchmark {benchmark:.1f}",
+        )
         + _theme(7.5, 5.6)
     )
     _save(plot, path, png)
 
 
-def draw_funnel(points: pd.DataFrame, curves: pd.DataFrame, benchmark: float, label: str, path: Path, png: bool) -> None:
-    """Each unit's value from its O/E against the precision of that O/E, with 95% and 99.8% control limits (scaled)."""
+def draw_funnel(
+    points: pd.DataFrame, curves: pd.DataFrame, benchmark: float, label: str, path: Path, png: bool
+) -> None:
+    """Each unit's value from its O/E against the precision of that O/E, with 95% and 99.8% control
+    limits (scaled)."""
     long = curves.melt(id_vars="precision", var_name="limit", value_name="value")
     long["limits"] = np.where(long["limit"].str.endswith("998"), "99.8% limits", "95% limits")
     long["side"] = long["limit"].str.split("_").str[0]
     plot = (
         p9.ggplot()
         + p9.geom_hline(yintercept=benchmark, colour=BENCHMARK_INK)
-        + p9.geom_line(long, p9.aes(x="precision", y="value", linetype="limits", group="limit"), colour="#3A3A3A")
-        + p9.geom_point(points, p9.aes(x="precision", y="value", colour="group", shape="group"), size=2.4)
-        + p9.scale_linetype_manual(values={"95% limits": "dashed", "99.8% limits": "dotted"}, name="Control limits")
+        + p9.geom_line(
+            long,
+            p9.aes(x="precision", y="value", linetype="limits", group="limit"),
+            colour="#3A3A3A",
+        )
+        + p9.geom_point(
+            points, p9.aes(x="precision", y="value", colour="group", shape="group"), size=2.4
+        )
+        + p9.scale_linetype_manual(
+            values={"95% limits": "dashed", "99.8% limits": "dotted"}, name="Control limits"
+        )
         + _group_scales()
         + p9.scale_x_log10()
-        + p9.labs(x="Precision of the unit's O/E (log scale; grows with its expected events)",
-                  y=f"{label.replace('Risk-standardised rate', 'Adjusted rate')} from O/E\n(solid line: benchmark {benchmark:.1f})")
-        + _theme(7.5, 5.6) + p9.theme(legend_box="horizontal")
+        + p9.labs(
+            x="Precision of the unit's O/E (log scale; grows with its expected events)",
+            y=f"{label.replace('Risk-standardised rate', 'Adjusted rate')} from O/E\n(solid "
+            f"line: benchmark {benchmark:.1f})",
+        )
+        + _theme(7.5, 5.6)
+        + p9.theme(legend_box="horizontal")
     )
     _save(plot, path, png)
 
 
 # --- unit figures ----------------------------------------------------------------------------
 
-def position_frame(results: list[MeasureResult]) -> pd.DataFrame:
-    """The part of every unit strip that is the same for all units: per measure, where most units sit.
 
-    Ratios to the benchmark: the benchmark itself (1, benchmark.py), and the 10th-90th percentile band of the
-    reported units' adjusted ratios.
+def position_frame(results: list[MeasureResult]) -> pd.DataFrame:
+    """The part of every unit strip that is the same for all units: per measure, where most units
+    sit.
+
+    Ratios to the benchmark: the benchmark itself (1, benchmark.py), and the 10th-90th percentile
+    band of the reported units' adjusted ratios.
     """
     rows = []
     for r in results:
         t = r.table[r.table["status"] == "reported"]
-        lo, hi = (np.quantile(t["ratio_median"], [0.1, 0.9]) if len(t) else (np.nan, np.nan))
-        rows.append({"measure": r.measure.name, "bench": 1.0, "band_lo": lo, "band_hi": hi,
-                     "x_min": float(t["ratio_lower"].min()) if len(t) else 0.8, "x_max": float(t["ratio_upper"].max()) if len(t) else 1.25})
+        lo, hi = np.quantile(t["ratio_median"], [0.1, 0.9]) if len(t) else (np.nan, np.nan)
+        rows.append(
+            {
+                "measure": r.measure.name,
+                "bench": 1.0,
+                "band_lo": lo,
+                "band_hi": hi,
+                "x_min": float(t["ratio_lower"].min()) if len(t) else 0.8,
+                "x_max": float(t["ratio_upper"].max()) if len(t) else 1.25,
+            }
+        )
     return pd.DataFrame(rows)
 
 
 def position_data(unit_id: str, results: list[MeasureResult]) -> pd.DataFrame | None:
-    """A unit's adjusted ratio to the benchmark on every measure (NaN where not reported); None if none reported."""
+    """A unit's adjusted ratio to the benchmark on every measure (NaN where not reported); None if
+    none reported."""
     rows = []
     for r in results:
         row = r.table[r.table["unit_id"] == unit_id]
         reported = len(row) and row["status"].iloc[0] == "reported"
-        rows.append({"measure": r.measure.name, "ratio": row["ratio_median"].iloc[0] if reported else np.nan,
-                     "lo": row["ratio_lower"].iloc[0] if reported else np.nan, "hi": row["ratio_upper"].iloc[0] if reported else np.nan,
-                     "group": row["group"].iloc[0] if reported else ""})
+        rows.append(
+            {
+                "measure": r.measure.name,
+                "ratio": row["ratio_median"].iloc[0] if reported else np.nan,
+                "lo": row["ratio_lower"].iloc[0] if reported else np.nan,
+                "hi": row["ratio_upper"].iloc[0] if reported else np.nan,
+                "group": row["group"].iloc[0] if reported else "",
+            }
+        )
     data = pd.DataFrame(rows)
     return None if data["ratio"].isna().all() else data
 
@@ -337,26 +434,44 @@ def _x_limits(frame: pd.DataFrame) -> tuple[float, float]:
 
 
 def draw_positions(frame: pd.DataFrame, items: list[tuple[str, pd.DataFrame]]) -> None:
-    """Unit strips: the frame is drawn once with plotnine, then each unit's marks are placed and saved.
+    """Unit strips: the frame is drawn once with plotnine, then each unit's marks are placed and
+    saved.
 
-    One row per measure on a single panel (fewer artists than facets, so each file is quick to write).
+    One row per measure on a single panel (fewer artists than facets, so each file is quick to
+    write).
     """
     from matplotlib.lines import Line2D
     from matplotlib.transforms import blended_transform_factory
 
     measures = list(frame["measure"])
     rows = np.arange(len(measures))[::-1].astype(float)  # first measure on top
-    f = frame.assign(row=rows, bottom=rows - 0.36, top=rows + 0.36, b_lo=rows - 0.45, b_hi=rows + 0.45)
+    f = frame.assign(
+        row=rows, bottom=rows - 0.36, top=rows + 0.36, b_lo=rows - 0.45, b_hi=rows + 0.45
+    )
     lo, hi = _x_limits(frame)
     plot = (
         p9.ggplot(f)
-        + p9.geom_rect(p9.aes(xmin="band_lo", xmax="band_hi", ymin="bottom", ymax="top"), fill=BAND_FILL, na_rm=True)
-        + p9.geom_segment(p9.aes(x="bench", xend="bench", y="b_lo", yend="b_hi"), linetype="dashed", colour=BENCHMARK_INK)
+        + p9.geom_rect(
+            p9.aes(xmin="band_lo", xmax="band_hi", ymin="bottom", ymax="top"),
+            fill=BAND_FILL,
+            na_rm=True,
+        )
+        + p9.geom_segment(
+            p9.aes(x="bench", xend="bench", y="b_lo", yend="b_hi"),
+            linetype="dashed",
+            colour=BENCHMARK_INK,
+        )
         + p9.scale_x_log10(limits=(lo, hi))
-        + p9.scale_y_continuous(breaks=list(rows), labels=measures, limits=(-0.6, len(measures) - 0.4))
+        + p9.scale_y_continuous(
+            breaks=list(rows), labels=measures, limits=(-0.6, len(measures) - 0.4)
+        )
         + p9.labs(x="Adjusted ratio to the benchmark (log scale)", y="")
         + p9.theme_bw(base_size=9)
-        + p9.theme(figure_size=(7.5, 0.9 + 0.42 * len(measures)), panel_grid_minor=p9.element_blank(), panel_grid_major_y=p9.element_blank())
+        + p9.theme(
+            figure_size=(7.5, 0.9 + 0.42 * len(measures)),
+            panel_grid_minor=p9.element_blank(),
+            panel_grid_major_y=p9.element_blank(),
+        )
     )
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
@@ -366,18 +481,36 @@ def draw_positions(frame: pd.DataFrame, items: list[tuple[str, pd.DataFrame]]) -
     # engine whose colour-bar settings differ, hence the attribute.)
     fig.canvas.draw()
     fig.savefig(io.BytesIO(), format="svg")
-    fig._layout_engine = None
+    fig._layout_engine = None  # type: ignore[attr-defined]
     ax = fig.axes[0]
     at_right = blended_transform_factory(ax.transAxes, ax.transData)
     marks = []
     for row in rows:
         line = Line2D([], [], linewidth=2.4)
-        point = Line2D([], [], linestyle="none", markersize=8, markerfacecolor="white", markeredgewidth=1.8)
+        point = Line2D(
+            [], [], linestyle="none", markersize=8, markerfacecolor="white", markeredgewidth=1.8
+        )
         ax.add_line(line)
         ax.add_line(point)
-        marks.append((line, point, ax.text(0.99, row, "", transform=at_right, ha="right", va="center", fontsize=8.5, color=BENCHMARK_INK), row))
+        marks.append(
+            (
+                line,
+                point,
+                ax.text(
+                    0.99,
+                    row,
+                    "",
+                    transform=at_right,
+                    ha="right",
+                    va="center",
+                    fontsize=8.5,
+                    color=BENCHMARK_INK,
+                ),
+                row,
+            )
+        )
     for path, data in items:
-        for (line, point, text, y), (_, r) in zip(marks, data.iterrows()):
+        for (line, point, text, y), (_, r) in zip(marks, data.iterrows(), strict=True):
             if pd.isna(r["ratio"]):
                 line.set_data([], [])
                 point.set_data([], [])
@@ -396,17 +529,30 @@ def draw_positions(frame: pd.DataFrame, items: list[tuple[str, pd.DataFrame]]) -
     matplotlib.pyplot.close(fig)
 
 
-def trend_data(unit_id: str, results: list[MeasureResult], past, period: str = "this cycle") -> pd.DataFrame | None:
-    """A unit's published adjusted values in each kept cycle and now (scaled like the measure charts)."""
+def trend_data(
+    unit_id: str, results: list[MeasureResult], past, period: str = "this cycle"
+) -> pd.DataFrame | None:
+    """A unit's published adjusted values in each kept cycle and now (scaled like the measure
+    charts)."""
     rows = []
     for r in results:
         k = axis(r)[0]
-        cycles = [(p.period, p.table[p.table["measure"] == r.measure.key]) for p in past] + [(None, r.table)]
+        cycles = [(p.period, p.table[p.table["measure"] == r.measure.key]) for p in past] + [
+            (None, r.table)
+        ]
         for i, (label, table) in enumerate(cycles):
             row = table[(table["unit_id"] == unit_id) & (table["status"] == "reported")]
             if len(row):
-                rows.append({"measure": r.measure.name, "order": i, "period": label or period, "value": row["rsr_median"].iloc[0] * k,
-                             "lo": row["rsr_lower"].iloc[0] * k, "hi": row["rsr_upper"].iloc[0] * k})
+                rows.append(
+                    {
+                        "measure": r.measure.name,
+                        "order": i,
+                        "period": label or period,
+                        "value": row["rsr_median"].iloc[0] * k,
+                        "lo": row["rsr_lower"].iloc[0] * k,
+                        "hi": row["rsr_upper"].iloc[0] * k,
+                    }
+                )
     data = pd.DataFrame(rows)
     if data.empty or data.groupby("measure")["order"].nunique().max() < 2:
         return None  # a trend needs at least two cycles
@@ -416,8 +562,10 @@ def trend_data(unit_id: str, results: list[MeasureResult], past, period: str = "
 def draw_trend(data: pd.DataFrame, path: Path, png: bool) -> None:
     """A unit's adjusted value per cycle with its interval, one panel per measure."""
     periods = list(dict.fromkeys(data.sort_values("order")["period"]))
-    data = data.assign(period=pd.Categorical(data["period"], categories=periods, ordered=True),
-                       measure=pd.Categorical(data["measure"], categories=list(dict.fromkeys(data["measure"]))))
+    data = data.assign(
+        period=pd.Categorical(data["period"], categories=periods, ordered=True),
+        measure=pd.Categorical(data["measure"], categories=list(dict.fromkeys(data["measure"]))),
+    )
     plot = (
         p9.ggplot(data, p9.aes(x="period", y="value", ymin="lo", ymax="hi", group="measure"))
         + p9.geom_line(colour="#595959")
@@ -432,33 +580,46 @@ def draw_trend(data: pd.DataFrame, path: Path, png: bool) -> None:
 
 # --- model report figures --------------------------------------------------------------------
 
+
 def model_figure_path(measure_key: str, kind: str) -> str:
     return f"figures/model-{measure_key}-{kind}.svg"
 
 
 def roc_figure_data(result: MeasureResult) -> pd.DataFrame:
     """ROC curves, in-sample and cross-validated, one row per point."""
-    v = result.validation
-    parts = [v.in_sample.roc.assign(fit="In sample")]
+    v = result.model_validation
+    curves = [("In sample", v.in_sample)]
     if v.cross_validated is not None:
-        parts.append(v.cross_validated.roc.assign(fit=f"Cross-validated ({v.folds} folds)"))
+        curves.append((f"Cross-validated ({v.folds} folds)", v.cross_validated))
+    parts = []
+    for fit, metrics in curves:
+        if metrics.roc is None:
+            raise ValueError(f"{result.measure.key}: ROC curves are for binary outcomes only")
+        parts.append(metrics.roc.assign(fit=fit))
     return pd.concat(parts, ignore_index=True)
 
 
-FITS = {"In sample": ("#0072B2", "solid"), "Cross-validated": ("#C85200", "dashed")}  # Okabe-Ito blue, darkened vermillion
+# Okabe-Ito blue, darkened vermillion
+FITS = {"In sample": ("#0072B2", "solid"), "Cross-validated": ("#C85200", "dashed")}
 
 
 def _fit_scales(data: pd.DataFrame):
     names = list(dict.fromkeys(data["fit"]))
     colours = {n: FITS["In sample" if n == "In sample" else "Cross-validated"][0] for n in names}
     lines = {n: FITS["In sample" if n == "In sample" else "Cross-validated"][1] for n in names}
-    return [p9.scale_color_manual(values=colours, name=""), p9.scale_linetype_manual(values=lines, name="")]
+    return [
+        p9.scale_color_manual(values=colours, name=""),
+        p9.scale_linetype_manual(values=lines, name=""),
+    ]
 
 
 def draw_roc(data: pd.DataFrame, path: Path, png: bool) -> None:
     """ROC curve(s) with the diagonal of a coin toss."""
     plot = (
-        p9.ggplot(data, p9.aes(x="false_positive_rate", y="true_positive_rate", colour="fit", linetype="fit"))
+        p9.ggplot(
+            data,
+            p9.aes(x="false_positive_rate", y="true_positive_rate", colour="fit", linetype="fit"),
+        )
         + p9.geom_abline(intercept=0, slope=1, colour="#595959", linetype="dotted")
         + p9.geom_line(size=0.9)
         + _fit_scales(data)
@@ -470,13 +631,25 @@ def draw_roc(data: pd.DataFrame, path: Path, png: bool) -> None:
 
 
 def calibration_figure_data(result: MeasureResult) -> pd.DataFrame:
-    """Observed against expected mean per risk group, in-sample and cross-validated (percent for rates)."""
-    v = result.validation
+    """Observed against expected mean per risk group, in-sample and cross-validated (percent for
+    rates)."""
+    v = result.model_validation
     k = 100.0 if v.binary else 1.0
-    parts = [("In sample", v.in_sample)] + ([(f"Cross-validated ({v.folds} folds)", v.cross_validated)] if v.cross_validated else [])
+    parts = [("In sample", v.in_sample)] + (
+        [(f"Cross-validated ({v.folds} folds)", v.cross_validated)] if v.cross_validated else []
+    )
     return pd.concat(
-        [pd.DataFrame({"group": m.groups["group"], "expected": m.groups["expected_mean"] * k, "observed": m.groups["observed_mean"] * k, "fit": name})
-         for name, m in parts],
+        [
+            pd.DataFrame(
+                {
+                    "group": m.groups["group"],
+                    "expected": m.groups["expected_mean"] * k,
+                    "observed": m.groups["observed_mean"] * k,
+                    "fit": name,
+                }
+            )
+            for name, m in parts
+        ],
         ignore_index=True,
     )
 
@@ -490,7 +663,9 @@ def draw_calibration(data: pd.DataFrame, label: str, path: Path, png: bool) -> N
         + p9.geom_line(p9.aes(linetype="fit"), size=0.6)
         + p9.geom_point(size=2.6)
         + _fit_scales(data)
-        + p9.scale_shape_manual(values={n: ("o" if n == "In sample" else "^") for n in data["fit"].unique()}, name="")
+        + p9.scale_shape_manual(
+            values={n: ("o" if n == "In sample" else "^") for n in data["fit"].unique()}, name=""
+        )
         + p9.coord_equal(xlim=(0, top), ylim=(0, top))
         + p9.labs(x=f"Expected ({label})", y=f"Observed ({label})")
         + _theme(5.0, 5.0)
@@ -500,24 +675,63 @@ def draw_calibration(data: pd.DataFrame, label: str, path: Path, png: bool) -> N
 
 # --- what to draw ----------------------------------------------------------------------------
 
-def plan(results: list[MeasureResult], unit_ids, slugs: dict[str, str], past, funnels: dict, period: str = "this cycle") -> list[Job]:
-    """Every figure of the site as a drawing job (measure charts with PNG beside, unit strips, model plots)."""
+
+def plan(
+    results: list[MeasureResult],
+    unit_ids,
+    slugs: dict[str, str],
+    past,
+    funnels: dict,
+    period: str = "this cycle",
+) -> list[Job]:
+    """Every figure of the site as a drawing job (measure charts with PNG beside, unit strips, model
+    plots)."""
     jobs: list[Job] = []
     for r in results:
         scale, label = axis(r)
         key_ = r.measure.key
         data = measure_figure_data(r)
         if len(data):
-            # PNG copies for slides and documents; above PNG_MAX_UNITS rows the tall PNG costs more than it helps
-            jobs.append(Job(measure_figure_path(key_, "intervals"), "draw_intervals", data, (r.benchmark * scale, label), png=len(data) <= PNG_MAX_UNITS))
-            jobs.append(Job(measure_figure_path(key_, "movement"), "draw_movement", movement_figure_data(r), (r.benchmark * scale, label)))
+            # PNG copies for slides and documents; above PNG_MAX_UNITS rows the tall PNG costs more
+            # than it helps
+            jobs.append(
+                Job(
+                    measure_figure_path(key_, "intervals"),
+                    "draw_intervals",
+                    data,
+                    (r.benchmark * scale, label),
+                    png=len(data) <= PNG_MAX_UNITS,
+                )
+            )
+            jobs.append(
+                Job(
+                    measure_figure_path(key_, "movement"),
+                    "draw_movement",
+                    movement_figure_data(r),
+                    (r.benchmark * scale, label),
+                )
+            )
         f = funnels.get(key_)
         if f is not None:
             points, curves = f.scaled(scale)
-            jobs.append(Job(measure_figure_path(key_, "funnel"), "draw_funnel", points, (curves, f.benchmark * scale, label), png=True))
+            jobs.append(
+                Job(
+                    measure_figure_path(key_, "funnel"),
+                    "draw_funnel",
+                    points,
+                    (curves, f.benchmark * scale, label),
+                    png=True,
+                )
+            )
         if r.validation is not None:
-            jobs.append(Job(model_figure_path(key_, "calibration"), "draw_calibration", calibration_figure_data(r),
-                            ("%" if r.validation.binary else r.measure.unit_label,)))
+            jobs.append(
+                Job(
+                    model_figure_path(key_, "calibration"),
+                    "draw_calibration",
+                    calibration_figure_data(r),
+                    ("%" if r.validation.binary else r.measure.unit_label,),
+                )
+            )
             if r.validation.binary:
                 jobs.append(Job(model_figure_path(key_, "roc"), "draw_roc", roc_figure_data(r)))
     frame = position_frame(results)
@@ -525,7 +739,15 @@ def plan(results: list[MeasureResult], unit_ids, slugs: dict[str, str], past, fu
     for uid in unit_ids:
         data = position_data(uid, results)
         if data is not None:
-            jobs.append(Job(unit_figure_path(slugs[uid], "position"), "draw_position", data, (frame,), args_text=frame_text))
+            jobs.append(
+                Job(
+                    unit_figure_path(slugs[uid], "position"),
+                    "draw_position",
+                    data,
+                    (frame,),
+                    args_text=frame_text,
+                )
+            )
         if past:
             trend = trend_data(uid, results, past, period)
             if trend is not None:

@@ -1,4 +1,5 @@
-"""Funnel plot control limits (Spiegelhalter 2005) for a measure's units, from each unit's expected count.
+"""Funnel plot control limits (Spiegelhalter 2005) for a measure's units, from each unit's expected
+count.
 
 A funnel plot shows each unit's indirectly standardised value, its published O/E times the
 benchmark R, against its precision, with control limits around R that narrow as the precision
@@ -44,7 +45,8 @@ WINSOR = 0.10
 
 
 def binomial_limit(theta0: float, n, p: float) -> np.ndarray:
-    """Exact binomial control limit at cumulative probability ``p`` for ``n`` cases (interpolated)."""
+    """Exact binomial control limit at cumulative probability ``p`` for ``n`` cases
+    (interpolated)."""
     n = np.asarray(n, dtype=float)
     r = stats.binom.ppf(p, n, theta0)  # smallest r with P(R <= r) >= p
     upper, lower = stats.binom.cdf(r, n, theta0), stats.binom.cdf(r - 1, n, theta0)
@@ -53,7 +55,8 @@ def binomial_limit(theta0: float, n, p: float) -> np.ndarray:
 
 
 def poisson_limit(expected, p: float) -> np.ndarray:
-    """Exact Poisson control limit for an O/E ratio with ``expected`` events (interpolated the same way)."""
+    """Exact Poisson control limit for an O/E ratio with ``expected`` events (interpolated the same
+    way)."""
     e = np.asarray(expected, dtype=float)
     r = stats.poisson.ppf(p, e)
     upper, lower = stats.poisson.cdf(r, e), stats.poisson.cdf(r - 1, e)
@@ -66,7 +69,8 @@ def normal_limit(theta0: float, se, p: float) -> np.ndarray:
 
 
 def overdispersion(y, theta0: float, se) -> tuple[float, float]:
-    """(phi, tau^2): the winsorised over-dispersion factor and the additive between-unit variance."""
+    """(phi, tau^2): the winsorised over-dispersion factor and the additive between-unit
+    variance."""
     y, se = np.asarray(y, float), np.asarray(se, float)
     z = (y - theta0) / se
     lo, hi = np.quantile(z, [WINSOR, 1 - WINSOR])
@@ -80,29 +84,36 @@ def overdispersion(y, theta0: float, se) -> tuple[float, float]:
 
 @dataclass(frozen=True)
 class Funnel:
-    """A measure's funnel: per-unit points and limits, the curves to draw, and the dispersion found."""
+    """A measure's funnel: per-unit points and limits, the curves to draw, and the dispersion
+    found."""
 
-    points: pd.DataFrame  # unit_name, group, cases, expected, precision, value, and the four limits at each unit's precision
+    # unit_name, group, cases, expected, precision, value, and the four limits at each unit's
+    # precision
+    points: pd.DataFrame
     curves: pd.DataFrame  # precision, then one column per limit, on a grid for drawing
     benchmark: float
     phi: float
     tau2: float
     widened: bool
-    method: str  # "Poisson", "binomial", "gamma", or "normal approximation widened for over-dispersion"
+    # "Poisson", "binomial", "gamma", or "normal approximation widened for over-dispersion"
+    method: str
 
     def scaled(self, k: float) -> tuple[pd.DataFrame, pd.DataFrame]:
         """(points, curves) with values and limits multiplied by ``k`` (100 for percentages)."""
-        return (self.points.assign(**{c: self.points[c] * k for c in ("value", *LIMIT_COLUMNS)}),
-                self.curves.assign(**{c: self.curves[c] * k for c in LIMIT_COLUMNS}))
+        return (
+            self.points.assign(**{c: self.points[c] * k for c in ("value", *LIMIT_COLUMNS)}),
+            self.curves.assign(**{c: self.curves[c] * k for c in LIMIT_COLUMNS}),
+        )
 
 
 LIMIT_COLUMNS = ("lower_998", "lower_95", "upper_95", "upper_998")
-LEVEL_OF = dict(zip(LIMIT_COLUMNS, (0.001, 0.025, 0.975, 0.999)))
+LEVEL_OF = dict(zip(LIMIT_COLUMNS, (0.001, 0.025, 0.975, 0.999), strict=True))
 NULLS = ("poisson", "binomial", "gamma")  # the null distribution of O/E, by kind of measure
 
 
 def ratio_limit(null: str, rho, q: float, mean_risk: float = float("nan")) -> np.ndarray:
-    """The O/E ratio below which a unit of precision ``rho`` falls with probability ``q`` by chance alone.
+    """The O/E ratio below which a unit of precision ``rho`` falls with probability ``q`` by chance
+    alone.
 
     ``mean_risk`` is the network's average patient risk (binomial null only).
     """
@@ -119,7 +130,10 @@ def ratio_limit(null: str, rho, q: float, mean_risk: float = float("nan")) -> np
 
 def _limits(null: str, rho: np.ndarray, mean_risk: float, tau2: float) -> dict[str, np.ndarray]:
     if tau2 > 0:
-        return {name: np.maximum(normal_limit(1.0, np.sqrt(1.0 / rho + tau2), q), 0.0) for name, q in LEVEL_OF.items()}
+        return {
+            name: np.maximum(normal_limit(1.0, np.sqrt(1.0 / rho + tau2), q), 0.0)
+            for name, q in LEVEL_OF.items()
+        }
     return {name: ratio_limit(null, rho, q, mean_risk) for name, q in LEVEL_OF.items()}
 
 
@@ -134,7 +148,8 @@ def funnel(table: pd.DataFrame, null: str, benchmark: float, widen: bool = False
     """
     if null not in NULLS:
         raise ValueError(f"unknown null distribution {null!r}; allowed: {', '.join(NULLS)}")
-    t = table[(table["status"] == "reported") & (table["expected"] > 0) & table["observed"].notna()]  # small counts are not drawn
+    # small counts are not drawn
+    t = table[(table["status"] == "reported") & (table["expected"] > 0) & table["observed"].notna()]
     if null != "poisson":
         t = t[t["variance"] > 0]
     if len(t) < 3:
@@ -146,19 +161,45 @@ def funnel(table: pd.DataFrame, null: str, benchmark: float, widen: bool = False
     oe = t["observed"].to_numpy(float) / expected  # the published O/E
     phi, tau2 = overdispersion(oe, 1.0, 1.0 / np.sqrt(rho))
     used_tau2 = tau2 if widen else 0.0
-    if null == "binomial":  # whole numbers of effective cases, so the drawn curve is the points' own limits
+    # whole numbers of effective cases, so the drawn curve is the points' own limits
+    if null == "binomial":
         per_case = mean_risk / (1 - mean_risk)
-        n = np.unique(np.round(np.geomspace(max(1.0, rho.min() / per_case * 0.8), rho.max() / per_case * 1.1, 400)))
+        n = np.unique(
+            np.round(
+                np.geomspace(max(1.0, rho.min() / per_case * 0.8), rho.max() / per_case * 1.1, 400)
+            )
+        )
         grid = n * per_case
     else:
         grid = np.geomspace(rho.min() * 0.8, rho.max() * 1.1, 300)
-    points = pd.DataFrame({"unit_name": t["unit_name"].to_numpy(), "group": t["group"].to_numpy(), "cases": t["cases"].to_numpy(float),
-                           "expected": expected, "precision": rho, "value": oe * benchmark})
+    points = pd.DataFrame(
+        {
+            "unit_name": t["unit_name"].to_numpy(),
+            "group": t["group"].to_numpy(),
+            "cases": t["cases"].to_numpy(float),
+            "expected": expected,
+            "precision": rho,
+            "value": oe * benchmark,
+        }
+    )
     for name, limit in _limits(null, rho, mean_risk, used_tau2).items():
         points[name] = limit * benchmark
-    curves = pd.DataFrame({"precision": grid, **{k: v * benchmark for k, v in _limits(null, grid, mean_risk, used_tau2).items()}})
+    curves = pd.DataFrame(
+        {
+            "precision": grid,
+            **{k: v * benchmark for k, v in _limits(null, grid, mean_risk, used_tau2).items()},
+        }
+    )
     method = "normal approximation widened for over-dispersion" if widen else null
-    return Funnel(points=points, curves=curves, benchmark=benchmark, phi=phi, tau2=tau2, widened=widen, method=method)
+    return Funnel(
+        points=points,
+        curves=curves,
+        benchmark=benchmark,
+        phi=phi,
+        tau2=tau2,
+        widened=widen,
+        method=method,
+    )
 
 
 def outside(f: Funnel) -> dict[str, int]:
@@ -172,7 +213,8 @@ def outside(f: Funnel) -> dict[str, int]:
 
 
 def null_of(result) -> str:
-    """The null distribution of a measure's O/E: Poisson for unit-level counts, binomial for patients' events, gamma for continuous outcomes."""
+    """The null distribution of a measure's O/E: Poisson for unit-level counts, binomial for
+    patients' events, gamma for continuous outcomes."""
     if result.measure.summary:
         return "poisson"
     return "binomial" if result.measure.type == "binary" else "gamma"

@@ -9,7 +9,6 @@ cycle replaces its own entry and keeps its place in the order.
 from __future__ import annotations
 
 import dataclasses
-
 import json
 import os
 import re
@@ -42,7 +41,8 @@ class PastCycle:
     period: str
     table: pd.DataFrame  # the public results table as published
     draws: dict[str, pd.DataFrame]  # measure key -> draws x unit ids (risk-standardised rate)
-    addresses: dict[str, str] = dataclasses.field(default_factory=dict)  # unit id -> page slug as published
+    # unit id -> page slug as published
+    addresses: dict[str, str] = dataclasses.field(default_factory=dict)
 
 
 def _index(folder: Path) -> list[dict]:
@@ -66,7 +66,9 @@ def past_cycles(folder: Path, period: str) -> list[PastCycle]:
     entries = _index(folder)
     keys = [e["key"] for e in entries]
     here = cycle_key(period)
-    return [load_cycle(folder, e) for e in (entries[: keys.index(here)] if here in keys else entries)]
+    return [
+        load_cycle(folder, e) for e in (entries[: keys.index(here)] if here in keys else entries)
+    ]
 
 
 def load_cycle(folder: Path, entry: dict) -> PastCycle:
@@ -75,18 +77,24 @@ def load_cycle(folder: Path, entry: dict) -> PastCycle:
         table = pd.read_csv(where / "results.csv", dtype={"unit_id": "string"})
         with np.load(where / "draws.npz", allow_pickle=False) as stored:
             draws = {
-                m: pd.DataFrame(stored[f"{m}.draws"], columns=[str(u) for u in stored[f"{m}.units"]])
+                m: pd.DataFrame(
+                    stored[f"{m}.draws"], columns=[str(u) for u in stored[f"{m}.units"]]
+                )
                 for m in {name.split(".")[0] for name in stored.files}
             }
     except (OSError, ValueError, KeyError) as exc:
-        raise RenderError(f"the history of cycle '{entry['period']}' in {where} cannot be read ({exc}). Restore it or remove it from {folder / 'cycles.json'}.") from None
+        raise RenderError(
+            f"the history of cycle '{entry['period']}' in {where} cannot be read ({exc}). "
+            f"Restore it or remove it from {folder / 'cycles.json'}."
+        ) from None
     path = where / "addresses.json"
     addresses = json.loads(path.read_text("utf-8")) if path.is_file() else {}
     return PastCycle(entry["key"], entry["period"], table, draws, addresses)
 
 
 def kept_addresses(past: list[PastCycle]) -> dict[str, str]:
-    """Every unit's page address as last published, so a unit keeps its address from cycle to cycle."""
+    """Every unit's page address as last published, so a unit keeps its address from cycle to
+    cycle."""
     out: dict[str, str] = {}
     for cycle in past:  # oldest first: later cycles win
         out.update(cycle.addresses)
@@ -94,7 +102,12 @@ def kept_addresses(past: list[PastCycle]) -> dict[str, str]:
 
 
 def record_cycle(
-    folder: Path, period: str, table: pd.DataFrame, results: list[MeasureResult], manifest: dict, addresses: dict[str, str] | None = None
+    folder: Path,
+    period: str,
+    table: pd.DataFrame,
+    results: list[MeasureResult],
+    manifest: dict,
+    addresses: dict[str, str] | None = None,
 ) -> None:
     """Store a just-published cycle (replacing an earlier build of the same period)."""
     key = cycle_key(period)
@@ -103,7 +116,9 @@ def record_cycle(
     try:
         table.to_csv(staging / "results.csv", index=False, float_format="%.6g")
         (staging / "manifest.json").write_text(json.dumps(manifest, indent=2), encoding="utf-8")
-        (staging / "addresses.json").write_text(json.dumps(addresses or {}, indent=2, sort_keys=True), encoding="utf-8")
+        (staging / "addresses.json").write_text(
+            json.dumps(addresses or {}, indent=2, sort_keys=True), encoding="utf-8"
+        )
         arrays = {}
         for r in results:
             arrays[f"{r.measure.key}.draws"] = r.rsr_draws.to_numpy()
@@ -131,18 +146,30 @@ def changes(results: list[MeasureResult], previous: PastCycle) -> pd.DataFrame:
         before = previous.draws.get(r.measure.key)
         if before is None:
             continue
-        old = previous.table[(previous.table["measure"] == r.measure.key) & (previous.table["status"] == "reported")].set_index("unit_id")
+        old = previous.table[
+            (previous.table["measure"] == r.measure.key) & (previous.table["status"] == "reported")
+        ].set_index("unit_id")
         now = r.table[r.table["status"] == "reported"].set_index("unit_id")
         for uid in now.index.intersection(old.index):
             if uid not in before.columns or uid not in r.rsr_draws.columns:
                 continue
             a, b = r.rsr_draws[uid].to_numpy(), before[uid].to_numpy()
             k = min(len(a), len(b))  # draws of independent fits, paired by position
-            p_higher = float(np.mean(a[:k] > b[:k]) + 0.5 * np.mean(a[:k] == b[:k]))  # ties count one half
-            rows.append({
-                "measure": r.measure.key, "unit_id": uid, "unit_name": now.loc[uid, "unit_name"],
-                "before": old.loc[uid, "rsr_median"], "before_lower": old.loc[uid, "rsr_lower"], "before_upper": old.loc[uid, "rsr_upper"],
-                "now": now.loc[uid, "rsr_median"], "now_lower": now.loc[uid, "rsr_lower"], "now_upper": now.loc[uid, "rsr_upper"],
-                "p_higher": p_higher, "words": next(w for limit, w in CHANGE_WORDS if p_higher > limit),
-            })
+            # ties count one half
+            p_higher = float(np.mean(a[:k] > b[:k]) + 0.5 * np.mean(a[:k] == b[:k]))
+            rows.append(
+                {
+                    "measure": r.measure.key,
+                    "unit_id": uid,
+                    "unit_name": now.loc[uid, "unit_name"],
+                    "before": old.loc[uid, "rsr_median"],
+                    "before_lower": old.loc[uid, "rsr_lower"],
+                    "before_upper": old.loc[uid, "rsr_upper"],
+                    "now": now.loc[uid, "rsr_median"],
+                    "now_lower": now.loc[uid, "rsr_lower"],
+                    "now_upper": now.loc[uid, "rsr_upper"],
+                    "p_higher": p_higher,
+                    "words": next(w for limit, w in CHANGE_WORDS if p_higher > limit),
+                }
+            )
     return pd.DataFrame(rows)

@@ -17,10 +17,9 @@ from pathlib import PurePosixPath
 import jinja2
 import pandas as pd
 
-from . import templates_path
-from .config import CycleConfig
-from . import captions
+from . import captions, templates_path
 from .captions import FigureView, attr
+from .config import CycleConfig
 from .figures import axis, measure_figure_path, png_of, unit_figure_path
 from .funnel import Funnel, outside
 from .history import PastCycle, changes
@@ -82,7 +81,8 @@ def unit_slugs(unit_ids, kept: dict[str, str] | None = None) -> dict[str, str]:
             out[uid] = old
             taken.add(old)
     plain = {uid: slug(uid, set()) for uid in ids if uid not in out}
-    for uid in sorted(plain, key=lambda u: (plain[u] != u, u)):  # an id that already is its slug wins it
+    # an id that already is its slug wins it
+    for uid in sorted(plain, key=lambda u: (plain[u] != u, u)):
         candidate, n = plain[uid], 6
         while candidate in taken:
             candidate, n = f"{plain[uid]}-{hashlib.sha256(uid.encode()).hexdigest()[:n]}", n + 2
@@ -100,7 +100,8 @@ def span(lo: float, hi: float, digits: int = 1) -> str:
 
 
 def value(measure, x: float) -> str:
-    """An adjusted or raw value of ``measure``: a percentage for rates, the outcome's unit otherwise."""
+    """An adjusted or raw value of ``measure``: a percentage for rates, the outcome's unit
+    otherwise."""
     if measure.type == "continuous":
         return "" if pd.isna(x) else f"{x:,.1f} {md(measure.unit_label)}"
     return pct(x)
@@ -134,13 +135,28 @@ def natural_frequency(rate: float) -> str:
 
 
 SYMBOLS = {"above": "▲", "spans": "●", "below": "▼", "": ""}
-GROUP_SYMBOLS = {"better": "+", "typical": "=", "worse": "−", "": ""}  # our own marks; the words are always shown too
+# our own marks; the words are always shown too
+GROUP_SYMBOLS = {"better": "+", "typical": "=", "worse": "−", "": ""}
 # Words that differ between rate measures and mean measures (column heads, sentences).
 WORDS = {
-    "binary": {"raw": "Raw rate", "adjusted": "Adjusted rate", "network": "Network rate", "events": "Events",
-               "observed": "Observed", "expected": "Expected", "chance": "Chance above benchmark"},
-    "continuous": {"raw": "Raw mean", "adjusted": "Adjusted mean", "network": "Network mean", "events": "Total",
-                   "observed": "Observed total", "expected": "Expected total", "chance": "Chance above network mean"},
+    "binary": {
+        "raw": "Raw rate",
+        "adjusted": "Adjusted rate",
+        "network": "Network rate",
+        "events": "Events",
+        "observed": "Observed",
+        "expected": "Expected",
+        "chance": "Chance above benchmark",
+    },
+    "continuous": {
+        "raw": "Raw mean",
+        "adjusted": "Adjusted mean",
+        "network": "Network mean",
+        "events": "Total",
+        "observed": "Observed total",
+        "expected": "Expected total",
+        "chance": "Chance above network mean",
+    },
 }
 
 
@@ -189,7 +205,9 @@ class MeasureView:
     network_rate: str
     benchmark: str
     benchmark_is_network: bool
-    typical: str  # adjusted value of the typical unit, what small units are pulled towards ("" when it rounds to the benchmark)
+    # adjusted value of the typical unit, what small units are pulled towards ("" when it rounds to
+    # the benchmark)
+    typical: str
     c_statistic: str
     units_in_fit: int
     formula: str
@@ -200,8 +218,10 @@ class MeasureView:
     coefficients: list[dict[str, str]]
     sensitivity: list[dict[str, str]] = field(default_factory=list)
     rows: list[dict] = field(default_factory=list)  # unit name, href, Cell
-    targets: dict | None = None  # unit-level predictors of what units are pulled towards: words, terms, groups, changes
-    count_note: str = ""  # what the small-count rule hid on this measure, in plain words ("" when nothing)
+    # unit-level predictors of what units are pulled towards: words, terms, groups, changes
+    targets: dict | None = None
+    # what the small-count rule hid on this measure, in plain words ("" when nothing)
+    count_note: str = ""
 
 
 @dataclass(frozen=True)
@@ -217,30 +237,49 @@ class UnitView:
 
 def _sentence(name: str, m: MeasureResult, row: pd.Series, level: str, min_cases: int) -> str:
     if row["status"] == "too_few":
-        return f"This unit had fewer than {min_cases} cases, too few for a fair estimate, so its numbers are not published."
+        return (
+            f"This unit had fewer than {min_cases} cases, too few for a fair estimate, so "
+            "its numbers are not published."
+        )
     if row["status"] == "no_cases":
         return "This unit had no cases for this measure in this period."
     if row["status"] == "withheld":
         return (
-            "This unit's numbers are withheld so that a smaller unit's numbers cannot be worked out "
+            "This unit's numbers are withheld so that a smaller unit's numbers cannot be "
+            "worked out "
             "by subtracting the published numbers from the network totals."
         )
-    return _estimate_sentence(name, m, row, level) + _count_sentence(row) + " " + _group_sentence(m, row) + _target_sentence(m, row)
+    return (
+        _estimate_sentence(name, m, row, level)
+        + _count_sentence(row)
+        + " "
+        + _group_sentence(m, row)
+        + _target_sentence(m, row)
+    )
 
 
 def _count_sentence(row: pd.Series) -> str:
     """What the small-count rule hides on this unit (disclosure.py), in plain words."""
     if row.get("count_status") == "small":
-        return (f" Between {row['observed_low']:,.0f} and {row['observed_high']:,.0f} of its {row['cases']:,.0f} patients had this "
-                "outcome. The exact number is not shown, to protect patients' privacy.")
+        return (
+            f" Between {row['observed_low']:,.0f} and {row['observed_high']:,.0f} of its "
+            f"{row['cases']:,.0f} patients had this "
+            "outcome. The exact number is not shown, to protect patients' privacy."
+        )
     if row.get("count_status") == "protects":
-        return (" Its exact number of patients with this outcome is not shown, so that another unit's small number "
-                "cannot be worked out from the network total.")
+        return (
+            " Its exact number of patients with this outcome is not shown, so that another "
+            "unit's small number "
+            "cannot be worked out from the network total."
+        )
     return ""
 
 
 # Plain names of the built-in predictors of what small units are pulled towards (targets.py).
-TARGET_WORDS = {"log_cases": "size (number of cases)", "case_mix": "how ill its patients were on average"}
+TARGET_WORDS = {
+    "log_cases": "size (number of cases)",
+    "case_mix": "how ill its patients were on average",
+}
 TARGET_LIKE = {"log_cases": "size", "case_mix": "how ill their patients are", "kind": "kind"}
 
 
@@ -267,35 +306,55 @@ def _target_sentence(m: MeasureResult, row: pd.Series) -> str:
     hit = changed[changed["unit_id"] == row["unit_id"]]
     if hit.empty:
         return ""
-    return (f" Its group depends on a choice in the model: if every unit were pulled towards one typical unit, "
-            f"it would be {GROUPS[hit['group_without'].iloc[0]].lower()}.")
+    return (
+        " Its group depends on a choice in the model: if every unit were pulled towards one "
+        "typical unit, "
+        f"it would be {GROUPS[hit['group_without'].iloc[0]].lower()}."
+    )
 
 
 def _group_sentence(m: MeasureResult, row: pd.Series) -> str:
     """The unit's group, how sure we are of it, its rank and how much rests on its own patients."""
     group, other = row["group"], chance(row["prob_other_side"])
     if group == "typical":
-        text = f"It is {GROUPS['typical'].lower()}. The data cannot tell it apart from the benchmark."
+        text = (
+            f"It is {GROUPS['typical'].lower()}. The data cannot tell it apart from the benchmark."
+        )
     else:
-        text = f"It {GROUPS[group].lower()} than the benchmark. The chance that it is really on the other side is {other}."
+        text = (
+            f"It {GROUPS[group].lower()} than the benchmark. The chance that it is really "
+            f"on the other side is {other}."
+        )
     shown = int(m.table["status"].eq("reported").sum())
-    text += f" Among the {shown} units shown, its rank is likely between {row['rank_lower']:.0f} and {row['rank_upper']:.0f} (1 is best)."
+    text += (
+        f" Among the {shown} units shown, its rank is likely between "
+        f"{row['rank_lower']:.0f} and {row['rank_upper']:.0f} (1 is best)."
+    )
     if pd.notna(row["own_weight"]):
-        text += f" About {row['own_weight'] * 100:.0f}% of this estimate comes from the unit's own patients, and the rest from the other units."
+        text += (
+            f" About {row['own_weight'] * 100:.0f}% of this estimate comes from the "
+            "unit's own patients, and the rest from the other units."
+        )
     return text
 
 
 def _estimate_sentence(name: str, m: MeasureResult, row: pd.Series, level: str) -> str:
     if m.measure.type == "continuous":
         return (
-            f"Allowing for how ill its patients were, the average here is about {value(m.measure, row['rsr_median'])}. "
-            f"We are {level} sure the true average is between {value(m.measure, row['rsr_lower'])} and {value(m.measure, row['rsr_upper'])}. "
-            f"The network average is {value(m.measure, m.benchmark)}. The chance that this unit's average is above it is {chance(row['prob_above_benchmark'])}."
+            "Allowing for how ill its patients were, the average here is about "
+            f"{value(m.measure, row['rsr_median'])}. "
+            f"We are {level} sure the true average is between "
+            f"{value(m.measure, row['rsr_lower'])} and {value(m.measure, row['rsr_upper'])}. "
+            f"The network average is {value(m.measure, m.benchmark)}. The chance that this "
+            f"unit's average is above it is {chance(row['prob_above_benchmark'])}."
         )
     return (
-        f"Allowing for how ill its patients were, we estimate that {natural_frequency(row['rsr_median'])} here would have this outcome. "
-        f"We are {level} sure the true rate is between {pct(row['rsr_lower'])} and {pct(row['rsr_upper'])}. "
-        f"The benchmark is {pct(m.benchmark)}. The chance that this unit's rate is above the benchmark is {chance(row['prob_above_benchmark'])}."
+        "Allowing for how ill its patients were, we estimate that "
+        f"{natural_frequency(row['rsr_median'])} here would have this outcome. "
+        f"We are {level} sure the true rate is between {pct(row['rsr_lower'])} and "
+        f"{pct(row['rsr_upper'])}. "
+        f"The benchmark is {pct(m.benchmark)}. The chance that this unit's rate is above the "
+        f"benchmark is {chance(row['prob_above_benchmark'])}."
     )
 
 
@@ -307,9 +366,15 @@ def _cell(m: MeasureResult, row: pd.Series, level: str, min_cases: int) -> Cell:
     return Cell(
         status=row["status"],
         status_words=STATUS[row["status"]],
-        cases=f"{int(row['cases']):,}" if reported else {"too_few": f"fewer than {min_cases}", "withheld": "withheld"}.get(row["status"], "0"),
+        cases=f"{int(row['cases']):,}"
+        if reported
+        else {"too_few": f"fewer than {min_cases}", "withheld": "withheld"}.get(row["status"], "0"),
         observed=_observed_words(row, count),
-        expected=(f"{row['expected']:,.1f}" if m.measure.type == "binary" else f"{row['expected']:,.0f}") if reported else "",
+        expected=(
+            f"{row['expected']:,.1f}" if m.measure.type == "binary" else f"{row['expected']:,.0f}"
+        )
+        if reported
+        else "",
         raw_rate=counted(value(m.measure, row["raw_rate"])),
         oe_ratio=counted(num(row["oe_ratio"])),
         rate=show(value(m.measure, row["rsr_median"])),
@@ -322,31 +387,48 @@ def _cell(m: MeasureResult, row: pd.Series, level: str, min_cases: int) -> Cell:
         symbol=SYMBOLS[row["position"]],
         sentence=_sentence(md(row["unit_name"]), m, row, level, min_cases),
         group=row["group"] if reported else "",
-        group_words=GROUPS.get(row["group"], STATUS[row["status"]]) if reported else STATUS[row["status"]],
+        group_words=GROUPS.get(row["group"], STATUS[row["status"]])
+        if reported
+        else STATUS[row["status"]],
         group_symbol=GROUP_SYMBOLS.get(row["group"], "") if reported else "",
-        rank=f"{row['rank_median']:.0f} ({row['rank_lower']:.0f} to {row['rank_upper']:.0f})" if reported else "",
+        rank=f"{row['rank_median']:.0f} ({row['rank_lower']:.0f} to {row['rank_upper']:.0f})"
+        if reported
+        else "",
         weight=counted(f"{row['own_weight'] * 100:.0f}%") if pd.notna(row["own_weight"]) else "",
         other_side=show(chance(row["prob_other_side"])),
     )
 
 
 def count_note(table: pd.DataFrame, threshold: int) -> str:
-    """One measure's small-count rule in plain words: how many counts are ranges, how many hidden to protect them."""
+    """One measure's small-count rule in plain words: how many counts are ranges, how many hidden to
+    protect them."""
     status = table["count_status"] if "count_status" in table else pd.Series(dtype=str)
     few, cover = int((status == "small").sum()), int((status == "protects").sum())
     if not few and not cover:
         return ""
-    text = (f"On {few} {'unit' if few == 1 else 'units'}, fewer than {threshold} patients had this outcome, or fewer than {threshold} "
-            "did not. To protect those patients, the table gives a range instead of the number, and leaves out the raw "
-            "rate, the O/E ratio and the share of own data, which would give the number back.")
+    text = (
+        f"On {few} {'unit' if few == 1 else 'units'}, fewer than {threshold} patients had this "
+        f"outcome, or fewer than {threshold} "
+        "did not. To protect those patients, the table gives a range instead of the number, "
+        "and leaves out the raw "
+        "rate, the O/E ratio and the share of own data, which would give the number back."
+    )
     if cover:
-        text += (f" On {cover} more {'unit' if cover == 1 else 'units'}, the number is not shown either, because the network "
-                 "total minus the numbers shown would give a small number back.")
-    return text + " These units are left out of the funnel plot and the raw-to-adjusted picture. Their adjusted values are shown."
+        text += (
+            f" On {cover} more {'unit' if cover == 1 else 'units'}, the number is not shown "
+            "either, because the network "
+            "total minus the numbers shown would give a small number back."
+        )
+    return (
+        text
+        + " These units are left out of the funnel plot and the raw-to-adjusted picture. Their "
+        "adjusted values are shown."
+    )
 
 
 def _observed_words(row: pd.Series, count: str) -> str:
-    """The observed count as published: the number, its range when small, or "not shown" when it protects another."""
+    """The observed count as published: the number, its range when small, or "not shown" when it
+    protects another."""
     if count == "shown":
         return f"{row['observed']:,.0f}"
     if count == "small":
@@ -358,26 +440,67 @@ def _if_drawn(path: str, drawn: dict) -> str:
     return path if path in drawn else ""
 
 
-def _measure_figures(m: MeasureResult, drawn: dict, f: Funnel | None, level: str) -> tuple[list[FigureView], str]:
-    """The measure's pictures (intervals, funnel, movement) with their words and tables; and the funnel in a sentence."""
+def _measure_figures(
+    m: MeasureResult, drawn: dict, f: Funnel | None, level: str
+) -> tuple[list[FigureView], str]:
+    """The measure's pictures (intervals, funnel, movement) with their words and tables; and the
+    funnel in a sentence."""
     k = axis(m)[0]
     unit = md(m.measure.unit_label) if m.measure.type == "continuous" else "%"
-    fmt = (lambda x: f"{x:,.1f} {unit}") if m.measure.type == "continuous" else (lambda x: f"{x:.1f}%")
+    fmt = (
+        (lambda x: f"{x:,.1f} {unit}")
+        if m.measure.type == "continuous"
+        else (lambda x: f"{x:.1f}%")
+    )
     bench = fmt(m.benchmark * k)
     out = []
     path = measure_figure_path(m.measure.key, "intervals")
     if path in drawn:
-        out.append(captions.intervals(path, _if_drawn(png_of(path), drawn), drawn[path], fmt, lambda lo, hi: f"{fmt(lo)} to {fmt(hi)}", bench, level, md))
+        out.append(
+            captions.intervals(
+                path,
+                _if_drawn(png_of(path), drawn),
+                drawn[path],
+                fmt,
+                lambda lo, hi: f"{fmt(lo)} to {fmt(hi)}",
+                bench,
+                level,
+                md,
+            )
+        )
     words = ""
     path = measure_figure_path(m.measure.key, "funnel")
     if f is not None:
         counts = outside(f)
         if path in drawn:
-            out.append(captions.funnel(path, _if_drawn(png_of(path), drawn), drawn[path], fmt, bench, counts, f.phi, f.widened, md))
-        spread = "about what chance alone would give" if f.phi < 1.5 else f"{f.phi:.1f} times what chance alone would give"
-        words = (f"In the funnel plot, {counts['998']} of {counts['units']} units are outside the outer (99.8%) limits and {counts['95']} are outside the inner (95%) limits. "
-                 f"The spread between units is {spread}. "
-                 + ("The limits were widened to allow for it." if f.widened else "The limits were not widened for it."))
+            out.append(
+                captions.funnel(
+                    path,
+                    _if_drawn(png_of(path), drawn),
+                    drawn[path],
+                    fmt,
+                    bench,
+                    counts,
+                    f.phi,
+                    f.widened,
+                    md,
+                )
+            )
+        spread = (
+            "about what chance alone would give"
+            if f.phi < 1.5
+            else f"{f.phi:.1f} times what chance alone would give"
+        )
+        words = (
+            f"In the funnel plot, {counts['998']} of {counts['units']} units are outside the "
+            f"outer (99.8%) limits and {counts['95']} are outside the inner (95%) limits. "
+            f"The spread between units is {spread}. "
+            + (
+                "The limits were widened to allow for it."
+                if f.widened
+                else "The limits were not widened for it."
+            )
+        )
     path = measure_figure_path(m.measure.key, "movement")
     if path in drawn:
         points_word = "percentage points" if m.measure.type == "binary" else unit
@@ -410,12 +533,19 @@ def _unit_summary(cells: list[tuple[MeasureView, Cell]]) -> str:
     text = f"{len(reported)} of {len(cells)} measures are reported. "
     if parts:
         text += "This unit " + " and ".join(parts) + ". "
-    text += f"On {typical} {'measure' if typical == 1 else 'measures'} it is in line with the benchmark."
+    text += (
+        f"On {typical} {'measure' if typical == 1 else 'measures'} it is in line with the "
+        "benchmark."
+    )
     return text
 
 
 def views(
-    config: CycleConfig, results: list[MeasureResult], units: pd.DataFrame, slugs: dict[str, str], drawn: dict,
+    config: CycleConfig,
+    results: list[MeasureResult],
+    units: pd.DataFrame,
+    slugs: dict[str, str],
+    drawn: dict,
     funnels: dict[str, Funnel | None] | None = None,
 ) -> tuple[list[MeasureView], list[UnitView]]:
     """Format every number once; return the measure and unit views the templates lay out."""
@@ -425,58 +555,134 @@ def views(
     for m in results:
         d = m.diagnostics
         coefs = [
-            {"term": md(term), "ratio": num(r["ratio"]), "interval": f"{num(r['lower'])} to {num(r['upper'])}"}
+            {
+                "term": md(term),
+                "ratio": num(r["ratio"]),
+                "interval": f"{num(r['lower'])} to {num(r['upper'])}",
+            }
             for term, r in m.casemix.coefficients.iterrows()
         ]
         continuous = m.measure.type == "continuous"
-        figures, funnel_words = _measure_figures(m, drawn, (funnels or {}).get(m.measure.key), level)
+        figures, funnel_words = _measure_figures(
+            m, drawn, (funnels or {}).get(m.measure.key), level
+        )
         view = MeasureView(
-            key=m.measure.key, name=md(m.measure.name), definition=md(m.measure.definition), better=m.measure.better,
-            href=f"measures/{m.measure.key}.qmd", model_href=f"models/{m.measure.key}.qmd", kind=m.measure.type,
-            words=WORDS["continuous" if continuous else "binary"], figures=figures, funnel_words=funnel_words,
-            patients=f"{m.casemix.patients:,}", events=f"{m.casemix.events:,.0f}" + (f" {md(m.measure.unit_label)}" if continuous else ""),
-            network_rate=value(m.measure, m.network_rate), benchmark=value(m.measure, m.benchmark),
+            key=m.measure.key,
+            name=md(m.measure.name),
+            definition=md(m.measure.definition),
+            better=m.measure.better,
+            href=f"measures/{m.measure.key}.qmd",
+            model_href=f"models/{m.measure.key}.qmd",
+            kind=m.measure.type,
+            words=WORDS["continuous" if continuous else "binary"],
+            figures=figures,
+            funnel_words=funnel_words,
+            patients=f"{m.casemix.patients:,}",
+            events=f"{m.casemix.events:,.0f}"
+            + (f" {md(m.measure.unit_label)}" if continuous else ""),
+            network_rate=value(m.measure, m.network_rate),
+            benchmark=value(m.measure, m.benchmark),
             benchmark_is_network=config.reporting.benchmark == "network" or continuous,
-            typical="" if not m.typical == m.typical or value(m.measure, m.typical) == value(m.measure, m.benchmark) else value(m.measure, m.typical),
-            c_statistic=num(m.casemix.c_statistic, 3) if not continuous and m.casemix.patients and m.casemix.c_statistic == m.casemix.c_statistic else "not applicable",
-            units_in_fit=m.casemix.units_in_fit, formula=code(m.casemix.formula),
-            tau=f"{num(m.tau[0])} ({num(m.tau[1])} to {num(m.tau[2])})", rhat=num(d.rhat_max, 3), ess=f"{d.ess_bulk_min:,.0f}",
-            divergences=d.divergences, coefficients=coefs,
+            typical=""
+            if m.typical != m.typical
+            or value(m.measure, m.typical) == value(m.measure, m.benchmark)
+            else value(m.measure, m.typical),
+            c_statistic=num(m.casemix.c_statistic, 3)
+            if not continuous
+            and m.casemix.patients
+            and m.casemix.c_statistic == m.casemix.c_statistic
+            else "not applicable",
+            units_in_fit=m.casemix.units_in_fit,
+            formula=code(m.casemix.formula),
+            tau=f"{num(m.tau[0])} ({num(m.tau[1])} to {num(m.tau[2])})",
+            rhat=num(d.rhat_max, 3),
+            ess=f"{d.ess_bulk_min:,.0f}",
+            divergences=d.divergences,
+            coefficients=coefs,
             sensitivity=[
-                {"prior": f"HalfNormal({alt['scale']:g})", "method": f"{alt['method']} (k-hat {alt['k_hat']:.2f})",
-                 "changed": "; ".join(f"{md(name)}: {GROUPS[a].lower()} → {GROUPS[b].lower()}" for name, a, b in alt["changed"]) or "none",
-                 "count": str(len(alt["changed"]))}
+                {
+                    "prior": f"HalfNormal({alt['scale']:g})",
+                    "method": f"{alt['method']} (k-hat {alt['k_hat']:.2f})",
+                    "changed": "; ".join(
+                        f"{md(name)}: {GROUPS[a].lower()} → {GROUPS[b].lower()}"
+                        for name, a, b in alt["changed"]
+                    )
+                    or "none",
+                    "count": str(len(alt["changed"])),
+                }
                 for alt in m.sensitivity
             ],
             targets=_targets_view(m),
             count_note=count_note(m.table, config.reporting.hide_counts_below),
         )
-        ordered = m.table.sort_values(["status", "rsr_median"], key=lambda s: s.map({"reported": 0, "too_few": 1, "withheld": 2, "no_cases": 3}) if s.name == "status" else s)
+        ordered = m.table.sort_values(
+            ["status", "rsr_median"],
+            key=lambda s: (
+                s.map({"reported": 0, "too_few": 1, "withheld": 2, "no_cases": 3})
+                if s.name == "status"
+                else s
+            ),
+        )
         for _, row in ordered.iterrows():
             cell = _cell(m, row, level, config.reporting.minimum_cases)
-            view.rows.append({"name": md(row["unit_name"]), "href": f"units/{slugs[row['unit_id']]}.qmd", "cell": cell})
+            view.rows.append(
+                {
+                    "name": md(row["unit_name"]),
+                    "href": f"units/{slugs[row['unit_id']]}.qmd",
+                    "cell": cell,
+                }
+            )
             cells[row["unit_id"]].append((view, cell))
         measures.append(view)
     unit_views = [
-        UnitView(id=md(uid), name=md(u["name"]), kind=md(u["kind"]), href=f"units/{slugs[uid]}.qmd",
-                 figures=_unit_figures(u["name"], slugs[uid], drawn), cells=cells[uid], summary=_unit_summary(cells[uid]))
+        UnitView(
+            id=md(uid),
+            name=md(u["name"]),
+            kind=md(u["kind"]),
+            href=f"units/{slugs[uid]}.qmd",
+            figures=_unit_figures(u["name"], slugs[uid], drawn),
+            cells=cells[uid],
+            summary=_unit_summary(cells[uid]),
+        )
         for uid, u in units.iterrows()
     ]
     return measures, unit_views
 
 
 def _targets_view(m: MeasureResult) -> dict | None:
-    """What the methods and measure pages say about the predictors of what units are pulled towards."""
+    """What the methods and measure pages say about the predictors of what units are pulled
+    towards."""
     t = m.targets
     if t is None:
         return None
-    terms = [{"term": md(target_words(x["term"])), "code": code(x["term"]),
-              "sd": f"{x['sd']:.2f} (cases x {math.exp(x['sd']):.1f})" if x["term"] == "log_cases" else f"{x['sd']:.3g}", "effect": f"{num(x['effect_median'])} ({num(x['effect_lower'])} to {num(x['effect_upper'])})"}
-             for x in t["terms"]]
-    changed = [{"name": md(c.unit_name), "with": GROUPS[c.group_with].lower(), "without": GROUPS[c.group_without].lower()}
-               for c in t["changed"].itertuples()]
+    terms = [
+        {
+            "term": md(target_words(x["term"])),
+            "code": code(x["term"]),
+            "sd": f"{x['sd']:.2f} (cases x {math.exp(x['sd']):.1f})"
+            if x["term"] == "log_cases"
+            else f"{x['sd']:.3g}",
+            "effect": f"{num(x['effect_median'])} ({num(x['effect_lower'])} to "
+            f"{num(x['effect_upper'])})",
+        }
+        for x in t["terms"]
+    ]
+    changed = [
+        {
+            "name": md(c.unit_name),
+            "with": GROUPS[c.group_with].lower(),
+            "without": GROUPS[c.group_without].lower(),
+        }
+        for c in t["changed"].itertuples()
+    ]
     groups = {g: f"{n['with']} / {n['without']}" for g, n in t["groups"].items()}
-    return {"words": md(like_words([x["term"] for x in t["terms"]])), "terms": terms, "changed": changed, "groups": groups, "count": len(changed)}
+    return {
+        "words": md(like_words([x["term"] for x in t["terms"]])),
+        "terms": terms,
+        "changed": changed,
+        "groups": groups,
+        "count": len(changed),
+    }
 
 
 def environment() -> jinja2.Environment:
@@ -491,7 +697,8 @@ def environment() -> jinja2.Environment:
     env.filters["md"] = md
     env.filters["code"] = code
     env.filters["attr"] = attr
-    env.filters["yaml"] = lambda s: json.dumps(str(s), ensure_ascii=False)  # a JSON string is a YAML scalar
+    # a JSON string is a YAML scalar
+    env.filters["yaml"] = lambda s: json.dumps(str(s), ensure_ascii=False)
     return env
 
 
@@ -505,19 +712,32 @@ def _up(path: str) -> str:
     return "../" * (len(PurePosixPath(path).parts) - 1)
 
 
-def trends(config: CycleConfig, results: list[MeasureResult], past: list[PastCycle], slugs: dict[str, str]) -> dict[str, list[dict]]:
+def trends(
+    config: CycleConfig, results: list[MeasureResult], past: list[PastCycle], slugs: dict[str, str]
+) -> dict[str, list[dict]]:
     """Per unit, its published adjusted rates in earlier cycles and now (reported cycles only)."""
     out: dict[str, list[dict]] = {uid: [] for uid in slugs}
     for r in results:
-        cycles = [(p.period, p.table[p.table["measure"] == r.measure.key]) for p in past] + [(config.cycle.period, r.table)]
+        cycles = [(p.period, p.table[p.table["measure"] == r.measure.key]) for p in past] + [
+            (config.cycle.period, r.table)
+        ]
         for period, table in cycles:
             for _, row in table[table["status"] == "reported"].iterrows():
                 if row["unit_id"] in out:
-                    out[row["unit_id"]].append({"measure": md(r.measure.name), "period": md(period), "rate": value(r.measure, row["rsr_median"]), "interval": value_span(r.measure, row["rsr_lower"], row["rsr_upper"])})
+                    out[row["unit_id"]].append(
+                        {
+                            "measure": md(r.measure.name),
+                            "period": md(period),
+                            "rate": value(r.measure, row["rsr_median"]),
+                            "interval": value_span(r.measure, row["rsr_lower"], row["rsr_upper"]),
+                        }
+                    )
     return out
 
 
-def change_views(results: list[MeasureResult], previous: PastCycle | None, slugs: dict[str, str]) -> list[dict]:
+def change_views(
+    results: list[MeasureResult], previous: PastCycle | None, slugs: dict[str, str]
+) -> list[dict]:
     """The changes page, one block per measure (empty when there is no earlier cycle)."""
     if previous is None:
         return []
@@ -525,43 +745,93 @@ def change_views(results: list[MeasureResult], previous: PastCycle | None, slugs
     blocks = []
     for r in results:
         rows = table[table["measure"] == r.measure.key] if len(table) else table
-        blocks.append({
-            "name": md(r.measure.name),
-            "rows": [
-                {"name": md(x["unit_name"]), "href": f"units/{slugs[x['unit_id']]}.qmd", "before": f"{value(r.measure, x['before'])} ({value_span(r.measure, x['before_lower'], x['before_upper'])})",
-                 "now": f"{value(r.measure, x['now'])} ({value_span(r.measure, x['now_lower'], x['now_upper'])})", "chance": chance(x["p_higher"]), "words": x["words"]}
-                for _, x in rows.sort_values("p_higher", ascending=False).iterrows()
-            ],
-        })
+        blocks.append(
+            {
+                "name": md(r.measure.name),
+                "rows": [
+                    {
+                        "name": md(x["unit_name"]),
+                        "href": f"units/{slugs[x['unit_id']]}.qmd",
+                        "before": f"{value(r.measure, x['before'])} "
+                        f"({value_span(r.measure, x['before_lower'], x['before_upper'])})",
+                        "now": f"{value(r.measure, x['now'])} "
+                        f"({value_span(r.measure, x['now_lower'], x['now_upper'])})",
+                        "chance": chance(x["p_higher"]),
+                        "words": x["words"],
+                    }
+                    for _, x in rows.sort_values("p_higher", ascending=False).iterrows()
+                ],
+            }
+        )
     return blocks
 
 
 def render_pages(
-    config: CycleConfig, results: list[MeasureResult], units: pd.DataFrame, slugs: dict[str, str], drawn: dict,
-    past: list[PastCycle], site: dict, funnels: dict[str, Funnel | None] | None = None,
+    config: CycleConfig,
+    results: list[MeasureResult],
+    units: pd.DataFrame,
+    slugs: dict[str, str],
+    drawn: dict,
+    past: list[PastCycle],
+    site: dict,
+    funnels: dict[str, Funnel | None] | None = None,
 ) -> list[Page]:
     """All pages of the site plus ``_quarto.yml``, as text."""
     env = environment()
     measures, unit_views = views(config, results, units, slugs, drawn, funnels)
     unit_trends = trends(config, results, past, slugs)
     common = {
-        "cycle": config.cycle, "site": site, "measures": measures, "units": unit_views, "limits": LIMITS,
-        "priors": ShrinkageSpec().describe(), "reporting": config.reporting, "sampler": config.sampler, "validation": config.validation,
-        "level": f"{config.reporting.interval * 100:g}%", "positions": POSITION, "symbols": SYMBOLS,
-        "groups": GROUPS, "group_symbols": GROUP_SYMBOLS, "k_hat_max": K_HAT_MAX,
+        "cycle": config.cycle,
+        "site": site,
+        "measures": measures,
+        "units": unit_views,
+        "limits": LIMITS,
+        "priors": ShrinkageSpec().describe(),
+        "reporting": config.reporting,
+        "sampler": config.sampler,
+        "validation": config.validation,
+        "level": f"{config.reporting.interval * 100:g}%",
+        "positions": POSITION,
+        "symbols": SYMBOLS,
+        "groups": GROUPS,
+        "group_symbols": GROUP_SYMBOLS,
+        "k_hat_max": K_HAT_MAX,
     }
-    pages = [
+    pages: list[tuple[str, str, dict]] = [
         ("index.qmd", "index.qmd.j2", {}),
         ("units.qmd", "units.qmd.j2", {}),
         ("guide.qmd", "guide.qmd.j2", {}),
         *[(m.href, "measure.qmd.j2", {"m": m}) for m in measures],
-        *[(u.href, "unit.qmd.j2", {"u": u, "trend": unit_trends[uid] if past else []}) for uid, u in zip(units.index, unit_views)],
-        ("changes.qmd", "changes.qmd.j2", {"previous": md(past[-1].period) if past else "", "blocks": change_views(results, past[-1] if past else None, slugs)}),
-        *[(f"models/{m.measure.key}.qmd", "model.qmd.j2", {"mv": model_view(m, drawn, md, code)}) for m in results],
+        *[
+            (u.href, "unit.qmd.j2", {"u": u, "trend": unit_trends[uid] if past else []})
+            for uid, u in zip(units.index, unit_views, strict=True)
+        ],
+        (
+            "changes.qmd",
+            "changes.qmd.j2",
+            {
+                "previous": md(past[-1].period) if past else "",
+                "blocks": change_views(results, past[-1] if past else None, slugs),
+            },
+        ),
+        *[
+            (f"models/{m.measure.key}.qmd", "model.qmd.j2", {"mv": model_view(m, drawn, md, code)})
+            for m in results
+        ],
         ("methods.qmd", "methods.qmd.j2", {}),
         ("cautions.qmd", "cautions.qmd.j2", {}),
         ("downloads.qmd", "downloads.qmd.j2", {}),
     ]
-    out = [Page(path, env.get_template(f"qmd/{tpl}").render(**common, **extra, up=_up(path))) for path, tpl, extra in pages]
-    out.append(Page("_quarto.yml", env.get_template("qmd/_quarto.yml.j2").render(**common, pages=[p for p, _, _ in pages], up="")))
+    out = [
+        Page(path, env.get_template(f"qmd/{tpl}").render(**common, **extra, up=_up(path)))
+        for path, tpl, extra in pages
+    ]
+    out.append(
+        Page(
+            "_quarto.yml",
+            env.get_template("qmd/_quarto.yml.j2").render(
+                **common, pages=[p for p, _, _ in pages], up=""
+            ),
+        )
+    )
     return out

@@ -23,10 +23,31 @@ import re
 from dataclasses import dataclass
 from html.parser import HTMLParser
 
-GRADE_LIMIT = 8.0  # US school grade for patient materials (NIH guidance, cited in Rooney et al. 2021)
+# US school grade for patient materials (NIH guidance, cited in Rooney et al. 2021)
+GRADE_LIMIT = 8.0
 
-_ONES = ["zero", "one", "two", "three", "four", "five", "six", "seven", "eight", "nine", "ten", "eleven", "twelve",
-         "thirteen", "fourteen", "fifteen", "sixteen", "seventeen", "eighteen", "nineteen"]
+_ONES = [
+    "zero",
+    "one",
+    "two",
+    "three",
+    "four",
+    "five",
+    "six",
+    "seven",
+    "eight",
+    "nine",
+    "ten",
+    "eleven",
+    "twelve",
+    "thirteen",
+    "fourteen",
+    "fifteen",
+    "sixteen",
+    "seventeen",
+    "eighteen",
+    "nineteen",
+]
 _TENS = ["", "", "twenty", "thirty", "forty", "fifty", "sixty", "seventy", "eighty", "ninety"]
 
 
@@ -35,7 +56,12 @@ def _spoken_integer(n: int) -> list[str]:
         return [_ONES[n]]
     if n < 100:
         return [_TENS[n // 10]] + ([_ONES[n % 10]] if n % 10 else [])
-    for size, name in ((10**9, "billion"), (10**6, "million"), (1000, "thousand"), (100, "hundred")):
+    for size, name in (
+        (10**9, "billion"),
+        (10**6, "million"),
+        (1000, "thousand"),
+        (100, "hundred"),
+    ):
         if n >= size:
             head, rest = divmod(n, size)
             return _spoken_integer(head) + [name] + (_spoken_integer(rest) if rest else [])
@@ -46,7 +72,8 @@ _NUMBER = re.compile(r"(\d[\d,]*)(?:\.(\d+))?(%?)")
 
 
 def spoken_number(token: str) -> list[str]:
-    """A number as read aloud: '14.2%' -> fourteen point two percent; '1,234' -> one thousand two hundred thirty four."""
+    """A number as read aloud: '14.2%' -> fourteen point two percent; '1,234' -> one thousand two
+    hundred thirty four."""
     m = _NUMBER.fullmatch(token)
     if not m:
         return []
@@ -61,14 +88,68 @@ def spoken_number(token: str) -> list[str]:
 
 # Words the vowel-group rule miscounts, with their syllable counts (dictionary pronunciations).
 _EXCEPTIONS = {
-    "area": 3, "being": 2, "business": 2, "every": 2, "everyone": 3, "idea": 3, "ideas": 3, "people": 2,
-    "real": 2, "really": 3, "create": 2, "created": 3, "science": 2, "quiet": 2, "period": 3, "periods": 3,
-    "readmitted": 4, "readmission": 4, "readmissions": 4, "reuse": 2, "various": 3, "serious": 3, "previous": 3,
-    "obvious": 3, "average": 3, "averages": 4, "different": 3, "interest": 3, "several": 3, "evening": 3,
-    "whether": 2, "where": 1, "there": 1, "here": 1, "were": 1, "one": 1, "once": 1, "done": 1, "gone": 1,
-    "some": 1, "come": 1, "become": 2, "give": 1, "live": 1, "have": 1, "site": 1, "sites": 1, "more": 1,
-    "fewer": 2, "lower": 2, "higher": 2, "chosen": 2, "years": 1, "year": 1, "patient": 2, "patients": 2,
-    "estimate": 3, "estimates": 3, "estimated": 4, "fairgauge": 2, "network": 2, "networks": 2,
+    "area": 3,
+    "being": 2,
+    "business": 2,
+    "every": 2,
+    "everyone": 3,
+    "idea": 3,
+    "ideas": 3,
+    "people": 2,
+    "real": 2,
+    "really": 3,
+    "create": 2,
+    "created": 3,
+    "science": 2,
+    "quiet": 2,
+    "period": 3,
+    "periods": 3,
+    "readmitted": 4,
+    "readmission": 4,
+    "readmissions": 4,
+    "reuse": 2,
+    "various": 3,
+    "serious": 3,
+    "previous": 3,
+    "obvious": 3,
+    "average": 3,
+    "averages": 4,
+    "different": 3,
+    "interest": 3,
+    "several": 3,
+    "evening": 3,
+    "whether": 2,
+    "where": 1,
+    "there": 1,
+    "here": 1,
+    "were": 1,
+    "one": 1,
+    "once": 1,
+    "done": 1,
+    "gone": 1,
+    "some": 1,
+    "come": 1,
+    "become": 2,
+    "give": 1,
+    "live": 1,
+    "have": 1,
+    "site": 1,
+    "sites": 1,
+    "more": 1,
+    "fewer": 2,
+    "lower": 2,
+    "higher": 2,
+    "chosen": 2,
+    "years": 1,
+    "year": 1,
+    "patient": 2,
+    "patients": 2,
+    "estimate": 3,
+    "estimates": 3,
+    "estimated": 4,
+    "fairgauge": 2,
+    "network": 2,
+    "networks": 2,
 }
 _VOWELS = re.compile(r"[aeiouy]+")
 
@@ -89,7 +170,8 @@ def syllables(word: str) -> int:
         n -= 1  # "rates", "units'" -> one less; "cases", "changes" keep it
     elif w.endswith("ed") and not re.search(r"[td]ed$", w) and n > 1:
         n -= 1  # "pulled", "based"; "adjusted", "recorded" keep it
-    n += len(re.findall(r"(?<![ct])ia|(?<![cts])io|eo|ua|uo", w))  # two sounds: "variable", "period", "actual"
+    # two sounds: "variable", "period", "actual"
+    n += len(re.findall(r"(?<![ct])ia|(?<![cts])io|eo|ua|uo", w))
     return max(1, n)
 
 
@@ -137,12 +219,41 @@ def count(blocks: list[str]) -> Counts:
 
 
 _BLOCKS = {"p", "li", "h1", "h2", "h3", "h4", "dt", "dd", "caption", "figcaption", "blockquote"}
-_SKIP = {"table", "pre", "code", "nav", "script", "style", "header", "footer", "svg", "form", "button", "select", "label"}
-_VOID = {"br", "img", "hr", "input", "meta", "link", "source", "wbr", "area", "col", "embed", "param", "track"}
+_SKIP = {
+    "table",
+    "pre",
+    "code",
+    "nav",
+    "script",
+    "style",
+    "header",
+    "footer",
+    "svg",
+    "form",
+    "button",
+    "select",
+    "label",
+}
+_VOID = {
+    "br",
+    "img",
+    "hr",
+    "input",
+    "meta",
+    "link",
+    "source",
+    "wbr",
+    "area",
+    "col",
+    "embed",
+    "param",
+    "track",
+}
 
 
 class _Prose(HTMLParser):
-    """Collect the prose blocks of ``<main>``, skipping tables, code, figures and the technical appendix."""
+    """Collect the prose blocks of ``<main>``, skipping tables, code, figures and the technical
+    appendix."""
 
     def __init__(self):
         super().__init__(convert_charrefs=True)
@@ -158,7 +269,12 @@ class _Prose(HTMLParser):
         if tag in _VOID:
             return
         classes = (dict(attrs).get("class") or "").split()
-        skipped = tag in _SKIP or "fg-appendix" in classes or "fg-names" in classes or dict(attrs).get("hidden") is not None
+        skipped = (
+            tag in _SKIP
+            or "fg-appendix" in classes
+            or "fg-names" in classes
+            or dict(attrs).get("hidden") is not None
+        )
         self.stack.append((tag, skipped))
         if tag == "main":
             self.in_main += 1

@@ -39,7 +39,10 @@ def choose_renderer(setting: str) -> Renderer:
     """Pick the renderer for ``setting`` (auto | quarto | builtin), saying why."""
     quarto = find_tool("quarto")
     if setting == "quarto" and not quarto:
-        raise RenderError("[cycle].renderer is \"quarto\" but the `quarto` command is not on PATH. Install Quarto, or set renderer = \"auto\" to use the built-in renderer.")
+        raise RenderError(
+            '[cycle].renderer is "quarto" but the `quarto` command is not on PATH. Install '
+            'Quarto, or set renderer = "auto" to use the built-in renderer.'
+        )
     if setting in ("quarto", "auto") and quarto:
         version = run_tool([quarto, "--version"]).strip()
         return Renderer("quarto", version, f"`quarto` found at {quarto}")
@@ -92,7 +95,9 @@ class BuiltinRenderer:
         divs keep their id and classes; an image with ``{fig-alt="..."}`` becomes a figure whose
         caption is the image text and whose alt text is ``fig-alt``, as in Quarto.
         """
-        out, chunk, i = [], [], 0
+        out: list[str] = []
+        chunk: list[str] = []
+        i = 0
 
         def flush():
             out.append(self.md.render("\n".join(chunk)))
@@ -104,7 +109,8 @@ class BuiltinRenderer:
             if figure:
                 flush()
                 out.append(
-                    f'<figure><img src="{html.escape(figure["src"])}" alt="{html.escape(figure["alt"])}" loading="lazy">'
+                    f'<figure><img src="{html.escape(figure["src"])}" '
+                    f'alt="{html.escape(figure["alt"])}" loading="lazy">'
                     f"<figcaption>{self.inline(figure['caption'])}</figcaption></figure>\n"
                 )
                 i += 1
@@ -138,8 +144,11 @@ class BuiltinRenderer:
         if callout:
             title = self.inline(attrs["title"]) if attrs.get("title") else ""
             if attrs.get("collapse") == "true":
-                return (f'<details{id_attr} class="callout {callout}"><summary class="callout-title">{title or "More"}</summary>'
-                        f"{inner}</details>\n")
+                return (
+                    f'<details{id_attr} class="callout {callout}"><summary '
+                    f'class="callout-title">{title or "More"}</summary>'
+                    f"{inner}</details>\n"
+                )
             head = f'<p class="callout-title">{title}</p>' if title else ""
             return f'<aside{id_attr} class="callout {callout}" role="note">{head}{inner}</aside>\n'
         cls = f' class="{html.escape(" ".join(classes))}"' if classes else ""
@@ -147,7 +156,8 @@ class BuiltinRenderer:
 
     def nav(self, up: str) -> list[dict]:
         def link(item: dict) -> dict:
-            text = Markup(self.inline(str(item["text"])))  # names in the navigation are escaped markdown
+            # names in the navigation are escaped markdown
+            text = Markup(self.inline(str(item["text"])))
             if "menu" in item:
                 return {"text": text, "href": "", "menu": [link(x) for x in item["menu"]]}
             return {"text": text, "href": up + item["href"].replace(".qmd", ".html"), "menu": []}
@@ -159,7 +169,10 @@ class BuiltinRenderer:
         text = (self.project / rel).read_text("utf-8")
         front = _FRONT.match(text)
         if not front:
-            raise RenderError(f"{self.project / rel}: a page must start with a YAML front matter block (--- ... ---).")
+            raise RenderError(
+                f"{self.project / rel}: a page must start with a YAML front matter block (--- "
+                "... ---)."
+            )
         meta = yaml.safe_load(front.group(1)) or {}
         body = self.blocks(text[front.end() :].splitlines())
         body = _QMD_LINK.sub(lambda m: f'{m.group(1)}.html{m.group(2) or ""}"', body)
@@ -191,8 +204,13 @@ class BuiltinRenderer:
             target.parent.mkdir(parents=True, exist_ok=True)
             page, meta = self.page(rel)
             target.write_text(page, encoding="utf-8")
-            index.append({"title": _plain(meta.get("title", "")), "url": str(PurePosixPath(rel).with_suffix(".html")),
-                          "text": " ".join(prose(page))[:SEARCH_TEXT]})
+            index.append(
+                {
+                    "title": _plain(meta.get("title", "")),
+                    "url": str(PurePosixPath(rel).with_suffix(".html")),
+                    "text": " ".join(prose(page))[:SEARCH_TEXT],
+                }
+            )
         for folder in ASSETS:
             source = self.project / folder
             if source.is_dir():
@@ -202,21 +220,35 @@ class BuiltinRenderer:
         self.search(out, index)
 
     def search(self, out: Path, index: list[dict]) -> None:
-        """The site search: ``search.html`` lists every page (without JavaScript) and filters it as you type."""
+        """The site search: ``search.html`` lists every page (without JavaScript) and filters it as
+        you type."""
         (out / "assets").mkdir(exist_ok=True)
         payload = json.dumps(index, ensure_ascii=False, separators=(",", ":")).replace("</", "<\\/")
-        (out / "assets" / "search-index.js").write_text(f"window.FAIRGAUGE_INDEX = {payload};\n", encoding="utf-8")
-        items = "".join(f'<li><a href="{html.escape(p["url"])}">{html.escape(p["title"])}</a></li>' for p in index)
+        (out / "assets" / "search-index.js").write_text(
+            f"window.FAIRGAUGE_INDEX = {payload};\n", encoding="utf-8"
+        )
+        items = "".join(
+            f'<li><a href="{html.escape(p["url"])}">{html.escape(p["title"])}</a></li>'
+            for p in index
+        )
         body = Markup(
-            '<form class="fg-search-page" role="search" aria-label="Search the pages" action="search.html" method="get">'
+            '<form class="fg-search-page" role="search" aria-label="Search the pages" '
+            'action="search.html" method="get">'
             '<label for="fg-search-box">Words to look for</label> '
-            '<input type="search" id="fg-search-box" name="q" autocomplete="off"> <button type="submit">Search</button></form>'
-            '<p id="fg-search-status" aria-live="polite">Every page of this site is listed below.</p>'
+            '<input type="search" id="fg-search-box" name="q" autocomplete="off"> <button '
+            'type="submit">Search</button></form>'
+            '<p id="fg-search-status" aria-live="polite">Every page of this site is listed '
+            "below.</p>"
             f'<ul id="fg-search-results" class="fg-names" data-up="">{items}</ul>'
             '<script src="assets/search-index.js"></script>'
         )
-        meta = {"title": "Search this site", "description": "Find a unit, a measure or a topic on this site."}
-        (out / "search.html").write_text(self.shell_page("search.html", meta, body), encoding="utf-8")
+        meta = {
+            "title": "Search this site",
+            "description": "Find a unit, a measure or a topic on this site.",
+        }
+        (out / "search.html").write_text(
+            self.shell_page("search.html", meta, body), encoding="utf-8"
+        )
 
 
 SEARCH_TEXT = 4000  # characters of each page's prose kept in the search index

@@ -11,13 +11,23 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from .casemix import FAMILIES
 from .captions import FigureView, attr
+from .casemix import FAMILIES
 from .figures import model_figure_path
 from .results import POSITION, MeasureResult
 from .validation import LABELS
 
-BINARY_ROWS = ["c_statistic", "calibration_large", "calibration_slope", "brier", "hl_statistic", "hl_p", "sensitivity", "specificity", "ppv"]
+BINARY_ROWS = [
+    "c_statistic",
+    "calibration_large",
+    "calibration_slope",
+    "brier",
+    "hl_statistic",
+    "hl_p",
+    "sensitivity",
+    "specificity",
+    "ppv",
+]
 CONTINUOUS_ROWS = ["r_squared", "mae", "mae_percent"]
 
 
@@ -70,14 +80,20 @@ def _in_ten(c: float) -> str:
 def _summary(m: MeasureResult, md) -> list[str]:
     v = m.validation
     if v is None:
-        return ["The expected events for this measure were supplied per unit by the organisation, so fairgauge fitted no case-mix "
-                "model and cannot check one. How good the adjustment is depends on the model that produced those numbers."]
+        return [
+            "The expected events for this measure were supplied per unit by the organisation, "
+            "so fairgauge fitted no case-mix "
+            "model and cannot check one. How good the adjustment is depends on the model that "
+            "produced those numbers."
+        ]
     cv = v.cross_validated
     out = []
     if v.binary:
         c_in = v.in_sample.values["c_statistic"]
-        text = (f"The model ranks a patient who had the outcome above one who did not {_in_ten(c_in)} "
-                f"(C-statistic {c_in:.3f}; 0.5 would be a coin toss")
+        text = (
+            f"The model ranks a patient who had the outcome above one who did not {_in_ten(c_in)} "
+            f"(C-statistic {c_in:.3f}; 0.5 would be a coin toss"
+        )
         if cv is not None:
             c_cv = cv.values["c_statistic"]
             text += f", and {c_cv:.3f} on patients the model was not fitted to"
@@ -85,69 +101,149 @@ def _summary(m: MeasureResult, md) -> list[str]:
         slope = (cv or v.in_sample).values["calibration_slope"]
         if cv is not None:
             if slope < 0.9:
-                out.append(f"Checked on patients it was not fitted to, the calibration slope is {slope:.2f}: the model's risks are too spread out, a sign of overfitting. Consider fewer risk factors.")
+                out.append(
+                    "Checked on patients it was not fitted to, the calibration slope is "
+                    f"{slope:.2f}: the model's risks are too spread out, a sign of "
+                    "overfitting. Consider fewer risk factors."
+                )
             elif slope > 1.1:
-                out.append(f"Checked on patients it was not fitted to, the calibration slope is {slope:.2f}: the model's risks are too bunched together.")
+                out.append(
+                    "Checked on patients it was not fitted to, the calibration slope is "
+                    f"{slope:.2f}: the model's risks are too bunched together."
+                )
             else:
-                out.append(f"Checked on patients it was not fitted to, the calibration slope is {slope:.2f}, close to the ideal of 1: there is no sign of overfitting.")
+                out.append(
+                    "Checked on patients it was not fitted to, the calibration slope is "
+                    f"{slope:.2f}, close to the ideal of 1: there is no sign of overfitting."
+                )
         groups = v.in_sample.groups
-        worst = float(np.nanmax(np.abs(groups["expected"] / groups["observed"].where(groups["observed"] > 0) - 1))) if len(groups) else float("nan")
+        worst = (
+            float(
+                np.nanmax(
+                    np.abs(
+                        groups["expected"] / groups["observed"].where(groups["observed"] > 0) - 1
+                    )
+                )
+            )
+            if len(groups)
+            else float("nan")
+        )
         if not np.isnan(worst):
-            out.append(f"Across the {len(groups)} risk groups, expected and observed counts differ by at most {worst * 100:.0f}%.")
+            out.append(
+                f"Across the {len(groups)} risk groups, expected and observed counts differ by "
+                f"at most {worst * 100:.0f}%."
+            )
     else:
         r2, mae = v.in_sample.values["r_squared"], v.in_sample.values["mae_percent"]
-        text = f"The model explains {max(r2, 0) * 100:.0f}% of the variation between patients; its predictions are off by {mae:.0f}% of the average, on average"
+        text = (
+            f"The model explains {max(r2, 0) * 100:.0f}% of the variation between "
+            f"patients; its predictions are off by {mae:.0f}% of the average, on average"
+        )
         if cv is not None:
-            text += f" ({max(cv.values['r_squared'], 0) * 100:.0f}% and {cv.values['mae_percent']:.0f}% on patients it was not fitted to)"
-        out.append(text + ". Individual stays vary a lot; the model is meant to make unit averages comparable, not to predict one patient.")
+            text += (
+                f" ({max(cv.values['r_squared'], 0) * 100:.0f}% and "
+                f"{cv.values['mae_percent']:.0f}% on patients it was not fitted to)"
+            )
+        out.append(
+            text + ". Individual stays vary a lot; the model is meant to make unit averages "
+            "comparable, not to predict one patient."
+        )
     return out
 
 
 def _roc_figure(m: MeasureResult, path: str) -> FigureView:
-    v = m.validation
+    v = m.model_validation
     grid = [0.0, 0.05, 0.1, 0.2, 0.3, 0.4, 0.5, 0.6, 0.8, 1.0]
+
     def at(roc):
         return np.interp(grid, roc["false_positive_rate"], roc["true_positive_rate"])
+
     inside = at(v.in_sample.roc)
     cv = at(v.cross_validated.roc) if v.cross_validated is not None else None
-    rows = [[f"{g:.2f}", f"{a:.3f}", f"{cv[i]:.3f}" if cv is not None else ""] for i, (g, a) in enumerate(zip(grid, inside))]
-    return FigureView(path, "", "ROC curve: the further above the dotted diagonal, the better the model tells patients apart.", attr(_alt_roc(m)),
-                      ["False-positive rate", "True-positive rate, in sample", "True-positive rate, cross-validated"], rows, kind="roc")
+    rows = [
+        [f"{g:.2f}", f"{a:.3f}", f"{cv[i]:.3f}" if cv is not None else ""]
+        for i, (g, a) in enumerate(zip(grid, inside, strict=True))
+    ]
+    return FigureView(
+        path,
+        "",
+        "ROC curve: the further above the dotted diagonal, the better the model tells patients "
+        "apart.",
+        attr(_alt_roc(m)),
+        [
+            "False-positive rate",
+            "True-positive rate, in sample",
+            "True-positive rate, cross-validated",
+        ],
+        rows,
+        kind="roc",
+    )
 
 
 def _calibration_figure(m: MeasureResult, path: str, unit: str) -> FigureView:
-    v = m.validation
+    v = m.model_validation
     k = 100.0 if v.binary else 1.0
     cvg = v.cross_validated.groups if v.cross_validated is not None else None
-    rows = [[f"{int(g['group'])}", f"{g['expected_mean'] * k:.2f}", f"{g['observed_mean'] * k:.2f}",
-             f"{cvg['expected_mean'].iloc[i] * k:.2f}" if cvg is not None and i < len(cvg) else "",
-             f"{cvg['observed_mean'].iloc[i] * k:.2f}" if cvg is not None and i < len(cvg) else ""]
-            for i, g in v.in_sample.groups.iterrows()]
-    return FigureView(path, "", "Calibration: observed against expected by risk group; points on the dotted diagonal are perfectly calibrated.",
-                      attr(_alt_calibration(m, unit)), ["Risk group", f"Expected ({unit})", f"Observed ({unit})", "Expected, cross-validated", "Observed, cross-validated"], rows, kind="calibration")
+    rows = [
+        [
+            f"{int(g['group'])}",
+            f"{g['expected_mean'] * k:.2f}",
+            f"{g['observed_mean'] * k:.2f}",
+            f"{cvg['expected_mean'].iloc[i] * k:.2f}" if cvg is not None and i < len(cvg) else "",
+            f"{cvg['observed_mean'].iloc[i] * k:.2f}" if cvg is not None and i < len(cvg) else "",
+        ]
+        for i, g in v.in_sample.groups.iterrows()
+    ]
+    return FigureView(
+        path,
+        "",
+        "Calibration: observed against expected by risk group; points on the dotted diagonal "
+        "are perfectly calibrated.",
+        attr(_alt_calibration(m, unit)),
+        [
+            "Risk group",
+            f"Expected ({unit})",
+            f"Observed ({unit})",
+            "Expected, cross-validated",
+            "Observed, cross-validated",
+        ],
+        rows,
+        kind="calibration",
+    )
 
 
 def _alt_roc(m: MeasureResult) -> str:
-    v = m.validation
-    text = f"ROC curve of the case-mix model for {m.measure.name}: the in-sample curve has area {v.in_sample.values['c_statistic']:.3f}"
+    v = m.model_validation
+    text = (
+        f"ROC curve of the case-mix model for {m.measure.name}: the in-sample curve has "
+        f"area {v.in_sample.values['c_statistic']:.3f}"
+    )
     if v.cross_validated is not None:
         text += f", the cross-validated curve {v.cross_validated.values['c_statistic']:.3f}"
     return text + ". Both rise above the dotted diagonal of a coin toss"
 
 
 def _alt_calibration(m: MeasureResult, unit: str) -> str:
-    g = m.validation.in_sample.groups
-    k = 100.0 if m.validation.binary else 1.0
-    return (f"Calibration of the case-mix model for {m.measure.name}: observed against expected in {len(g)} risk groups, from "
-            f"{g['expected_mean'].iloc[0] * k:.1f} to {g['expected_mean'].iloc[-1] * k:.1f} {unit} expected and "
-            f"{g['observed_mean'].iloc[0] * k:.1f} to {g['observed_mean'].iloc[-1] * k:.1f} {unit} observed; points on the dotted diagonal "
-            "would be perfectly calibrated")
+    g = m.model_validation.in_sample.groups
+    k = 100.0 if m.model_validation.binary else 1.0
+    return (
+        f"Calibration of the case-mix model for {m.measure.name}: observed against expected in "
+        f"{len(g)} risk groups, from "
+        f"{g['expected_mean'].iloc[0] * k:.1f} to {g['expected_mean'].iloc[-1] * k:.1f} {unit} "
+        "expected and "
+        f"{g['observed_mean'].iloc[0] * k:.1f} to {g['observed_mean'].iloc[-1] * k:.1f} {unit} "
+        "observed; points on the dotted diagonal "
+        "would be perfectly calibrated"
+    )
 
 
 def _losses(m: MeasureResult, md) -> str:
-    """Units that lost patients to missing risk factors, largest loss first (names from the results table)."""
+    """Units that lost patients to missing risk factors, largest loss first (names from the results
+    table)."""
     names = m.table.set_index("unit_id")["unit_name"]
-    by_unit = sorted((m.casemix.exclusions or {}).get("by_unit", {}).items(), key=lambda kv: (-kv[1], kv[0]))
+    by_unit = sorted(
+        (m.casemix.exclusions or {}).get("by_unit", {}).items(), key=lambda kv: (-kv[1], kv[0])
+    )
     return "; ".join(f"{md(names.get(u, u))} {n:,}" for u, n in by_unit)
 
 
@@ -160,21 +256,45 @@ def model_view(m: MeasureResult, drawn: dict, md, code) -> ModelView:
     family, ratio_word = FAMILIES.get(fit.family, ("none: expected values were supplied", "ratio"))
     extra = []
     if fit.family == "lognormal":
-        extra.append(f"Duan's smearing factor is {fit.smearing:.3f}: the back-transformed means are multiplied by it; the residual variance on the log scale is {fit.dispersion:.3f}.")
+        extra.append(
+            f"Duan's smearing factor is {fit.smearing:.3f}: the back-transformed means are "
+            f"multiplied by it; the residual variance on the log scale is {fit.dispersion:.3f}."
+        )
     if fit.family == "gamma":
-        extra.append(f"The Pearson dispersion of the Gamma fit is {fit.dispersion:.3f} (a Gamma shape of about {1 / fit.dispersion:.2f}).")
+        extra.append(
+            f"The Pearson dispersion of the Gamma fit is {fit.dispersion:.3f} (a Gamma shape "
+            f"of about {1 / fit.dispersion:.2f})."
+        )
     ex = fit.exclusions or {}
     exclusions = []
     if ex.get("dropped_rows"):
         per_var = ", ".join(f"{md(k)} {n:,}" for k, n in ex["dropped"].items())
-        exclusions.append(f"{ex['dropped_rows']:,} patients were left out of this measure because a risk factor was missing (by risk factor: {per_var}). "
-                          f"They are not counted in any unit's cases. Patients left out, by unit: {_losses(m, md)}.")
+        exclusions.append(
+            f"{ex['dropped_rows']:,} patients were left out of this measure because a risk "
+            f"factor was missing (by risk factor: {per_var}). "
+            "They are not counted in any unit's cases. Patients left out, by unit: "
+            f"{_losses(m, md)}."
+        )
     if ex.get("imputed_rows"):
         per_var = ", ".join(f"{md(k)} {n:,}" for k, n in ex["imputed"].items())
-        exclusions.append(f"{ex['imputed_rows']:,} patients had a missing risk factor filled in with the most common value (categories) or the median (numbers) (by risk factor: {per_var}).")
+        exclusions.append(
+            f"{ex['imputed_rows']:,} patients had a missing risk factor filled in with the "
+            "most common value (categories) or the median (numbers) (by risk factor: "
+            f"{per_var})."
+        )
     if source == "fitted" and not exclusions:
-        exclusions.append("No patient was left out or had a value filled in: every risk factor was recorded for every patient.")
-    coefficients = [{"term": md(t), "ratio": f"{r['ratio']:.3f}", "interval": f"{r['lower']:.3f} to {r['upper']:.3f}"} for t, r in fit.coefficients.iterrows()]
+        exclusions.append(
+            "No patient was left out or had a value filled in: every risk factor was recorded "
+            "for every patient."
+        )
+    coefficients = [
+        {
+            "term": md(t),
+            "ratio": f"{r['ratio']:.3f}",
+            "interval": f"{r['lower']:.3f} to {r['upper']:.3f}",
+        }
+        for t, r in fit.coefficients.iterrows()
+    ]
     rows, groups = [], []
     if v is not None:
         for key in BINARY_ROWS if v.binary else CONTINUOUS_ROWS:
@@ -183,12 +303,24 @@ def model_view(m: MeasureResult, drawn: dict, md, code) -> ModelView:
             if key == "c_statistic":
                 lo, hi = v.in_sample.values["c_lower"], v.in_sample.values["c_upper"]
                 shown = f"{inside:.3f} ({lo:.3f} to {hi:.3f})"
-                shown_cv = f"{cv:.3f} ({v.cross_validated.values['c_lower']:.3f} to {v.cross_validated.values['c_upper']:.3f})" if v.cross_validated is not None else "not applicable"
+                shown_cv = (
+                    f"{cv:.3f} ({v.cross_validated.values['c_lower']:.3f} to "
+                    f"{v.cross_validated.values['c_upper']:.3f})"
+                    if v.cross_validated is not None
+                    else "not applicable"
+                )
             elif key == "hl_statistic":
                 shown = f"{inside:.2f} on {v.in_sample.values['hl_df']:.0f} df"
-                shown_cv = f"{cv:.2f} on {v.cross_validated.values['hl_df']:.0f} df" if v.cross_validated is not None else "not applicable"
+                shown_cv = (
+                    f"{cv:.2f} on {v.cross_validated.values['hl_df']:.0f} df"
+                    if v.cross_validated is not None
+                    else "not applicable"
+                )
             else:
-                shown, shown_cv = _fmt(key, inside, unit), (_fmt(key, cv, unit) if v.cross_validated is not None else "not applicable")
+                shown, shown_cv = (
+                    _fmt(key, inside, unit),
+                    (_fmt(key, cv, unit) if v.cross_validated is not None else "not applicable"),
+                )
             label = LABELS[key] + (" (95% interval, DeLong)" if key == "c_statistic" else "")
             if key in ("sensitivity", "specificity", "ppv"):
                 label += f" ({v.threshold * 100:.1f}%)"
@@ -196,28 +328,65 @@ def model_view(m: MeasureResult, drawn: dict, md, code) -> ModelView:
         k = 100.0 if v.binary else 1.0
         cvg = v.cross_validated.groups if v.cross_validated is not None else None
         for i, g in v.in_sample.groups.iterrows():
-            groups.append({
-                "group": f"{int(g['group'])}", "patients": f"{int(g['patients']):,}",
-                "expected": f"{g['expected_mean'] * k:.2f}", "observed": f"{g['observed_mean'] * k:.2f}",
-                "ratio": f"{g['predictive_ratio']:.2f}" if g["observed"] > 0 else "not defined",
-                "cv_expected": f"{cvg['expected_mean'].iloc[i] * k:.2f}" if cvg is not None and i < len(cvg) else "",
-                "cv_observed": f"{cvg['observed_mean'].iloc[i] * k:.2f}" if cvg is not None and i < len(cvg) else "",
-            })
+            groups.append(
+                {
+                    "group": f"{int(g['group'])}",
+                    "patients": f"{int(g['patients']):,}",
+                    "expected": f"{g['expected_mean'] * k:.2f}",
+                    "observed": f"{g['observed_mean'] * k:.2f}",
+                    "ratio": f"{g['predictive_ratio']:.2f}" if g["observed"] > 0 else "not defined",
+                    "cv_expected": f"{cvg['expected_mean'].iloc[i] * k:.2f}"
+                    if cvg is not None and i < len(cvg)
+                    else "",
+                    "cv_observed": f"{cvg['observed_mean'].iloc[i] * k:.2f}"
+                    if cvg is not None and i < len(cvg)
+                    else "",
+                }
+            )
     equity, equity_summary = [], ""
     if m.equity is not None:
-        for _, e in m.equity.sort_values(["changed", "unit_name"], ascending=[False, True]).iterrows():
-            equity.append({"name": md(e["unit_name"]), "with": POSITION.get(e["position_with"], ""), "without": POSITION.get(e["position_without"], ""),
-                           "changed": "changes" if e["changed"] else "same"})
+        for _, e in m.equity.sort_values(
+            ["changed", "unit_name"], ascending=[False, True]
+        ).iterrows():
+            equity.append(
+                {
+                    "name": md(e["unit_name"]),
+                    "with": POSITION.get(e["position_with"], ""),
+                    "without": POSITION.get(e["position_without"], ""),
+                    "changed": "changes" if e["changed"] else "same",
+                }
+            )
         n_changed = int(m.equity["changed"].sum())
-        equity_summary = (f"{n_changed} of {len(m.equity)} reported units {'changes' if n_changed == 1 else 'change'} position when the "
-                          "social-risk factors are left out of the case-mix model.")
-    roc_path, cal_path = model_figure_path(m.measure.key, "roc"), model_figure_path(m.measure.key, "calibration")
+        equity_summary = (
+            f"{n_changed} of {len(m.equity)} reported units "
+            f"{'changes' if n_changed == 1 else 'change'} position when the "
+            "social-risk factors are left out of the case-mix model."
+        )
+    roc_path, cal_path = (
+        model_figure_path(m.measure.key, "roc"),
+        model_figure_path(m.measure.key, "calibration"),
+    )
     return ModelView(
-        key=m.measure.key, name=md(m.measure.name), measure_href=f"measures/{m.measure.key}.qmd", source=source, family=family,
-        ratio_word=ratio_word.capitalize(), formula=code(fit.formula), patients=f"{fit.patients:,}", units_in_fit=fit.units_in_fit,
-        solver=fit.solver, extra=extra, exclusions=exclusions, coefficients=coefficients, validation=rows,
-        folds=v.folds if v is not None else 0, groups=groups, summary=_summary(m, md),
+        key=m.measure.key,
+        name=md(m.measure.name),
+        measure_href=f"measures/{m.measure.key}.qmd",
+        source=source,
+        family=family,
+        ratio_word=ratio_word.capitalize(),
+        formula=code(fit.formula),
+        patients=f"{fit.patients:,}",
+        units_in_fit=fit.units_in_fit,
+        solver=fit.solver,
+        extra=extra,
+        exclusions=exclusions,
+        coefficients=coefficients,
+        validation=rows,
+        folds=v.folds if v is not None else 0,
+        groups=groups,
+        summary=_summary(m, md),
         roc=_roc_figure(m, roc_path) if roc_path in drawn else None,
         calibration=_calibration_figure(m, cal_path, unit) if cal_path in drawn else None,
-        equity=equity, equity_summary=equity_summary, social_risk=", ".join(md(s) for s in m.measure.social_risk),
+        equity=equity,
+        equity_summary=equity_summary,
+        social_risk=", ".join(md(s) for s in m.measure.social_risk),
     )

@@ -2,9 +2,9 @@
 
 :class:`Sampler` compiles the PyMC model of a :class:`~pipeline.shrinkage.ShrinkageSpec` once per
 cycle (nutpie) and samples every measure's data with it, or uses PyMC's own NUTS. Every fit is
-checked against ``LIMITS``; a failed fit is run once more with :func:`safer` settings and then
-stops the cycle. Prior sensitivity reweights the same draws to a narrower and a wider prior for
-the between-unit SD (Pareto-smoothed importance sampling), or refits when the weights are unreliable.
+checked against ``LIMITS``; a failed fit is run once more with :func:`safer` settings and then stops
+the cycle. Prior sensitivity reweights the same draws to a narrower and a wider prior for the
+between-unit SD (Pareto-smoothed importance sampling), or refits when the weights are unreliable.
 """
 
 from __future__ import annotations
@@ -12,6 +12,7 @@ from __future__ import annotations
 import time
 import warnings
 from dataclasses import dataclass
+from typing import Any
 
 import numpy as np
 
@@ -23,7 +24,13 @@ from .shrinkage import Cells, ShrinkageSpec, build_model, model_data
 # and tail effective sample sizes of at least 100 per chain; divergences must be absent; an
 # E-BFMI below 0.3 flags poor exploration of the energy distribution (Betancourt 2016,
 # arXiv:1604.00695; the 0.3 threshold is common practice, no source)).
-LIMITS = {"rhat_max": 1.01, "ess_bulk_per_chain_min": 100, "ess_tail_per_chain_min": 100, "divergences_max": 0, "bfmi_min": 0.3}
+LIMITS = {
+    "rhat_max": 1.01,
+    "ess_bulk_per_chain_min": 100,
+    "ess_tail_per_chain_min": 100,
+    "divergences_max": 0,
+    "bfmi_min": 0.3,
+}
 
 
 LOW_RANK_MAX_UNITS = 100  # nutpie's low-rank mass matrix up to this many units, diagonal above
@@ -46,9 +53,15 @@ class Diagnostics:
         if not self.rhat_max <= LIMITS["rhat_max"]:
             out.append(f"largest R-hat {self.rhat_max:.3f} is above {LIMITS['rhat_max']}")
         if not self.ess_bulk_min >= LIMITS["ess_bulk_per_chain_min"] * self.chains:
-            out.append(f"smallest bulk ESS {self.ess_bulk_min:.0f} is below {LIMITS['ess_bulk_per_chain_min'] * self.chains}")
+            out.append(
+                f"smallest bulk ESS {self.ess_bulk_min:.0f} is below "
+                f"{LIMITS['ess_bulk_per_chain_min'] * self.chains}"
+            )
         if not self.ess_tail_min >= LIMITS["ess_tail_per_chain_min"] * self.chains:
-            out.append(f"smallest tail ESS {self.ess_tail_min:.0f} is below {LIMITS['ess_tail_per_chain_min'] * self.chains}")
+            out.append(
+                f"smallest tail ESS {self.ess_tail_min:.0f} is below "
+                f"{LIMITS['ess_tail_per_chain_min'] * self.chains}"
+            )
         if self.divergences > LIMITS["divergences_max"]:
             out.append(f"{self.divergences} divergent transitions")
         if not self.bfmi_min >= LIMITS["bfmi_min"]:
@@ -60,7 +73,9 @@ def safer(settings: SamplerSection) -> SamplerSection:
     """Settings for the one retry after failed checks: twice the warm-up, smaller steps."""
     from dataclasses import replace
 
-    return replace(settings, tune=settings.tune * 2, target_accept=max(settings.target_accept, 0.99))
+    return replace(
+        settings, tune=settings.tune * 2, target_accept=max(settings.target_accept, 0.99)
+    )
 
 
 class Sampler:
@@ -68,7 +83,7 @@ class Sampler:
 
     def __init__(self, spec: ShrinkageSpec, settings: SamplerSection, engine: str = "nutpie"):
         self.spec, self.settings, self.engine = spec, settings, engine
-        self._compiled: dict[tuple, object] = {}  # (units, data names) -> compiled model
+        self._compiled: dict[tuple, Any] = {}  # (units, data names) -> compiled model
 
     def run(self, cells: Cells, seed: int, settings: SamplerSection | None = None):
         """Sample the posterior for ``cells``; return (posterior draws, diagnostics)."""
@@ -84,12 +99,21 @@ class Sampler:
 
                 shape = (cells.n_units, tuple(sorted(data)), self.spec.predictors)
                 if shape not in self._compiled:  # compile once per cycle and kind of data
-                    self._compiled[shape] = nutpie.compile_pymc_model(build_model(self.spec, cells, data))
+                    self._compiled[shape] = nutpie.compile_pymc_model(
+                        build_model(self.spec, cells, data)
+                    )
                 compiled = self._compiled[shape].with_data(**data)
                 idata = nutpie.sample(
-                    compiled, draws=s.draws, tune=s.tune, chains=s.chains, cores=s.cores,
-                    seed=seed, target_accept=s.target_accept, progress_bar=False,
-                    # Low-rank adaptation follows the mu-versus-units correlation; its own cost grows with
+                    compiled,
+                    draws=s.draws,
+                    tune=s.tune,
+                    chains=s.chains,
+                    cores=s.cores,
+                    seed=seed,
+                    target_accept=s.target_accept,
+                    progress_bar=False,
+                    # Low-rank adaptation follows the mu-versus-units correlation; its own cost
+                    # grows with
                     # the number of units (DEVELOPERS.md, "Sampler").
                     low_rank_modified_mass_matrix=cells.n_units <= LOW_RANK_MAX_UNITS,
                 )
@@ -98,8 +122,14 @@ class Sampler:
 
                 with build_model(self.spec, cells, data):
                     idata = pm.sample(
-                        draws=s.draws, tune=s.tune, chains=s.chains, cores=s.cores, random_seed=seed,
-                        target_accept=s.target_accept, progressbar=False, compute_convergence_checks=False,
+                        draws=s.draws,
+                        tune=s.tune,
+                        chains=s.chains,
+                        cores=s.cores,
+                        random_seed=seed,
+                        target_accept=s.target_accept,
+                        progressbar=False,
+                        compute_convergence_checks=False,
                     )
             names = self.spec.sampled
             rhat = az.rhat(idata, var_names=names)
@@ -117,29 +147,45 @@ class Sampler:
             bfmi_min=float(np.min(bfmi)),
             retried=settings is not None,
         )
-        draws = posterior_draws(self.spec, idata.posterior, cells.n_units, data.get("centred"), data.get("w"))
+        draws = posterior_draws(
+            self.spec, idata.posterior, cells.n_units, data.get("centred"), data.get("w")
+        )
         return {**draws, "curves": curves}, diagnostics
 
     def run_checked(self, cells: Cells, seed: int, measure: str, warn=lambda text: None):
-        """:meth:`run`; if the checks fail, warn and run once more with :func:`safer` settings; then raise."""
+        """:meth:`run`; if the checks fail, warn and run once more with :func:`safer` settings; then
+        raise."""
         draws, diagnostics = self.run(cells, seed)
         if diagnostics.failures():
-            warn(f"{measure}: the shrinkage fit failed its checks ({'; '.join(diagnostics.failures())}); retrying once with "
-                 "twice the warm-up and target acceptance 0.99")
+            warn(
+                f"{measure}: the shrinkage fit failed its checks "
+                f"({'; '.join(diagnostics.failures())}); retrying once with "
+                "twice the warm-up and target acceptance 0.99"
+            )
             draws, diagnostics = self.run(cells, seed + 1_000_003, safer(self.settings))
             if diagnostics.failures():
                 raise fit_failed(measure, diagnostics)
         return draws, diagnostics
 
 
-def posterior_draws(spec: ShrinkageSpec, post, n_units: int, centred: np.ndarray | None, w: np.ndarray | None = None) -> dict[str, np.ndarray]:
-    """Flatten chains: mu (draws,), tau (draws,), u (draws, units) with intercept = mu + u; with unit-level
-    predictors also beta (draws, predictors) and pull (draws, units) = w . beta, so that a unit's prior
-    mean is mu + pull and u - pull is its departure from units like it."""
+def posterior_draws(
+    spec: ShrinkageSpec, post, n_units: int, centred: np.ndarray | None, w: np.ndarray | None = None
+) -> dict[str, np.ndarray]:
+    """Flatten chains: mu (draws,), tau (draws,), u (draws, units) with intercept = mu + u; with
+    unit-level predictors also beta (draws, predictors) and pull (draws, units) = w . beta, so that
+    a unit's prior mean is mu + pull and u - pull is its departure from units like it."""
     if spec.pooling == "beta":
         alpha, beta = post["alpha"].values.reshape(-1), post["beta"].values.reshape(-1)
-        return {"alpha": alpha, "beta": beta, "mu": np.log(alpha / beta), "tau": np.full(len(alpha), np.nan), "u": np.zeros((len(alpha), n_units))}
+        return {
+            "alpha": alpha,
+            "beta": beta,
+            "mu": np.log(alpha / beta),
+            "tau": np.full(len(alpha), np.nan),
+            "u": np.zeros((len(alpha), n_units)),
+        }
     if spec.pooling == "partial":
+        if centred is None:
+            raise ValueError("partial pooling needs each unit's parameterisation (centred)")
         mu = post["mu"].values.reshape(-1)
         tau = post["tau"].values.reshape(-1)
         v = post["v"].values.reshape(-1, n_units)
@@ -157,17 +203,24 @@ def posterior_draws(spec: ShrinkageSpec, post, n_units: int, centred: np.ndarray
 
 # Prior sensitivity: the between-unit SD prior made half and twice as wide (HalfNormal scales).
 SENSITIVITY_SCALES = (0.5, 2.0)
-K_HAT_MAX = 0.7  # above this, importance weights are unreliable and the fit is redone (Vehtari et al. 2024, JMLR 25:72)
+# above this, importance weights are unreliable and the fit is redone (Vehtari et al. 2024, JMLR
+# 25:72)
+K_HAT_MAX = 0.7
 
 
 def with_tau_scale(spec: ShrinkageSpec, scale: float) -> ShrinkageSpec:
     """The same spec with tau ~ HalfNormal(scale)."""
-    return ShrinkageSpec(priors={**spec.priors, "tau": ("HalfNormal", {"sigma": scale})}, pooling=spec.pooling, likelihood=spec.likelihood,
-                         predictors=spec.predictors)
+    return ShrinkageSpec(
+        priors={**spec.priors, "tau": ("HalfNormal", {"sigma": scale})},
+        pooling=spec.pooling,
+        likelihood=spec.likelihood,
+        predictors=spec.predictors,
+    )
 
 
 def reweight_tau(tau: np.ndarray, scale: float, base: float = 1.0) -> tuple[np.ndarray, float]:
-    """Pareto-smoothed importance log-weights that turn tau ~ HalfNormal(base) draws into HalfNormal(scale) ones, and k-hat."""
+    """Pareto-smoothed importance log-weights that turn tau ~ HalfNormal(base) draws into
+    HalfNormal(scale) ones, and k-hat."""
     import arviz as az
 
     log_ratio = np.log(base / scale) - tau**2 / (2 * scale**2) + tau**2 / (2 * base**2)
@@ -180,6 +233,8 @@ def reweight_tau(tau: np.ndarray, scale: float, base: float = 1.0) -> tuple[np.n
 def fit_failed(measure: str, diagnostics: Diagnostics) -> FitError:
     reasons = "; ".join(diagnostics.failures())
     return FitError(
-        f"measure '{measure}': the shrinkage fit did not pass its checks ({reasons}){', also on the retry with safer settings' if diagnostics.retried else ''}. "
-        "Nothing was published. Try more warm-up draws ([sampler].tune) or a higher [sampler].target_accept, then run the cycle again."
+        f"measure '{measure}': the shrinkage fit did not pass its checks "
+        f"({reasons}){', also on the retry with safer settings' if diagnostics.retried else ''}. "
+        "Nothing was published. Try more warm-up draws ([sampler].tune) or a higher "
+        "[sampler].target_accept, then run the cycle again."
     )

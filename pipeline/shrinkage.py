@@ -42,11 +42,11 @@ expected count; the risk-standardised rate is that ratio times the benchmark rat
 from __future__ import annotations
 
 from dataclasses import dataclass, field
+from typing import Any
 
 import numpy as np
 import pandas as pd
 from scipy.special import expit
-
 
 # Built-in priors: a data table (name -> distribution, parameters), printed on the methods page.
 PRIORS: dict[str, tuple[str, dict[str, float]]] = {
@@ -60,18 +60,31 @@ PREDICTOR_PRIOR: tuple[str, dict[str, float]] = ("Normal", {"mu": 0.0, "sigma": 
 LIKELIHOODS: dict[str, tuple[str, dict[str, tuple[str, dict[str, float]]]]] = {
     "binomial": ("binary outcomes per patient, pooled into (unit, risk) cells", {}),
     "poisson": ("observed events per unit, with the supplied expected events as offset", {}),
-    "gamma": ("a positive outcome per patient, Gamma with log link", {"shape": ("HalfNormal", {"sigma": 5.0})}),
-    "lognormal": ("a positive outcome per patient, normal on the log scale", {"sigma": ("HalfNormal", {"sigma": 1.0})}),
-    "normal": ("one estimate per unit with a known standard error (r = estimate, n = 1 / se^2)", {}),
+    "gamma": (
+        "a positive outcome per patient, Gamma with log link",
+        {"shape": ("HalfNormal", {"sigma": 5.0})},
+    ),
+    "lognormal": (
+        "a positive outcome per patient, normal on the log scale",
+        {"sigma": ("HalfNormal", {"sigma": 1.0})},
+    ),
+    "normal": (
+        "one estimate per unit with a known standard error (r = estimate, n = 1 / se^2)",
+        {},
+    ),
 }
 
 # How much units borrow from each other: a data table of the built-in choices.
 POOLING = {
     "partial": "unit intercepts from a common Normal(mu, tau), non-centred: the published model",
-    "none": "independent unit intercepts with a Logistic(0, 1) prior, which is a uniform prior on each "
-    "unit's rate; nothing is borrowed between units (used to check the engine against exact results)",
-    "beta": "unit rates from a common Beta(alpha, beta) with p(alpha, beta) proportional to (alpha + beta)^(-5/2) "
-    "(Gelman et al., BDA3 section 5.3); binomial cells without case mix only (a published check of the engine)",
+    "none": "independent unit intercepts with a Logistic(0, 1) prior, which is a uniform prior "
+    "on each "
+    "unit's rate; nothing is borrowed between units (used to check the engine against exact "
+    "results)",
+    "beta": "unit rates from a common Beta(alpha, beta) with p(alpha, beta) proportional to "
+    "(alpha + beta)^(-5/2) "
+    "(Gelman et al., BDA3 section 5.3); binomial cells without case mix only (a published "
+    "check of the engine)",
 }
 
 
@@ -82,13 +95,16 @@ class ShrinkageSpec:
     priors: dict[str, tuple[str, dict[str, float]]] = field(default_factory=lambda: dict(PRIORS))
     pooling: str = "partial"
     likelihood: str = "binomial"
-    predictors: int = 0  # columns of unit-level predictors of the prior mean (targets.py); partial pooling only
+    # columns of unit-level predictors of the prior mean (targets.py); partial pooling only
+    predictors: int = 0
 
     def __post_init__(self) -> None:
         if self.pooling not in POOLING:
             raise ValueError(f"pooling must be one of {', '.join(POOLING)}; got {self.pooling!r}")
         if self.likelihood not in LIKELIHOODS:
-            raise ValueError(f"likelihood must be one of {', '.join(LIKELIHOODS)}; got {self.likelihood!r}")
+            raise ValueError(
+                f"likelihood must be one of {', '.join(LIKELIHOODS)}; got {self.likelihood!r}"
+            )
         for name, prior in LIKELIHOODS[self.likelihood][1].items():
             self.priors.setdefault(name, prior)
         if self.predictors:
@@ -100,11 +116,18 @@ class ShrinkageSpec:
     def sampled(self) -> list[str]:
         """Names of the sampled parameters (the ones diagnostics are computed on)."""
         own = list(LIKELIHOODS[self.likelihood][1])
-        return {"partial": ["mu", "tau", "v"], "none": ["a"], "beta": ["phi", "kappa"]}[self.pooling] + own + (["beta"] if self.predictors else [])
+        return (
+            {"partial": ["mu", "tau", "v"], "none": ["a"], "beta": ["phi", "kappa"]}[self.pooling]
+            + own
+            + (["beta"] if self.predictors else [])
+        )
 
     def describe(self) -> list[str]:
         """One line per prior, in the notation of the methods page."""
-        return [f"{name} ~ {dist}({', '.join(f'{k}={v:g}' for k, v in args.items())})" for name, (dist, args) in self.priors.items()]
+        return [
+            f"{name} ~ {dist}({', '.join(f'{k}={v:g}' for k, v in args.items())})"
+            for name, (dist, args) in self.priors.items()
+        ]
 
 
 @dataclass(frozen=True)
@@ -112,22 +135,30 @@ class Cells:
     """Patients pooled by (unit, linear risk): the exact sufficient statistics of the fit."""
 
     unit: np.ndarray  # unit code 0..n_units-1
-    offset: np.ndarray  # calibrated intercept + linear risk (binomial), log expected events (poisson), 0 otherwise
+    # calibrated intercept + linear risk (binomial), log expected events (poisson), 0 otherwise
+    offset: np.ndarray
     n: np.ndarray  # patients in the cell
-    r: np.ndarray  # events (binomial, poisson); gamma: sum y exp(-offset); lognormal: sum of log residuals
+    # events (binomial, poisson); gamma: sum y exp(-offset); lognormal: sum of log residuals
+    r: np.ndarray
     n_units: int
-    q: np.ndarray | None = None  # gamma: sum of (log y - offset); lognormal: sum of squared log residuals
-    w: np.ndarray | None = None  # (n_units, predictors): standardised unit-level predictors (targets.py), or None
+    # gamma: sum of (log y - offset); lognormal: sum of squared log residuals
+    q: np.ndarray | None = None
+    # (n_units, predictors): standardised unit-level predictors (targets.py), or None
+    w: np.ndarray | None = None
 
-    def with_predictors(self, w: np.ndarray | None) -> "Cells":
+    def with_predictors(self, w: np.ndarray | None) -> Cells:
         from dataclasses import replace
 
         return replace(self, w=None if w is None or w.shape[1] == 0 else np.asarray(w, float))
 
     @classmethod
-    def from_patients(cls, unit_codes: np.ndarray, offset: np.ndarray, y: np.ndarray, n_units: int) -> "Cells":
+    def from_patients(
+        cls, unit_codes: np.ndarray, offset: np.ndarray, y: np.ndarray, n_units: int
+    ) -> Cells:
         frame = pd.DataFrame({"unit": unit_codes, "offset": offset, "y": y})
-        grouped = frame.groupby(["unit", "offset"], sort=True)["y"].agg(["size", "sum"]).reset_index()
+        grouped = (
+            frame.groupby(["unit", "offset"], sort=True)["y"].agg(["size", "sum"]).reset_index()
+        )
         return cls(
             unit=grouped["unit"].to_numpy(np.int64),
             offset=grouped["offset"].to_numpy(float),
@@ -137,14 +168,28 @@ class Cells:
         )
 
     @classmethod
-    def from_units(cls, unit_codes: np.ndarray, observed: np.ndarray, expected: np.ndarray, n_units: int) -> "Cells":
+    def from_units(
+        cls, unit_codes: np.ndarray, observed: np.ndarray, expected: np.ndarray, n_units: int
+    ) -> Cells:
         """Unit-level input: one Poisson cell per unit with log(expected) as its offset."""
         order = np.argsort(unit_codes)
-        return cls(unit=np.asarray(unit_codes, np.int64)[order], offset=np.log(np.asarray(expected, float))[order],
-                   n=np.ones(len(order)), r=np.asarray(observed, float)[order], n_units=n_units)
+        return cls(
+            unit=np.asarray(unit_codes, np.int64)[order],
+            offset=np.log(np.asarray(expected, float))[order],
+            n=np.ones(len(order)),
+            r=np.asarray(observed, float)[order],
+            n_units=n_units,
+        )
 
     @classmethod
-    def from_continuous(cls, unit_codes: np.ndarray, offset: np.ndarray, y: np.ndarray, n_units: int, likelihood: str) -> "Cells":
+    def from_continuous(
+        cls,
+        unit_codes: np.ndarray,
+        offset: np.ndarray,
+        y: np.ndarray,
+        n_units: int,
+        likelihood: str,
+    ) -> Cells:
         """Per-unit sufficient statistics of a positive outcome (gamma or lognormal)."""
         frame = pd.DataFrame({"unit": unit_codes, "n": 1.0})
         if likelihood == "gamma":
@@ -153,8 +198,14 @@ class Cells:
             d = np.log(y) - offset
             frame["r"], frame["q"] = d, d * d
         sums = frame.groupby("unit", sort=True).sum()
-        return cls(unit=sums.index.to_numpy(np.int64), offset=np.zeros(len(sums)), n=sums["n"].to_numpy(float),
-                   r=sums["r"].to_numpy(float), n_units=n_units, q=sums["q"].to_numpy(float))
+        return cls(
+            unit=sums.index.to_numpy(np.int64),
+            offset=np.zeros(len(sums)),
+            n=sums["n"].to_numpy(float),
+            r=sums["r"].to_numpy(float),
+            n_units=n_units,
+            q=sums["q"].to_numpy(float),
+        )
 
     def data(self) -> dict[str, np.ndarray]:
         out = {"unit": self.unit, "offset": self.offset, "n": self.n, "r": self.r}
@@ -174,10 +225,11 @@ CENTRE_BELOW = 0.25
 
 
 def james_stein(y: np.ndarray, s2: float) -> tuple[np.ndarray, float]:
-    """Empirical-Bayes (James-Stein) estimates towards the grand mean for k means of common known variance s2.
+    """Empirical-Bayes (James-Stein) estimates towards the grand mean for k means of common known
+    variance s2.
 
-    Efron & Morris (1975, JASA 70:311): z_i = ybar + c (y_i - ybar), c = 1 - (k - 3) s2 / sum (y_i - ybar)^2.
-    Returns (estimates, c).
+    Efron & Morris (1975, JASA 70:311): z_i = ybar + c (y_i - ybar), c = 1 - (k - 3) s2 / sum (y_i -
+    ybar)^2. Returns (estimates, c).
     """
     y = np.asarray(y, dtype=float)
     ybar = y.mean()
@@ -186,7 +238,8 @@ def james_stein(y: np.ndarray, s2: float) -> tuple[np.ndarray, float]:
 
 
 def rough_tau(estimate: np.ndarray, se: np.ndarray) -> float:
-    """Method-of-moments between-unit SD (variance of the estimates minus their mean sampling variance), at least 0.05."""
+    """Method-of-moments between-unit SD (variance of the estimates minus their mean sampling
+    variance), at least 0.05."""
     keep = np.isfinite(estimate) & (se < 5)
     if keep.sum() < 3:
         return 0.05
@@ -194,7 +247,8 @@ def rough_tau(estimate: np.ndarray, se: np.ndarray) -> float:
 
 
 def unit_estimates(spec: ShrinkageSpec, cells: Cells, curves=None) -> tuple[np.ndarray, np.ndarray]:
-    """Rough estimate and standard error of each unit's intercept from its own data (chooses the parameterisation only)."""
+    """Rough estimate and standard error of each unit's intercept from its own data (chooses the
+    parameterisation only)."""
     k = cells.n_units
     if curves is not None:
         return curves.centre, curves.se
@@ -203,18 +257,23 @@ def unit_estimates(spec: ShrinkageSpec, cells: Cells, curves=None) -> tuple[np.n
     if spec.likelihood == "poisson":
         events = np.bincount(cells.unit, weights=cells.r, minlength=k)
         expected = np.bincount(cells.unit, weights=np.exp(cells.offset), minlength=k)
-        return np.where(n > 0, np.log((events + 0.5) / np.maximum(expected, 1e-9)), np.nan), 1 / np.sqrt(np.maximum(events, 1.0))
+        return np.where(
+            n > 0, np.log((events + 0.5) / np.maximum(expected, 1e-9)), np.nan
+        ), 1 / np.sqrt(np.maximum(events, 1.0))
     s1 = np.bincount(cells.unit, weights=cells.r, minlength=k)
     if spec.likelihood == "normal":
         return np.where(n > 0, s1, np.nan), 1 / np.sqrt(np.maximum(n, 1e-12))
     if spec.likelihood == "binomial":
         p = (s1 + 0.5) / (n + 1)
-        return np.where(n > 0, np.log(p / (1 - p)), np.nan), 1 / np.sqrt(np.maximum(n * p * (1 - p), 1e-12))
+        return np.where(n > 0, np.log(p / (1 - p)), np.nan), 1 / np.sqrt(
+            np.maximum(n * p * (1 - p), 1e-12)
+        )
     if spec.likelihood == "lognormal" and cells.q is not None:
         s2 = np.bincount(cells.unit, weights=cells.q, minlength=k)
         var = np.where(n > 1, (s2 - s1**2 / safe) / np.maximum(n - 1, 1), 1.0)
         return np.where(n > 0, s1 / safe, np.nan), np.sqrt(var / safe)
-    return np.where(n > 0, np.log(np.maximum(s1, 1e-300) / safe), np.nan), 1 / np.sqrt(safe)  # gamma: shape about 1 (enough here)
+    # gamma: shape about 1 (enough here)
+    return np.where(n > 0, np.log(np.maximum(s1, 1e-300) / safe), np.nan), 1 / np.sqrt(safe)
 
 
 CURVE_DEGREE = 32  # curves.DEGREE, repeated here so that choosing does not import numba
@@ -230,7 +289,8 @@ def model_data(spec: ShrinkageSpec, cells: Cells) -> tuple[dict[str, np.ndarray]
     if spec.pooling == "beta":
         return {"n": cells.n, "r": cells.r}, None
     if spec.likelihood == "binomial" and len(cells.n) > cells.n_units * (CURVE_DEGREE + 1):
-        from .curves import build_curves  # cheaper than the cells, and within 1e-6 of them (curves.py)
+        # cheaper than the cells, and within 1e-6 of them (curves.py)
+        from .curves import build_curves
 
         curves = build_curves(cells.unit, cells.offset, cells.n, cells.r, cells.n_units)
         data = curves.data()
@@ -245,7 +305,8 @@ def model_data(spec: ShrinkageSpec, cells: Cells) -> tuple[dict[str, np.ndarray]
 
 
 def build_model(spec: ShrinkageSpec, cells: Cells, data: dict[str, np.ndarray] | None = None):
-    """Build the PyMC model of ``spec`` with ``cells`` (or their ``model_data``) as swappable data."""
+    """Build the PyMC model of ``spec`` with ``cells`` (or their ``model_data``) as swappable
+    data."""
     import pymc as pm
     import pytensor.tensor as pt
 
@@ -256,21 +317,46 @@ def build_model(spec: ShrinkageSpec, cells: Cells, data: dict[str, np.ndarray] |
     arrays = data if data is not None else model_data(spec, cells)[0]
     with pm.Model() as model:
         data = {k: pm.Data(k, v) for k, v in arrays.items()}
-        if spec.pooling == "beta":  # rates integrated out: the beta-binomial likelihood of each cell
-            phi, kappa = pm.Flat("phi"), pm.Flat("kappa")  # phi = log(alpha / beta), kappa = log(alpha + beta)
-            alpha, beta = pm.Deterministic("alpha", pt.exp(kappa) * pt.sigmoid(phi)), pm.Deterministic("beta", pt.exp(kappa) * pt.sigmoid(-phi))
-            pm.Potential("prior", pt.log(alpha) + pt.log(beta) - 2.5 * pt.log(alpha + beta))  # BDA3 eq. 5.10 with the Jacobian
+        # rates integrated out: the beta-binomial likelihood of each cell
+        if spec.pooling == "beta":
+            # phi = log(alpha / beta), kappa = log(alpha + beta)
+            phi, kappa = pm.Flat("phi"), pm.Flat("kappa")
+            alpha, beta = (
+                pm.Deterministic("alpha", pt.exp(kappa) * pt.sigmoid(phi)),
+                pm.Deterministic("beta", pt.exp(kappa) * pt.sigmoid(-phi)),
+            )
+            # BDA3 eq. 5.10 with the Jacobian
+            pm.Potential("prior", pt.log(alpha) + pt.log(beta) - 2.5 * pt.log(alpha + beta))
             r, n = data["r"], data["n"]
-            pm.Potential("loglik", pt.sum(pt.gammaln(alpha + r) + pt.gammaln(beta + n - r) - pt.gammaln(alpha + beta + n)
-                                          + pt.gammaln(alpha + beta) - pt.gammaln(alpha) - pt.gammaln(beta)))
+            pm.Potential(
+                "loglik",
+                pt.sum(
+                    pt.gammaln(alpha + r)
+                    + pt.gammaln(beta + n - r)
+                    - pt.gammaln(alpha + beta + n)
+                    + pt.gammaln(alpha + beta)
+                    - pt.gammaln(alpha)
+                    - pt.gammaln(beta)
+                ),
+            )
             return model
         if spec.pooling == "partial":
             mu = prior("mu")
             tau = prior("tau")
             v = pm.Flat("v", shape=cells.n_units)
             c = data["centred"]
-            target = mu + pt.dot(data["w"], prior("beta", shape=spec.predictors)) if spec.predictors else mu
-            pm.Potential("units", pt.sum(c * pm.logp(pm.Normal.dist(target, tau), v) + (1 - c) * pm.logp(pm.Normal.dist(0.0, 1.0), v)))
+            target = (
+                mu + pt.dot(data["w"], prior("beta", shape=spec.predictors))
+                if spec.predictors
+                else mu
+            )
+            pm.Potential(
+                "units",
+                pt.sum(
+                    c * pm.logp(pm.Normal.dist(target, tau), v)
+                    + (1 - c) * pm.logp(pm.Normal.dist(0.0, 1.0), v)
+                ),
+            )
             a = c * v + (1 - c) * (target + tau * v)
         else:
             a = pm.Logistic("a", 0.0, 1.0, shape=cells.n_units)
@@ -293,9 +379,12 @@ def _loglik(spec: ShrinkageSpec, prior, data: dict, eta):
         return r * eta - n * pt.softplus(eta)
     if spec.likelihood == "poisson":  # r*eta - exp(eta), eta = log E + mu + u
         return r * eta - n * pt.exp(eta)
-    if spec.likelihood == "gamma":  # sum over patients of the Gamma(k, k/m) log density, m = exp(offset + eta)
+    # sum over patients of the Gamma(k, k/m) log density, m = exp(offset + eta)
+    if spec.likelihood == "gamma":
         k = prior("shape")
-        return n * (k * pt.log(k) - pt.gammaln(k)) + k * data["q"] - k * n * eta - k * r * pt.exp(-eta)
+        return (
+            n * (k * pt.log(k) - pt.gammaln(k)) + k * data["q"] - k * n * eta - k * r * pt.exp(-eta)
+        )
     if spec.likelihood == "normal":  # r = estimate, n = precision: Normal(r | eta, 1 / sqrt(n))
         return -0.5 * n * (r - eta) ** 2
     sigma = prior("sigma")  # lognormal: residuals d ~ Normal(eta, sigma)
@@ -304,12 +393,15 @@ def _loglik(spec: ShrinkageSpec, prior, data: dict, eta):
 
 @dataclass(frozen=True)
 class UnitDraws:
-    """Posterior draws per unit: the ratio P/E to the benchmark (benchmark.py) and the unit effect u."""
+    """Posterior draws per unit: the ratio P/E to the benchmark (benchmark.py) and the unit effect
+    u."""
 
     ratio: np.ndarray  # (draws, units) P_i / E_i, E_i the published expected total at the benchmark
     effect: np.ndarray  # (draws, units) u_i on the link scale (departure from the typical unit)
-    se: np.ndarray | None = None  # (units,) standard error of each unit's intercept from its own data alone
-    typical: np.ndarray | None = None  # (draws,) the typical unit's ratio (intercept mu): what small units are pulled towards
+    # (units,) standard error of each unit's intercept from its own data alone
+    se: np.ndarray | None = None
+    # (draws,) the typical unit's ratio (intercept mu): what small units are pulled towards
+    typical: np.ndarray | None = None
 
 
 def thin(n: int, keep: int) -> np.ndarray:
@@ -317,11 +409,16 @@ def thin(n: int, keep: int) -> np.ndarray:
     return np.linspace(0, n - 1, min(n, keep)).round().astype(int)
 
 
-def unit_draws(cells: Cells, draws: dict[str, np.ndarray], max_draws: int = 4000, likelihood: str = "binomial",
-               scale: float = 1.0) -> UnitDraws:
-    """Predicted over expected per unit, draw by draw: P_i(mu + u_i) / P_i(0), where P_i(a) is the unit's
-    predicted total with its intercept moved by a from the benchmark's (offsets hold the benchmark's
-    intercept, so P_i(0) is the published expected total E_i).
+def unit_draws(
+    cells: Cells,
+    draws: dict[str, Any],
+    max_draws: int = 4000,
+    likelihood: str = "binomial",
+    scale: float = 1.0,
+) -> UnitDraws:
+    """Predicted over expected per unit, draw by draw: P_i(mu + u_i) / P_i(0), where P_i(a) is the
+    unit's predicted total with its intercept moved by a from the benchmark's (offsets hold the
+    benchmark's intercept, so P_i(0) is the published expected total E_i).
 
     Log links: exp(mu + u_i) times ``scale`` (log-normal: the within-unit over the network smearing
     factor, so that P_i and E_i are on the same scale). The typical unit's ratio uses mu alone,
@@ -346,7 +443,9 @@ def unit_draws(cells: Cells, draws: dict[str, np.ndarray], max_draws: int = 4000
         present = np.setdiff1d(np.arange(cells.n_units), missing)
         log_expected = curves.log_predicted(np.zeros(cells.n_units))
         ratio = np.exp(curves.log_predicted(a) - log_expected)
-        at_mu = np.exp(curves.log_predicted(np.repeat(mu[:, None], cells.n_units, axis=1))[:, present])
+        at_mu = np.exp(
+            curves.log_predicted(np.repeat(mu[:, None], cells.n_units, axis=1))[:, present]
+        )
         typical = at_mu.sum(axis=1) / np.exp(log_expected[present]).sum()
         ratio[:, missing] = np.nan
         return UnitDraws(ratio=ratio, effect=u, se=se, typical=typical)
@@ -359,5 +458,7 @@ def unit_draws(cells: Cells, draws: dict[str, np.ndarray], max_draws: int = 4000
             continue
         off, n = cells.offset[idx], cells.n[idx]
         ratio[:, i] = (expit(a[:, i, None] + off[None, :]) @ n) / (expit(off) @ n)
-    typical = (expit(mu[:, None] + cells.offset[None, :]) @ cells.n) / (expit(cells.offset) @ cells.n)
+    typical = (expit(mu[:, None] + cells.offset[None, :]) @ cells.n) / (
+        expit(cells.offset) @ cells.n
+    )
     return UnitDraws(ratio=ratio, effect=u, se=se, typical=typical)

@@ -31,24 +31,37 @@ import pandas as pd
 # Built-in predictors: name -> what it is (printed in DEVELOPERS.md and on the methods page).
 PREDICTORS = {
     "log_cases": "the log of the unit's number of cases for the measure",
-    "case_mix": "the unit's average case-mix risk (the mean of its patients' risk scores from the case-mix fit)",
-    "kind": "the unit's kind from the units table (one term for each kind other than the most common)",
+    "case_mix": "the unit's average case-mix risk (the mean of its patients' risk scores from "
+    "the case-mix fit)",
+    "kind": "the unit's kind from the units table (one term for each kind other than the most "
+    "common)",
 }
-UNITS_PER_PREDICTOR = 10  # at least this many units with data per predictor column (common practice, no source)
+# at least this many units with data per predictor column (common practice, no source)
+UNITS_PER_PREDICTOR = 10
 
 
 @dataclass(frozen=True)
 class TargetDesign:
-    """The standardised predictor matrix of one measure's units, with what is needed to explain it."""
+    """The standardised predictor matrix of one measure's units, with what is needed to explain
+    it."""
 
     columns: tuple[str, ...]  # one label per column ("log_cases", "kind: clinic", ...)
-    w: np.ndarray  # (units, columns), centred and scaled over units with data; 0 for units without data
+    # (units, columns), centred and scaled over units with data; 0 for units without data
+    w: np.ndarray
     centre: np.ndarray  # (columns,) means before scaling
     spread: np.ndarray  # (columns,) standard deviations before scaling
 
 
-def check(names: tuple[str, ...], measure_key: str, attributes: pd.DataFrame, kinds: pd.Series, present: pd.Index,
-          has_patients: bool, has_risk: bool, cases: pd.Series | None = None) -> list[str]:
+def check(
+    names: tuple[str, ...],
+    measure_key: str,
+    attributes: pd.DataFrame,
+    kinds: pd.Series,
+    present: pd.Index,
+    has_patients: bool,
+    has_risk: bool,
+    cases: pd.Series | None = None,
+) -> list[str]:
     """Problems with a measure's ``pull_towards`` list, before anything is fitted (empty: none).
 
     ``attributes``: numeric-or-not extra columns of the units table (index unit id); ``kinds``:
@@ -65,36 +78,60 @@ def check(names: tuple[str, ...], measure_key: str, attributes: pd.DataFrame, ki
         seen.add(name)
         if name == "log_cases":
             if cases is not None and cases.loc[present].nunique() < 2:
-                problems.append("'log_cases' is the same for every unit (every unit has the same number of cases)")
+                problems.append(
+                    "'log_cases' is the same for every unit (every unit has the same number of "
+                    "cases)"
+                )
             n_columns += 1
         elif name == "case_mix":
             if not has_patients:
-                problems.append("'case_mix' needs patient rows; this measure is read from unit-level totals")
+                problems.append(
+                    "'case_mix' needs patient rows; this measure is read from unit-level totals"
+                )
             elif not has_risk:
-                problems.append("'case_mix' needs risk factors; this measure's casemix is \"1\" (no adjustment)")
+                problems.append(
+                    "'case_mix' needs risk factors; this measure's casemix is \"1\" (no adjustment)"
+                )
             n_columns += 1
         elif name == "kind":
             levels = kinds.loc[present].nunique()
             if levels < 2:
-                problems.append("'kind' is the same for every unit with data, so it cannot tell units apart")
+                problems.append(
+                    "'kind' is the same for every unit with data, so it cannot tell units apart"
+                )
             n_columns += max(levels - 1, 0)
         elif name not in attributes.columns:
             allowed = ", ".join([*PREDICTORS, *[c for c in attributes.columns]])
-            problems.append(f"'{name}' is neither a built-in predictor nor a column of the units table; allowed: {allowed}")
+            problems.append(
+                f"'{name}' is neither a built-in predictor nor a column of the units table; "
+                f"allowed: {allowed}"
+            )
         else:
             column = pd.to_numeric(attributes[name].loc[present], errors="coerce")
             bad = column.isna() & attributes[name].loc[present].notna()
             if bad.any():
-                problems.append(f"units table column '{name}' must hold numbers; found {attributes[name].loc[present][bad].iloc[0]!r} "
-                                f"for unit(s) {_ids(bad[bad].index)}")
+                problems.append(
+                    f"units table column '{name}' must hold numbers; found "
+                    f"{attributes[name].loc[present][bad].iloc[0]!r} "
+                    f"for unit(s) {_ids(bad[bad].index)}"
+                )
             elif column.isna().any():
-                problems.append(f"units table column '{name}' is empty for unit(s) {_ids(column.index[column.isna()])}; every unit with data needs a value")
+                problems.append(
+                    f"units table column '{name}' is empty for unit(s) "
+                    f"{_ids(column.index[column.isna()])}; every unit with data needs a value"
+                )
             elif column.nunique() < 2:
-                problems.append(f"units table column '{name}' is the same for every unit with data, so it cannot tell units apart")
+                problems.append(
+                    f"units table column '{name}' is the same for every unit with data, so it "
+                    "cannot tell units apart"
+                )
             n_columns += 1
     if n_columns and len(present) < UNITS_PER_PREDICTOR * n_columns:
-        problems.append(f"{n_columns} predictor term(s) need at least {UNITS_PER_PREDICTOR * n_columns} units with data "
-                        f"({UNITS_PER_PREDICTOR} per term); this measure has {len(present)}")
+        problems.append(
+            f"{n_columns} predictor term(s) need at least {UNITS_PER_PREDICTOR * n_columns} "
+            "units with data "
+            f"({UNITS_PER_PREDICTOR} per term); this measure has {len(present)}"
+        )
     return [f"{p} (measure '{measure_key}')." for p in problems]
 
 
@@ -103,9 +140,17 @@ def _ids(index) -> str:
     return ", ".join(ids[:5]) + (f" and {len(ids) - 5} more" if len(ids) > 5 else "")
 
 
-def design(names: tuple[str, ...], unit_ids: list[str], present: np.ndarray, cases: np.ndarray, mean_risk: np.ndarray | None,
-           kinds: pd.Series, attributes: pd.DataFrame) -> TargetDesign:
-    """The predictor matrix for units ``unit_ids`` (``present``: which have data for this measure)."""
+def design(
+    names: tuple[str, ...],
+    unit_ids: list[str],
+    present: np.ndarray,
+    cases: np.ndarray,
+    mean_risk: np.ndarray | None,
+    kinds: pd.Series,
+    attributes: pd.DataFrame,
+) -> TargetDesign:
+    """The predictor matrix for units ``unit_ids`` (``present``: which have data for this
+    measure)."""
     raw, labels = [], []
     for name in names:
         if name == "log_cases":
@@ -122,7 +167,9 @@ def design(names: tuple[str, ...], unit_ids: list[str], present: np.ndarray, cas
                 raw.append((k == level).to_numpy(float))
                 labels.append(f"kind: {level}")
         else:
-            raw.append(pd.to_numeric(attributes[name].reindex(unit_ids), errors="coerce").to_numpy(float))
+            raw.append(
+                pd.to_numeric(attributes[name].reindex(unit_ids), errors="coerce").to_numpy(float)
+            )
             labels.append(name)
     if not raw:
         return TargetDesign((), np.zeros((len(unit_ids), 0)), np.zeros(0), np.zeros(0))

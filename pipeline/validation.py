@@ -40,7 +40,8 @@ def delong(outcome: np.ndarray, score: np.ndarray) -> tuple[float, float]:
     if n1 < 2 or n0 < 2:
         return float("nan"), float("nan")
     all_ranks = rankdata(np.r_[pos, neg])
-    v10 = (all_ranks[:n1] - rankdata(pos)) / n0  # share of non-events each event outranks (ties 1/2)
+    # share of non-events each event outranks (ties 1/2)
+    v10 = (all_ranks[:n1] - rankdata(pos)) / n0
     v01 = 1.0 - (all_ranks[n1:] - rankdata(neg)) / n1  # share of events that outrank each non-event
     area = float(v10.mean())
     return area, float(np.sqrt(v10.var(ddof=1) / n1 + v01.var(ddof=1) / n0))
@@ -59,7 +60,8 @@ def roc_points(outcome: np.ndarray, score: np.ndarray, most: int = 200) -> pd.Da
 
 
 def risk_groups(predicted: np.ndarray, groups: int) -> np.ndarray:
-    """Group 0..g-1 by quantiles of predicted risk; a value equal to a cut point goes to the lower group.
+    """Group 0..g-1 by quantiles of predicted risk; a value equal to a cut point goes to the lower
+    group.
 
     Cut points are ``np.quantile(p, k/g, method="inverted_cdf")``, as for the Hosmer-Lemeshow
     deciles-of-risk test.
@@ -71,8 +73,10 @@ def risk_groups(predicted: np.ndarray, groups: int) -> np.ndarray:
 def group_table(outcome: np.ndarray, predicted: np.ndarray, groups: int) -> pd.DataFrame:
     """Per risk group: patients, observed and expected totals and means, predicted/observed."""
     g = risk_groups(predicted, groups)
-    frame = pd.DataFrame({"group": g + 1, "y": outcome, "p": predicted}).groupby("group").agg(
-        patients=("y", "size"), observed=("y", "sum"), expected=("p", "sum")
+    frame = (
+        pd.DataFrame({"group": g + 1, "y": outcome, "p": predicted})
+        .groupby("group")
+        .agg(patients=("y", "size"), observed=("y", "sum"), expected=("p", "sum"))
     )
     frame["observed_mean"] = frame["observed"] / frame["patients"]
     frame["expected_mean"] = frame["expected"] / frame["patients"]
@@ -80,8 +84,11 @@ def group_table(outcome: np.ndarray, predicted: np.ndarray, groups: int) -> pd.D
     return frame.reset_index()
 
 
-def hosmer_lemeshow(outcome: np.ndarray, predicted: np.ndarray, groups: int = 10) -> tuple[float, int, float]:
-    """Hosmer-Lemeshow C statistic over deciles of risk: (statistic, degrees of freedom, p-value)."""
+def hosmer_lemeshow(
+    outcome: np.ndarray, predicted: np.ndarray, groups: int = 10
+) -> tuple[float, int, float]:
+    """Hosmer-Lemeshow C statistic over deciles of risk: (statistic, degrees of freedom,
+    p-value)."""
     t = group_table(outcome, predicted, groups)
     e, o, n = t["expected"].to_numpy(), t["observed"].to_numpy(), t["patients"].to_numpy()
     statistic = float(np.sum((o - e) ** 2 / (e * (1 - e / n))))
@@ -94,8 +101,16 @@ def calibration(outcome: np.ndarray, predicted: np.ndarray) -> tuple[float, floa
     lp = logit(np.clip(predicted, 1e-12, 1 - 1e-12))
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
-        large = sm.GLM(outcome, np.ones((len(lp), 1)), family=sm.families.Binomial(), offset=lp).fit().params[0]
-        slope = sm.GLM(outcome, np.column_stack([np.ones(len(lp)), lp]), family=sm.families.Binomial()).fit().params[1]
+        large = (
+            sm.GLM(outcome, np.ones((len(lp), 1)), family=sm.families.Binomial(), offset=lp)
+            .fit()
+            .params[0]
+        )
+        slope = (
+            sm.GLM(outcome, np.column_stack([np.ones(len(lp)), lp]), family=sm.families.Binomial())
+            .fit()
+            .params[1]
+        )
     return float(large), float(slope)
 
 
@@ -129,20 +144,33 @@ LABELS = {
 }
 
 
-def binary_metrics(outcome: np.ndarray, predicted: np.ndarray, groups: int, threshold: float) -> Metrics:
+def binary_metrics(
+    outcome: np.ndarray, predicted: np.ndarray, groups: int, threshold: float
+) -> Metrics:
     area, se = delong(outcome, predicted)
     large, slope = calibration(outcome, predicted)
     hl, df, p = hosmer_lemeshow(outcome, predicted, groups)
     flagged, y = predicted > threshold, outcome.astype(bool)
     values = {
-        "c_statistic": area, "c_lower": max(0.0, area - Z95 * se), "c_upper": min(1.0, area + Z95 * se),
-        "calibration_large": large, "calibration_slope": slope, "brier": float(np.mean((outcome - predicted) ** 2)),
-        "hl_statistic": hl, "hl_df": float(df), "hl_p": p,
+        "c_statistic": area,
+        "c_lower": max(0.0, area - Z95 * se),
+        "c_upper": min(1.0, area + Z95 * se),
+        "calibration_large": large,
+        "calibration_slope": slope,
+        "brier": float(np.mean((outcome - predicted) ** 2)),
+        "hl_statistic": hl,
+        "hl_df": float(df),
+        "hl_p": p,
         "sensitivity": float((flagged & y).sum() / max(y.sum(), 1)),
         "specificity": float((~flagged & ~y).sum() / max((~y).sum(), 1)),
         "ppv": float((flagged & y).sum() / flagged.sum()) if flagged.any() else float("nan"),
     }
-    return Metrics(len(outcome), values, group_table(outcome, predicted, groups), roc_points(outcome, predicted))
+    return Metrics(
+        len(outcome),
+        values,
+        group_table(outcome, predicted, groups),
+        roc_points(outcome, predicted),
+    )
 
 
 def continuous_metrics(outcome: np.ndarray, predicted: np.ndarray, groups: int) -> Metrics:
@@ -150,7 +178,8 @@ def continuous_metrics(outcome: np.ndarray, predicted: np.ndarray, groups: int) 
     mae = float(np.mean(np.abs(residual)))
     values = {
         "r_squared": float(1 - np.sum(residual**2) / np.sum((outcome - outcome.mean()) ** 2)),
-        "mae": mae, "mae_percent": 100 * mae / float(outcome.mean()),
+        "mae": mae,
+        "mae_percent": 100 * mae / float(outcome.mean()),
     }
     return Metrics(len(outcome), values, group_table(outcome, predicted, groups), None)
 
@@ -170,8 +199,11 @@ def fold_of(n: int, folds: int, seed: int) -> np.ndarray:
     return np.random.default_rng(seed).permutation(np.arange(n) % folds)
 
 
-def cross_validated(fit: CaseMixFit, y: np.ndarray, x: np.ndarray, codes: np.ndarray, folds: int, seed: int) -> np.ndarray:
-    """Held-out expected value for every patient: coefficients and intercept from the other folds."""
+def cross_validated(
+    fit: CaseMixFit, y: np.ndarray, x: np.ndarray, codes: np.ndarray, folds: int, seed: int
+) -> np.ndarray:
+    """Held-out expected value for every patient: coefficients and intercept from the other
+    folds."""
     fold = fold_of(len(y), folds, seed)
     held_out = np.empty(len(y))
     for k in range(folds):
@@ -183,10 +215,18 @@ def cross_validated(fit: CaseMixFit, y: np.ndarray, x: np.ndarray, codes: np.nda
 
 
 def validate(
-    fit: CaseMixFit, binary: bool, y: np.ndarray, x: np.ndarray | None, codes: np.ndarray, folds: int, groups: int,
-    threshold: float, seed: int,
+    fit: CaseMixFit,
+    binary: bool,
+    y: np.ndarray,
+    x: np.ndarray | None,
+    codes: np.ndarray,
+    folds: int,
+    groups: int,
+    threshold: float,
+    seed: int,
 ) -> Validation:
-    """In-sample and (for fitted models) cross-validated metrics of one case-mix fit (``codes``: unit of each row used)."""
+    """In-sample and (for fitted models) cross-validated metrics of one case-mix fit (``codes``:
+    unit of each row used)."""
     score = binary_metrics if binary else continuous_metrics
     args = (groups, threshold) if binary else (groups,)
     in_sample = score(y, fit.expected, *args)

@@ -43,8 +43,13 @@ class Provenance:
     rows_sha256: str
 
     def as_dict(self) -> dict:
-        return {"server_version": self.server_version, "database": self.database, "query_sha256": self.query_sha256,
-                "rows": self.rows, "rows_sha256": self.rows_sha256}
+        return {
+            "server_version": self.server_version,
+            "database": self.database,
+            "query_sha256": self.query_sha256,
+            "rows": self.rows,
+            "rows_sha256": self.rows_sha256,
+        }
 
 
 def query_text(source: str) -> str:
@@ -60,10 +65,15 @@ def rows_sha256(frame: pd.DataFrame) -> str:
     """SHA-256 over the column names, their types and the rows, the same in any row order."""
     digest = hashlib.sha256()
     digest.update(repr([(str(c), str(t)) for c, t in frame.dtypes.items()]).encode())
-    row_hashes = pd.util.hash_pandas_object(frame, index=False, categorize=False).to_numpy(np.uint64)
+    row_hashes = pd.util.hash_pandas_object(frame, index=False, categorize=False).to_numpy(
+        np.uint64
+    )
     digest.update(str(len(frame)).encode())
-    digest.update(int(row_hashes.sum(dtype=np.uint64)).to_bytes(8, "little"))  # sum mod 2^64: order-free
-    digest.update(int(np.bitwise_xor.reduce(row_hashes) if len(row_hashes) else 0).to_bytes(8, "little"))
+    # sum mod 2^64: order-free
+    digest.update(int(row_hashes.sum(dtype=np.uint64)).to_bytes(8, "little"))
+    digest.update(
+        int(np.bitwise_xor.reduce(row_hashes) if len(row_hashes) else 0).to_bytes(8, "little")
+    )
     return digest.hexdigest()
 
 
@@ -74,18 +84,33 @@ def _with_timeout(conninfo: str) -> str:
 
 
 def _clean(message: str, conninfo: str) -> str:
-    """The server's or driver's message without the driver's prefixes and never the connection string."""
+    """The server's or driver's message without the driver's prefixes and never the connection
+    string."""
     text = message.replace(conninfo, "<connection>")
     text = re.sub(r"^[A-Z_]+: (\[libpq\] )?", "", text)
     text = re.sub(r"\s*\. SQLSTATE: \w+$", "", text.strip())
     text = re.sub(r"\n\nQuery was: .*\Z", "", text, flags=re.S)
-    text = re.sub(r"^(Failed to connect: |Failed to (prepare|execute) query( '.*?')?: |Execution error \[\w+\]: )", "", text, flags=re.S)
-    lines = [line.strip() for line in text.splitlines() if line.strip() and set(line.strip()) != {"^"}]  # no caret-only lines
+    text = re.sub(
+        r"^(Failed to connect: |Failed to (prepare|execute) query( '.*?')?: |Execution error "
+        r"\[\w+\]: )",
+        "",
+        text,
+        flags=re.S,
+    )
+    # no caret-only lines
+    lines = [
+        line.strip() for line in text.splitlines() if line.strip() and set(line.strip()) != {"^"}
+    ]
     return re.sub(r"^ERROR:\s+", "", " ".join(lines))
 
 
-def read_query(conninfo: str, source: str, where: str, timeout_seconds: float,
-               text_columns: tuple[str, ...] = ()) -> tuple[pd.DataFrame, Provenance]:
+def read_query(
+    conninfo: str,
+    source: str,
+    where: str,
+    timeout_seconds: float,
+    text_columns: tuple[str, ...] = (),
+) -> tuple[pd.DataFrame, Provenance]:
     """Rows of ``source`` (a query or a table name) as a DataFrame, and where they came from.
 
     ``where`` names the source in errors ("database cohort (inputs.cohort_query)");
@@ -94,13 +119,30 @@ def read_query(conninfo: str, source: str, where: str, timeout_seconds: float,
     try:
         import adbc_driver_postgresql.dbapi as pg
     except ImportError:  # pragma: no cover - depends on the installation
-        raise InputError([Problem(where, "reading from a database needs the database extra: pip install 'fairgauge[database]'.")]) from None
+        raise InputError(
+            [
+                Problem(
+                    where,
+                    "reading from a database needs the database extra: pip install "
+                    "'fairgauge[database]'.",
+                )
+            ]
+        ) from None
     sql = query_text(source)
     try:
         connection = pg.connect(_with_timeout(conninfo), autocommit=True)
     except Exception as exc:  # the driver raises several types; all mean "could not connect"
-        raise InputError([Problem(where, f"cannot connect to the database: {_clean(str(exc), conninfo)}. Check the connection "
-                                  "string, that the server is running, and the password in PGPASSWORD, ~/.pgpass or the service file.")]) from None
+        raise InputError(
+            [
+                Problem(
+                    where,
+                    f"cannot connect to the database: {_clean(str(exc), conninfo)}. Check the "
+                    "connection "
+                    "string, that the server is running, and the password in PGPASSWORD, "
+                    "~/.pgpass or the service file.",
+                )
+            ]
+        ) from None
     try:
         cursor = connection.cursor()
         cursor.execute("SET SESSION CHARACTERISTICS AS TRANSACTION READ ONLY")
@@ -109,23 +151,41 @@ def read_query(conninfo: str, source: str, where: str, timeout_seconds: float,
         server_version, database = cursor.fetchone()
         try:
             cursor.execute(sql)
-            table = cursor.fetch_arrow_table()  # record batches from the binary COPY, in Arrow buffers
+            # record batches from the binary COPY, in Arrow buffers
+            table = cursor.fetch_arrow_table()
         except Exception as exc:
-            raise InputError([Problem(where, _query_problem(str(exc), conninfo, timeout_seconds))]) from None
+            raise InputError(
+                [Problem(where, _query_problem(str(exc), conninfo, timeout_seconds))]
+            ) from None
     finally:
         connection.close()
     frame = _to_pandas(table, text_columns)
     if frame.empty:
-        raise InputError([Problem(where, "the query returned no rows. Check its WHERE clause and the reporting period.")])
-    provenance = Provenance(str(server_version), str(database), hashlib.sha256(sql.encode()).hexdigest(), len(frame), rows_sha256(frame))
+        raise InputError(
+            [
+                Problem(
+                    where,
+                    "the query returned no rows. Check its WHERE clause and the reporting period.",
+                )
+            ]
+        )
+    provenance = Provenance(
+        str(server_version),
+        str(database),
+        hashlib.sha256(sql.encode()).hexdigest(),
+        len(frame),
+        rows_sha256(frame),
+    )
     return frame, provenance
 
 
 def _to_pandas(table, text_columns: tuple[str, ...]) -> pd.DataFrame:
-    """Arrow to pandas, freeing each Arrow buffer as soon as it is converted (lower peak memory); ids as text."""
+    """Arrow to pandas, freeing each Arrow buffer as soon as it is converted (lower peak memory);
+    ids as text."""
     frame = table.to_pandas(self_destruct=True, split_blocks=True)
     for c in text_columns:
-        if c in frame.columns and not pd.api.types.is_string_dtype(frame[c]):  # Arrow text is already text
+        # Arrow text is already text
+        if c in frame.columns and not pd.api.types.is_string_dtype(frame[c]):
             frame[c] = frame[c].astype("string")
     return frame
 
@@ -133,8 +193,11 @@ def _to_pandas(table, text_columns: tuple[str, ...]) -> pd.DataFrame:
 def _query_problem(message: str, conninfo: str, timeout_seconds: float) -> str:
     text = _clean(message, conninfo)
     if "statement timeout" in text:
-        return (f"the query ran longer than the statement timeout of {timeout_seconds:g} s and was cancelled. Make it cheaper, "
-                "or raise [inputs].statement_timeout.")
+        return (
+            f"the query ran longer than the statement timeout of {timeout_seconds:g} s and was "
+            "cancelled. Make it cheaper, "
+            "or raise [inputs].statement_timeout."
+        )
     if "read-only transaction" in text:
         return f"the query tries to change the database, and fairgauge only reads: {text}."
     if "multiple commands" in text:

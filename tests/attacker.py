@@ -1,9 +1,11 @@
-"""An attacker for the small-count rule: reads everything a built site publishes and tries to work hidden counts back.
+"""An attacker for the small-count rule: reads everything a built site publishes and tries to work
+hidden counts back.
 
-It knows nothing of ``pipeline`` (it reads only files, with the standard library, pandas and NumPy), so a
-mistake in the pipeline's own bookkeeping cannot hide a leak from it. What it is given, as a reader would
-be: the published rule (threshold and publication minimum, printed on the methods page). What it is given
-that no reader has: the true counts, only to say whether a value it worked out is right.
+It knows nothing of ``pipeline`` (it reads only files, with the standard library, pandas and NumPy),
+so a mistake in the pipeline's own bookkeeping cannot hide a leak from it. What it is given, as a
+reader would be: the published rule (threshold and publication minimum, printed on the methods
+page). What it is given that no reader has: the true counts, only to say whether a value it worked
+out is right.
 
 Hidden values it attacks, per cycle, measure and unit:
 
@@ -13,24 +15,33 @@ Hidden values it attacks, per cycle, measure and unit:
 
 Routes (each tried on every hidden value it applies to; ``Report.tries`` counts them):
 
-``field``        the value itself in a download (csv, json, a cycle's history table);
-``rate``         raw rate x cases: every whole number k with k / cases rounding to the published rate;
-``ratio``        O/E x expected, the same way;
-``weight``       the share of own data, which with the published between-unit SD gives the count back
-                 (treated as a leak when published at all: counted, not solved);
-``cell``         a table cell under an Observed, Raw, O/E or Own data heading, in the unit's row of the
-                 measure's page or the measure's row of the unit's page (tables of numbers, figure data
-                 tables, the Quarto sources' pipe tables), solved as above;
-``words``        a sentence, alt text, title or search-index entry that names the unit and says
-                 "k of n" (or "k among n", "k out of n", "k/n") with n its published cases;
-``total``        the network's published total minus every count shown: an exact audit (every whole
-                 number each hidden count can take, given the ranges a reader knows and that they add up
-                 to the total), by dynamic programming over sums, not the pipeline's interval arithmetic
-                 (a count worked out to be zero is not counted: the rule shows zeros);
-``cases total``  the same for withheld units' cases, from the network's published number of patients;
-``... (other cycle)``  the field, rate, ratio and weight routes on another cycle's tables that carry this
-                 cycle's period in a ``period`` column, and the words route on another cycle's sentences
-                 that name this cycle's period (a later site re-publishing an earlier cycle's counts).
+``field``
+    the value itself in a download (csv, json, a cycle's history table);
+``rate``
+    raw rate x cases: every whole number k with k / cases rounding to the published rate;
+``ratio``
+    O/E x expected, the same way;
+``weight``
+    the share of own data, which with the published between-unit SD gives the count back (treated
+    as a leak when published at all: counted, not solved);
+``cell``
+    a table cell under an Observed, Raw, O/E or Own data heading, in the unit's row of the
+    measure's page or the measure's row of the unit's page (tables of numbers, figure data tables,
+    the Quarto sources' pipe tables), solved as above;
+``words``
+    a sentence, alt text, title or search-index entry that names the unit and says "k of n" (or "k
+    among n", "k out of n", "k/n") with n its published cases;
+``total``
+    the network's published total minus every count shown: an exact audit (every whole number each
+    hidden count can take, given the ranges a reader knows and that they add up to the total), by
+    dynamic programming over sums, not the pipeline's interval arithmetic (a count worked out to be
+    zero is not counted: the rule shows zeros);
+``cases total``
+    the same for withheld units' cases, from the network's published number of patients;
+``... (other cycle)``
+    the field, rate, ratio and weight routes on another cycle's tables that carry this cycle's
+    period in a ``period`` column, and the words route on another cycle's sentences that name this
+    cycle's period (a later site re-publishing an earlier cycle's counts).
 
 What it does not try, and why: inverting the model (adjusted values blend the unit's count with the
 network's; :func:`guess_by_inversion` measures how often a best guess is right, since such a guess
@@ -53,17 +64,46 @@ import numpy as np
 import pandas as pd
 
 TEXT_SUFFIXES = {".html", ".svg", ".js", ".json", ".qmd", ".md", ".yml", ".txt", ".xml", ".csv"}
-BLOCK_TAGS = {"p", "li", "td", "th", "caption", "figcaption", "h1", "h2", "h3", "h4", "h5", "h6", "div", "section",
-              "dt", "dd", "title", "text", "desc", "summary", "tr", "table", "article", "header", "footer", "nav", "br"}
+BLOCK_TAGS = {
+    "p",
+    "li",
+    "td",
+    "th",
+    "caption",
+    "figcaption",
+    "h1",
+    "h2",
+    "h3",
+    "h4",
+    "h5",
+    "h6",
+    "div",
+    "section",
+    "dt",
+    "dd",
+    "title",
+    "text",
+    "desc",
+    "summary",
+    "tr",
+    "table",
+    "article",
+    "header",
+    "footer",
+    "nav",
+    "br",
+}
 ATTRIBUTES = {"alt", "title", "aria-label", "content", "data-label"}
 NUMBER = r"\d[\d,]*"
 
 
-# ---------------------------------------------------------------------------- reading what is published
+# ---------------------------------------------------------------------------- reading what is
+# published
 
 
 class _Page(HTMLParser):
-    """Text fragments (one per block, attribute or SVG text) and tables (header cells, body rows) of one page."""
+    """Text fragments (one per block, attribute or SVG text) and tables (header cells, body rows) of
+    one page."""
 
     def __init__(self):
         super().__init__(convert_charrefs=True)
@@ -165,7 +205,8 @@ class Published:
 
     site: Path
     tables: list[tuple[str, pd.DataFrame]] = field(default_factory=list)  # downloads: (file, table)
-    pages: list[tuple[str, list[str], list[dict]]] = field(default_factory=list)  # (file, text fragments, tables)
+    # (file, text fragments, tables)
+    pages: list[tuple[str, list[str], list[dict]]] = field(default_factory=list)
 
 
 def _json_tables(data) -> list[pd.DataFrame]:
@@ -191,7 +232,8 @@ def _strings(data) -> list[str]:
 
 
 def read_site(site: Path, extra_tables: list[Path] = ()) -> Published:
-    """Read every text file under ``site`` (the Quarto sources too) and any extra tables (a cycle's history)."""
+    """Read every text file under ``site`` (the Quarto sources too) and any extra tables (a cycle's
+    history)."""
     out = Published(site)
     for path in sorted(p for p in site.rglob("*") if p.is_file()):
         name = path.relative_to(site).as_posix()
@@ -199,7 +241,9 @@ def read_site(site: Path, extra_tables: list[Path] = ()) -> Published:
             continue
         text = path.read_text("utf-8", errors="replace")
         if path.suffix == ".csv":
-            out.tables.append((name, pd.read_csv(io.StringIO(text), dtype=str, keep_default_na=False)))
+            out.tables.append(
+                (name, pd.read_csv(io.StringIO(text), dtype=str, keep_default_na=False))
+            )
         elif path.suffix == ".json":
             data = json.loads(text)
             out.tables.extend((name, t) for t in _json_tables(data))
@@ -213,7 +257,11 @@ def read_site(site: Path, extra_tables: list[Path] = ()) -> Published:
             found = re.findall(r'"((?:[^"\\]|\\.)*)"', text)
             out.pages.append((name, [html.unescape(_js_string(s)) for s in found], []))
         else:
-            fragments = [" ".join(line.split()) for line in re.split(r"\n\s*\n|(?<=\.)\s", text) if line.strip()]
+            fragments = [
+                " ".join(line.split())
+                for line in re.split(r"\n\s*\n|(?<=\.)\s", text)
+                if line.strip()
+            ]
             out.pages.append((name, fragments, _markdown_tables(text)))
     for path in extra_tables:
         out.tables.append((str(path), pd.read_csv(path, dtype=str, keep_default_na=False)))
@@ -224,7 +272,8 @@ def read_site(site: Path, extra_tables: list[Path] = ()) -> Published:
 
 
 def _number(text) -> float | None:
-    """A published number as a reader reads it: "1,234", "4.2%", "0.93", "18 in every 1,000"; None if not one number."""
+    """A published number as a reader reads it: "1,234", "4.2%", "0.93", "18 in every 1,000"; None
+    if not one number."""
     if text is None:
         return None
     s = str(text).strip().replace("\u2212", "-")
@@ -243,7 +292,8 @@ def _decimals(text) -> int:
 
 
 def solve(published: str, divisor: float, most: int) -> list[int]:
-    """Whole numbers k from 0 to ``most`` whose k / divisor, written as ``published`` is written, is ``published``."""
+    """Whole numbers k from 0 to ``most`` whose k / divisor, written as ``published`` is written, is
+    ``published``."""
     v = _number(published)
     if v is None or not divisor or not math.isfinite(divisor):
         return []
@@ -267,7 +317,8 @@ def _csv_solve(value: str, divisor: float, most: int) -> list[int]:
 
 
 def feasible_values(ranges: list[list[int]], total: int) -> list[set[int]]:
-    """Each hidden number's possible values when they add up to ``total`` (exact, by bitsets over sums)."""
+    """Each hidden number's possible values when they add up to ``total`` (exact, by bitsets over
+    sums)."""
     n = len(ranges)
     mask = (1 << (total + 1)) - 1
 
@@ -298,14 +349,27 @@ def feasible_values(ranges: list[list[int]], total: int) -> list[set[int]]:
 @dataclass
 class Report:
     tries: dict[str, int] = field(default_factory=dict)  # route -> attempts
-    recovered: list[dict] = field(default_factory=list)  # one row per hidden value worked out exactly
+    # one row per hidden value worked out exactly
+    recovered: list[dict] = field(default_factory=list)
     hidden: int = 0  # hidden values attacked
 
     def tried(self, route: str, n: int = 1) -> None:
         self.tries[route] = self.tries.get(route, 0) + n
 
-    def found(self, route: str, cycle: str, measure: str, unit: str, what: str, value, where: str) -> None:
-        self.recovered.append({"route": route, "cycle": cycle, "measure": measure, "unit": unit, "what": what, "value": value, "where": where})
+    def found(
+        self, route: str, cycle: str, measure: str, unit: str, what: str, value, where: str
+    ) -> None:
+        self.recovered.append(
+            {
+                "route": route,
+                "cycle": cycle,
+                "measure": measure,
+                "unit": unit,
+                "what": what,
+                "value": value,
+                "where": where,
+            }
+        )
 
     def values(self) -> set[tuple]:
         """Distinct hidden values worked out (one value found by several routes counts once)."""
@@ -313,15 +377,19 @@ class Report:
 
     def summary(self) -> str:
         routes = ", ".join(f"{k} {v}" for k, v in sorted(self.tries.items()))
-        return (f"{self.hidden} hidden values; {len(self.tries)} routes, {sum(self.tries.values())} attempts ({routes}); "
-                f"{len(self.values())} recovered")
+        return (
+            f"{self.hidden} hidden values; {len(self.tries)} routes, "
+            f"{sum(self.tries.values())} attempts ({routes}); "
+            f"{len(self.values())} recovered"
+        )
 
 
 @dataclass(frozen=True)
 class Rule:
     """The published rule, as the methods page states it."""
 
-    threshold: int  # counts from 1 to threshold - 1 (of patients with the outcome, or without) are not shown
+    # counts from 1 to threshold - 1 (of patients with the outcome, or without) are not shown
+    threshold: int
     minimum: int  # units with fewer cases are not shown
 
 
@@ -334,27 +402,44 @@ def _public(published: Published) -> pd.DataFrame:
 
 
 def _measures(published: Published) -> dict[str, dict]:
-    """Per measure key: its name and the network's totals, from the json download and the measure page's sentence.
+    """Per measure key: its name and the network's totals, from the json download and the measure
+    page's sentence.
 
     The two must agree (a page and a download that disagree are a bug of their own).
     """
     out: dict[str, dict] = {}
     for name, t in published.tables:
-        if name == "downloads/results.json" and {"key", "name", "events", "patients"} <= set(t.columns):
+        if name == "downloads/results.json" and {"key", "name", "events", "patients"} <= set(
+            t.columns
+        ):
             for r in t.to_dict("records"):
-                out[r["key"]] = {"name": r["name"], "events": int(round(float(r["events"]))), "patients": int(r["patients"])}
+                out[r["key"]] = {
+                    "name": r["name"],
+                    "events": int(round(float(r["events"]))),
+                    "patients": int(r["patients"]),
+                }
     for name, fragments, _ in published.pages:
         key = Path(name).stem
         if name.startswith("measures/") and name.endswith(".html") and key in out:
-            said = [re.search(rf"({NUMBER}) of ({NUMBER}) patients had this outcome", f) for f in fragments]
+            said = [
+                re.search(rf"({NUMBER}) of ({NUMBER}) patients had this outcome", f)
+                for f in fragments
+            ]
             said = [m for m in said if m]
             if said:
-                pair = (int(said[0].group(1).replace(",", "")), int(said[0].group(2).replace(",", "")))
-                assert pair == (out[key]["events"], out[key]["patients"]), f"{name} says {pair}; results.json says {out[key]}"
+                pair = (
+                    int(said[0].group(1).replace(",", "")),
+                    int(said[0].group(2).replace(",", "")),
+                )
+                assert pair == (out[key]["events"], out[key]["patients"]), (
+                    f"{name} says {pair}; results.json says {out[key]}"
+                )
     return out
 
 
-def attack(cycles: dict[str, Published], truth: pd.DataFrame, rule: Rule, binary: set[str]) -> Report:
+def attack(
+    cycles: dict[str, Published], truth: pd.DataFrame, rule: Rule, binary: set[str]
+) -> Report:
     """Try every route on every hidden value of every cycle.
 
     ``cycles``: label -> what that cycle's site (and history) publishes, oldest first.
@@ -365,18 +450,35 @@ def attack(cycles: dict[str, Published], truth: pd.DataFrame, rule: Rule, binary
     for cycle, published in cycles.items():
         public = _public(published)
         real = truth[truth["cycle"] == cycle].set_index(["measure", "unit_id"])
-        names = dict(zip(public["unit_id"], public["unit_name"]))
+        names = dict(zip(public["unit_id"], public["unit_name"], strict=True))
         measures = _measures(published)
         for measure, rows in public.groupby("measure", sort=False):
-            counted = measure in binary  # counts are attacked on binary measures; withheld units' cases on every measure
-            counts = rows[rows["status"].isin(["too_few", "withheld"]) | rows["count_status"].isin(["small", "protects"])]
+            # counts are attacked on binary measures; withheld units' cases on every measure
+            counted = measure in binary
+            counts = rows[
+                rows["status"].isin(["too_few", "withheld"])
+                | rows["count_status"].isin(["small", "protects"])
+            ]
             counts = counts if counted else counts.iloc[0:0]
             for row in counts.itertuples():
                 report.hidden += 1
-                k, n = int(real.loc[(measure, row.unit_id), "observed"]), int(real.loc[(measure, row.unit_id), "cases"])
+                k, n = (
+                    int(real.loc[(measure, row.unit_id), "observed"]),
+                    int(real.loc[(measure, row.unit_id), "cases"]),
+                )
                 for other, pub in cycles.items():
-                    _attack_count(report, pub, cycle, other == cycle, measure, row.unit_id, names[row.unit_id],
-                                  measures[measure]["name"], k, n)
+                    _attack_count(
+                        report,
+                        pub,
+                        cycle,
+                        other == cycle,
+                        measure,
+                        row.unit_id,
+                        names[row.unit_id],
+                        measures[measure]["name"],
+                        k,
+                        n,
+                    )
             cases = rows[rows["status"].isin(["too_few", "withheld"])]
             report.hidden += len(cases)
             for row in cases.itertuples():
@@ -384,15 +486,28 @@ def attack(cycles: dict[str, Published], truth: pd.DataFrame, rule: Rule, binary
                 for name, table in published.tables:
                     if {"measure", "unit_id", "cases"} <= set(table.columns):
                         report.tried("field")
-                        hit = table.loc[(table["measure"] == measure) & (table["unit_id"] == row.unit_id), "cases"]
+                        hit = table.loc[
+                            (table["measure"] == measure) & (table["unit_id"] == row.unit_id),
+                            "cases",
+                        ]
                         if any(_number(v) == n for v in hit):
                             report.found("field", cycle, measure, row.unit_id, "cases", n, name)
             _attack_totals(report, cycle, measure, rows, real, measures[measure], rule, counted)
     return report
 
 
-def _attack_count(report: Report, pub: Published, cycle: str, same: bool, measure: str, unit: str, unit_name: str,
-                  measure_name: str, k: int, n: int) -> None:
+def _attack_count(
+    report: Report,
+    pub: Published,
+    cycle: str,
+    same: bool,
+    measure: str,
+    unit: str,
+    unit_name: str,
+    measure_name: str,
+    k: int,
+    n: int,
+) -> None:
     """Routes field, rate, ratio, weight, cell and words, for one hidden count k of n patients.
 
     On another cycle's files (``same`` False) only what names this cycle's period can be about it: a
@@ -424,9 +539,13 @@ def _attack_count(report: Report, pub: Published, cycle: str, same: bool, measur
                 report.tried("weight" + suffix)
                 if _number(r["own_weight"]) is not None:
                     report.found("weight", cycle, measure, unit, "observed", k, where)
-    exact = r"(?<!and\s)(?<!than\s)(?<!to\s)(?<![\d,.])"  # "k of n", not the end of "between 1 and k of n" or "fewer than k"
-    words = [rf"{exact}{k:,}\s+(?:of|among|out of)\s+(?:its\s+|the\s+)?{n:,}(?![\d,])",
-             rf"{exact}{k}\s+(?:of|among|out of)\s+(?:its\s+|the\s+)?{n}(?![\d,])", rf"{exact}{k}\s*/\s*{n}(?![\d])"]
+    # "k of n", not the end of "between 1 and k of n" or "fewer than k"
+    exact = r"(?<!and\s)(?<!than\s)(?<!to\s)(?<![\d,.])"
+    words = [
+        rf"{exact}{k:,}\s+(?:of|among|out of)\s+(?:its\s+|the\s+)?{n:,}(?![\d,])",
+        rf"{exact}{k}\s+(?:of|among|out of)\s+(?:its\s+|the\s+)?{n}(?![\d,])",
+        rf"{exact}{k}\s*/\s*{n}(?![\d])",
+    ]
     for name, fragments, tables in pub.pages:
         stem = Path(name).stem
         on_unit_page = stem == unit or stem == f"position-{unit}"
@@ -435,45 +554,79 @@ def _attack_count(report: Report, pub: Published, cycle: str, same: bool, measur
             if (unit_name in f or on_unit_page) and (same or cycle in f):
                 report.tried("words" + suffix)
                 if any(re.search(w, f) for w in words):
-                    report.found("words", cycle, measure, unit, "observed", k, f"{name}{suffix}: {f[:120]}")
+                    report.found(
+                        "words", cycle, measure, unit, "observed", k, f"{name}{suffix}: {f[:120]}"
+                    )
         if not same:
             continue
         for t in tables:
             header = [h.lower() for h in t["header"]]
             for cells in t["rows"]:
-                if not cells or not ((on_measure_page and cells[0] == unit_name) or (on_unit_page and cells[0] == measure_name)):
+                if not cells or not (
+                    (on_measure_page and cells[0] == unit_name)
+                    or (on_unit_page and cells[0] == measure_name)
+                ):
                     continue
-                expected = [c for h, c in zip(header, cells) if h.startswith("expected")]
+                expected = [
+                    c for h, c in zip(header, cells, strict=True) if h.startswith("expected")
+                ]
                 e = _number(expected[0]) if expected else None
-                for h, cell in zip(header, cells):
+                for h, cell in zip(header, cells, strict=True):
                     if re.search(r"^observed|events|with the outcome", h):
                         report.tried("cell")
                         if _number(cell) == k:
-                            report.found("cell", cycle, measure, unit, "observed", k, f"{name}: {h} = {cell}")
+                            report.found(
+                                "cell", cycle, measure, unit, "observed", k, f"{name}: {h} = {cell}"
+                            )
                     elif re.search(r"\braw\b", h):
                         report.tried("cell")
                         if solve(cell, n, n) == [k]:
-                            report.found("cell", cycle, measure, unit, "observed", k, f"{name}: {h} = {cell}")
+                            report.found(
+                                "cell", cycle, measure, unit, "observed", k, f"{name}: {h} = {cell}"
+                            )
                     elif re.search(r"o/e|observed to expected|value from o", h):
                         report.tried("cell")
                         if e and solve(cell, e, n) == [k]:
-                            report.found("cell", cycle, measure, unit, "observed", k, f"{name}: {h} = {cell}")
+                            report.found(
+                                "cell", cycle, measure, unit, "observed", k, f"{name}: {h} = {cell}"
+                            )
                     elif re.search(r"own data|own patients", h):
                         report.tried("cell")
                         if _number(cell) is not None:
-                            report.found("weight", cycle, measure, unit, "observed", k, f"{name}: {h} = {cell}")
+                            report.found(
+                                "weight",
+                                cycle,
+                                measure,
+                                unit,
+                                "observed",
+                                k,
+                                f"{name}: {h} = {cell}",
+                            )
 
 
-def _attack_totals(report: Report, cycle: str, measure: str, rows: pd.DataFrame, real: pd.DataFrame, totals: dict, rule: Rule,
-                   counted: bool) -> None:
-    """Routes total and cases total: the network's published totals minus everything shown, audited exactly."""
+def _attack_totals(
+    report: Report,
+    cycle: str,
+    measure: str,
+    rows: pd.DataFrame,
+    real: pd.DataFrame,
+    totals: dict,
+    rule: Rule,
+    counted: bool,
+) -> None:
+    """Routes total and cases total: the network's published totals minus everything shown, audited
+    exactly."""
     reported = rows[rows["status"] == "reported"]
     shown = reported[reported["count_status"] == "shown"]
     events, patients = totals["events"], totals["patients"]
     cases = pd.to_numeric(reported["cases"])
     smallest_cases = int(cases.min()) if len(cases) else 0
     shown_counts = pd.to_numeric(shown["observed"])
-    cap = int(shown_counts[shown_counts >= rule.threshold].min()) if (shown_counts >= rule.threshold).any() else None
+    cap = (
+        int(shown_counts[shown_counts >= rule.threshold].min())
+        if (shown_counts >= rule.threshold).any()
+        else None
+    )
     hidden, ranges = [], []
     for r in rows.itertuples():
         if r.status == "too_few":
@@ -485,7 +638,8 @@ def _attack_totals(report: Report, cycle: str, measure: str, rows: pd.DataFrame,
         elif r.count_status == "small":
             ranges.append(list(range(int(float(r.observed_low)), int(float(r.observed_high)) + 1)))
         elif r.count_status == "protects":
-            c = int(float(r.cases))  # not zero (zero is shown), not small, and at most the smallest count shown
+            # not zero (zero is shown), not small, and at most the smallest count shown
+            c = int(float(r.cases))
             values = [v for v in range(rule.threshold, c - rule.threshold + 1)] + [c]
             ranges.append([v for v in values if cap is None or v <= cap])
         else:
@@ -494,34 +648,64 @@ def _attack_totals(report: Report, cycle: str, measure: str, rows: pd.DataFrame,
     if hidden and counted:
         report.tried("total", len(hidden))
         left = events - int(shown_counts.sum())
-        for unit, values in zip(hidden, feasible_values(ranges, left)):
+        for unit, values in zip(hidden, feasible_values(ranges, left), strict=True):
             truth = int(real.loc[(measure, unit), "observed"])
-            assert truth in values, f"{cycle} {measure} {unit}: the true count {truth} is outside what the audit allows ({sorted(values)[:5]}...): the attacker's reading of the rule is wrong"
-            if values == {truth} and truth != 0:  # a zero says what a shown zero says: the rule shows zeros
-                report.found("total", cycle, measure, unit, "observed", truth, "network total minus counts shown")
+            assert truth in values, (
+                f"{cycle} {measure} {unit}: the true count {truth} is outside what the audit "
+                f"allows ({sorted(values)[:5]}...): the attacker's reading of the rule is wrong"
+            )
+            # a zero says what a shown zero says: the rule shows zeros
+            if values == {truth} and truth != 0:
+                report.found(
+                    "total",
+                    cycle,
+                    measure,
+                    unit,
+                    "observed",
+                    truth,
+                    "network total minus counts shown",
+                )
     withheld = rows[rows["status"].isin(["too_few", "withheld"])]
     if len(withheld):
         report.tried("cases total", len(withheld))
         left = patients - int(cases.sum())
         top = smallest_cases
-        ranges = [list(range(1, rule.minimum)) if s == "too_few" else list(range(rule.minimum, top + 1)) for s in withheld["status"]]
-        for unit, values in zip(withheld["unit_id"], feasible_values(ranges, left)):
+        ranges = [
+            list(range(1, rule.minimum)) if s == "too_few" else list(range(rule.minimum, top + 1))
+            for s in withheld["status"]
+        ]
+        for unit, values in zip(withheld["unit_id"], feasible_values(ranges, left), strict=True):
             truth = int(real.loc[(measure, unit), "cases"])
-            assert truth in values, f"{cycle} {measure} {unit}: the true cases {truth} are outside what the audit allows"
+            assert truth in values, (
+                f"{cycle} {measure} {unit}: the true cases {truth} are outside what the audit "
+                "allows"
+            )
             if len(values) == 1:
-                report.found("cases total", cycle, measure, unit, "cases", truth, "network patients minus cases shown")
+                report.found(
+                    "cases total",
+                    cycle,
+                    measure,
+                    unit,
+                    "cases",
+                    truth,
+                    "network patients minus cases shown",
+                )
 
 
-def guess_by_inversion(published: Published, truth: pd.DataFrame, cycle: str, binary: set[str]) -> dict[str, dict[str, int]]:
-    """Model inversion, measured: how often a reader's best guess of a small count is right (not an exact recovery).
+def guess_by_inversion(
+    published: Published, truth: pd.DataFrame, cycle: str, binary: set[str]
+) -> dict[str, dict[str, int]]:
+    """Model inversion, measured: how often a reader's best guess of a small count is right (not an
+    exact recovery).
 
-    The adjusted ratio blends a unit's count with the network's. A reader who knows the kind of model can
-    fit, on the units whose counts are shown, ratio = (observed + a + c log cases) / (expected + b) (a
-    gamma-Poisson shape, fitted by least squares on observed - ratio x expected = b ratio - a - c ratio
-    log cases), and invert it for each small count, rounding into the published range. The guess cannot be
-    confirmed from the site, so it is reported, not failed on. For comparison, ``baseline`` is the guess from
-    the published expected count alone (expected x the median O/E of the units shown), which needs no model.
-    Returns, per measure: {"right", "baseline", "small"}.
+    The adjusted ratio blends a unit's count with the network's. A reader who knows the kind of
+    model can fit, on the units whose counts are shown, ratio = (observed + a + c log cases) /
+    (expected + b) (a gamma-Poisson shape, fitted by least squares on observed - ratio x expected =
+    b ratio - a - c ratio log cases), and invert it for each small count, rounding into the
+    published range. The guess cannot be confirmed from the site, so it is reported, not failed on.
+    For comparison, ``baseline`` is the guess from the published expected count alone (expected x
+    the median O/E of the units shown), which needs no model. Returns, per measure: {"right",
+    "baseline", "small"}.
     """
     public = _public(published)
     real = truth[truth["cycle"] == cycle].set_index(["measure", "unit_id"])["observed"]
@@ -529,26 +713,55 @@ def guess_by_inversion(published: Published, truth: pd.DataFrame, cycle: str, bi
     for measure, rows in public.groupby("measure", sort=False):
         if measure not in binary:
             continue
-        num = {c: pd.to_numeric(rows[c], errors="coerce") for c in ("cases", "expected", "ratio_median", "observed", "observed_low", "observed_high")}
+        num = {
+            c: pd.to_numeric(rows[c], errors="coerce")
+            for c in (
+                "cases",
+                "expected",
+                "ratio_median",
+                "observed",
+                "observed_low",
+                "observed_high",
+            )
+        }
         shown = (rows["count_status"] == "shown").to_numpy()
         small = (rows["count_status"] == "small").to_numpy()
         if shown.sum() < 4 or not small.any():
             continue
-        r, e, n = num["ratio_median"].to_numpy(), num["expected"].to_numpy(), np.log(num["cases"].to_numpy())
+        r, e, n = (
+            num["ratio_median"].to_numpy(),
+            num["expected"].to_numpy(),
+            np.log(num["cases"].to_numpy()),
+        )
         design = np.column_stack([r, -np.ones(len(r)), -r * n])
-        coef, *_ = np.linalg.lstsq(design[shown], (num["observed"].to_numpy() - r * e)[shown], rcond=None)
-        guess = np.clip(np.round(r * e + design @ coef), num["observed_low"], num["observed_high"])[small]
+        coef, *_ = np.linalg.lstsq(
+            design[shown], (num["observed"].to_numpy() - r * e)[shown], rcond=None
+        )
+        guess = np.clip(np.round(r * e + design @ coef), num["observed_low"], num["observed_high"])[
+            small
+        ]
         truths = np.array([real.loc[(measure, u)] for u in rows["unit_id"].to_numpy()[small]])
         ratio = np.median((num["observed"] / num["expected"]).to_numpy()[shown])
         baseline = np.clip(np.round(e * ratio), num["observed_low"], num["observed_high"])[small]
-        out[measure] = {"right": int((guess == truths).sum()), "baseline": int((baseline == truths).sum()), "small": int(small.sum())}
+        out[measure] = {
+            "right": int((guess == truths).sum()),
+            "baseline": int((baseline == truths).sum()),
+            "small": int(small.sum()),
+        }
     return out
 
 
-def counts_from_cohort(cohort: pd.DataFrame, unit_column: str, outcome: str, needed: list[str]) -> pd.DataFrame:
-    """True cases and events per unit from patient rows: rows with the outcome and every needed column recorded."""
+def counts_from_cohort(
+    cohort: pd.DataFrame, unit_column: str, outcome: str, needed: list[str]
+) -> pd.DataFrame:
+    """True cases and events per unit from patient rows: rows with the outcome and every needed
+    column recorded."""
     rows = cohort.dropna(subset=[outcome, *needed])
     grouped = rows.groupby(unit_column)[outcome]
-    return pd.DataFrame({"unit_id": grouped.size().index.astype(str), "cases": grouped.size().to_numpy(),
-                         "observed": grouped.sum().to_numpy().round().astype(int)})
-
+    return pd.DataFrame(
+        {
+            "unit_id": grouped.size().index.astype(str),
+            "cases": grouped.size().to_numpy(),
+            "observed": grouped.sum().to_numpy().round().astype(int),
+        }
+    )

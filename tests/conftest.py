@@ -42,7 +42,9 @@ casemix = "age + C(sex)"
 
 def small_cohort() -> tuple[pd.DataFrame, pd.DataFrame]:
     """Six rows over two units: the smallest valid input."""
-    units = pd.DataFrame({"id": ["a1", "b2"], "name": ["Unit A", "Unit B"], "kind": ["hospital", "clinic"]})
+    units = pd.DataFrame(
+        {"id": ["a1", "b2"], "name": ["Unit A", "Unit B"], "kind": ["hospital", "clinic"]}
+    )
     cohort = pd.DataFrame(
         {
             "stay_id": [f"s{i}" for i in range(6)],
@@ -59,7 +61,11 @@ def small_cohort() -> tuple[pd.DataFrame, pd.DataFrame]:
 def cycle_folder(tmp_path: Path):
     """Write a valid small config plus inputs; return a function that writes variants."""
 
-    def write(config: str = BASE_CONFIG, units: pd.DataFrame | None = None, cohort: pd.DataFrame | None = None) -> Path:
+    def write(
+        config: str = BASE_CONFIG,
+        units: pd.DataFrame | None = None,
+        cohort: pd.DataFrame | None = None,
+    ) -> Path:
         u, c = small_cohort()
         (units if units is not None else u).to_csv(tmp_path / "units.csv", index=False)
         (cohort if cohort is not None else c).to_csv(tmp_path / "cohort.csv", index=False)
@@ -144,7 +150,9 @@ def hostile_cycle(tmp_path_factory):
     markers = {c: list(cohort[c]) for c in ("stay_id", "patient_name", "date_of_birth", "phone")}
     markers["frailty"] = [f"{v:.9f}" for v in cohort["frailty"]]
     # A risk supplied by an (invented) model fitted elsewhere, used as the expected value itself.
-    cohort["vendor_risk"] = np.round(1 / (1 + np.exp(5.0 - 1.0 * cohort["emergency"] - 0.5 * (cohort["age_band"] == "85+"))), 4)
+    cohort["vendor_risk"] = np.round(
+        1 / (1 + np.exp(5.0 - 1.0 * cohort["emergency"] - 0.5 * (cohort["age_band"] == "85+"))), 4
+    )
     units.to_csv(folder / "units.csv", index=False)
     cohort.to_csv(folder / "cohort.csv", index=False, float_format="%.9f")
     (folder / "cycle.toml").write_text(HOSTILE_CONFIG)
@@ -152,23 +160,49 @@ def hostile_cycle(tmp_path_factory):
     return folder, markers, summary, folder / "site"
 
 
-DEMO_RISK = ["age_band", "sex", "emergency", "heart_failure", "copd", "diabetes", "renal_disease", "cancer"]
+DEMO_RISK = [
+    "age_band",
+    "sex",
+    "emergency",
+    "heart_failure",
+    "copd",
+    "diabetes",
+    "renal_disease",
+    "cancer",
+]
 
 
 def demo_counts(inputs: Path) -> pd.DataFrame:
-    """The demo's true cases and counts per measure and unit, from its invented inputs (not from the pipeline).
+    """The demo's true cases and counts per measure and unit, from its invented inputs (not from the
+    pipeline).
 
     Patient rows count where the outcome and every risk factor the measure drops on are recorded
-    (readmit30 drops rows without deprivation_fifth; stay imputes it); pressure comes as unit totals.
-    For stay, ``observed`` is the total of days.
+    (readmit30 drops rows without deprivation_fifth; stay imputes it); pressure comes as unit
+    totals. For stay, ``observed`` is the total of days.
     """
     cohort = pd.read_csv(inputs / "cohort.csv")
     parts = []
-    for measure, outcome, needed in [("readmit30", "readmit30", [*DEMO_RISK, "deprivation_fifth"]), ("death30", "death30", DEMO_RISK),
-                                     ("complication", "complication", DEMO_RISK), ("stay", "los_days", DEMO_RISK)]:
+    for measure, outcome, needed in [
+        ("readmit30", "readmit30", [*DEMO_RISK, "deprivation_fifth"]),
+        ("death30", "death30", DEMO_RISK),
+        ("complication", "complication", DEMO_RISK),
+        ("stay", "los_days", DEMO_RISK),
+    ]:
         rows = cohort.dropna(subset=[outcome, *needed]).groupby("unit_id")[outcome]
-        parts.append(pd.DataFrame({"measure": measure, "unit_id": rows.size().index.astype(str), "cases": rows.size().to_numpy(),
-                                   "observed": rows.sum().to_numpy()}))
+        parts.append(
+            pd.DataFrame(
+                {
+                    "measure": measure,
+                    "unit_id": rows.size().index.astype(str),
+                    "cases": rows.size().to_numpy(),
+                    "observed": rows.sum().to_numpy(),
+                }
+            )
+        )
     pressure = pd.read_csv(inputs / "pressure_by_unit.csv", dtype={"unit_id": str})
-    parts.append(pressure.rename(columns={"pressure_injury": "observed"})[["unit_id", "cases", "observed"]].assign(measure="pressure"))
+    parts.append(
+        pressure.rename(columns={"pressure_injury": "observed"})[
+            ["unit_id", "cases", "observed"]
+        ].assign(measure="pressure")
+    )
     return pd.concat(parts, ignore_index=True)

@@ -31,18 +31,27 @@ def tables(page: str) -> dict[tuple[str, ...], list[list[str]]]:
     """Each table of a page as header -> rows of cell text."""
     out = {}
     for t in re.findall(r"<table.*?</table>", page, re.S):
-        rows = [[html_lib.unescape(re.sub(r"<[^>]+>", "", c)).strip() for c in re.findall(r"<t[hd][^>]*>(.*?)</t[hd]>", r, re.S)]
-                for r in re.findall(r"<tr.*?</tr>", t, re.S)]
+        rows = [
+            [
+                html_lib.unescape(re.sub(r"<[^>]+>", "", c)).strip()
+                for c in re.findall(r"<t[hd][^>]*>(.*?)</t[hd]>", r, re.S)
+            ]
+            for r in re.findall(r"<tr.*?</tr>", t, re.S)
+        ]
         out[tuple(rows[0])] = rows[1:]
     return out
 
 
 def table_with(page: str, *heads: str) -> list[dict[str, str]]:
     """The smallest table whose column heads contain each of ``heads``, as one dict per row."""
-    found = [(header, rows) for header, rows in tables(page).items() if all(any(h in c for c in header) for h in heads)]
+    found = [
+        (header, rows)
+        for header, rows in tables(page).items()
+        if all(any(h in c for c in header) for h in heads)
+    ]
     assert found, f"no table with columns {heads}"
     header, rows = min(found, key=lambda f: len(f[0]))
-    return [dict(zip(header, r)) for r in rows]
+    return [dict(zip(header, r, strict=True)) for r in rows]
 
 
 def col(row: dict[str, str], head: str) -> str:
@@ -80,7 +89,8 @@ def step(m: dict) -> float:
 
 
 def scale(kind: str) -> float:
-    return 1.0 if kind == "continuous" else 100.0  # continuous values in the outcome's unit, rates in %
+    # continuous values in the outcome's unit, rates in %
+    return 1.0 if kind == "continuous" else 100.0
 
 
 def hidden_count(r) -> bool:
@@ -88,7 +98,8 @@ def hidden_count(r) -> bool:
 
 
 def assert_count_hidden(shown: dict[str, str], r, where) -> None:
-    """A row whose count is hidden: the range of the download in the Observed cell, and no raw rate, O/E or own data."""
+    """A row whose count is hidden: the range of the download in the Observed cell, and no raw rate,
+    O/E or own data."""
     for column in ("observed", "raw_rate", "oe_ratio", "own_weight"):
         assert pd.isna(r[column]), (where, column)
     observed = col(shown, "Observed")
@@ -106,7 +117,10 @@ def assert_count_hidden(shown: dict[str, str], r, where) -> None:
 def published(demo_cycle):
     _, _, site = demo_cycle
     csv = pd.read_csv(site / "downloads" / "results.csv")
-    about = {m["key"]: m for m in json.loads((site / "downloads" / "results.json").read_text())["measures"]}
+    about = {
+        m["key"]: m
+        for m in json.loads((site / "downloads" / "results.json").read_text())["measures"]
+    }
     return site, csv, about
 
 
@@ -118,25 +132,42 @@ def test_measure_pages_agree_with_the_downloads(published):
         rows = csv[(csv["measure"] == key) & (csv["status"] == "reported")].set_index("unit_name")
         bench = m["benchmark"]
 
-        full = {r["Unit"]: r for r in table_with(page, "Observed", "Expected", "O/E", "Group", "Own data")}
+        full = {
+            r["Unit"]: r
+            for r in table_with(page, "Observed", "Expected", "O/E", "Group", "Own data")
+        }
         assert set(rows.index) <= set(full), key
         for name, r in rows.iterrows():
             shown = full[name]
             assert number(shown["Cases"]) == r["cases"], (key, name)
-            assert close(col(shown, "Expected"), r["expected"], step(m)), (key, name, shown["Expected"])
+            assert close(col(shown, "Expected"), r["expected"], step(m)), (
+                key,
+                name,
+                shown["Expected"],
+            )
             if not hidden_count(r):
                 assert close(col(shown, "Observed"), r["observed"], 1), (key, name)
-                assert close(shown["O/E"], r["oe_ratio"], 0.01) and r["oe_ratio"] == pytest.approx(r["observed"] / r["expected"], rel=1e-4)
-            else:  # the small-count rule: the page says what the download says, and nothing that gives the count back
+                assert close(shown["O/E"], r["oe_ratio"], 0.01) and r["oe_ratio"] == pytest.approx(
+                    r["observed"] / r["expected"], rel=1e-4
+                )
+            # the small-count rule: the page says what the download says, and nothing that gives the
+            # count back
+            else:
                 assert_count_hidden(shown, r, (key, name))
             adjusted, interval = col(shown, "Adjusted"), col(shown, "95% interval")
             assert close(adjusted, r["rsr_median"] * k, 0.1), (key, name)
             lo, hi = numbers(interval)[:2]
-            assert close(lo, r["rsr_lower"] * k, 0.1) and close(hi, r["rsr_upper"] * k, 0.1), (key, name)
+            assert close(lo, r["rsr_lower"] * k, 0.1) and close(hi, r["rsr_upper"] * k, 0.1), (
+                key,
+                name,
+            )
             assert GROUP_WORDS[shown["Group"].split(" ", 1)[1]] == r["group"], (key, name)
             assert chance_ok(shown["Chance on the other side"], r["prob_other_side"]), (key, name)
             ranks = numbers(shown["Rank"])  # a median rank can end in .5 and is shown rounded
-            assert close(ranks[0], r["rank_median"], 1) and ranks[1:] == [r["rank_lower"], r["rank_upper"]], (key, name)
+            assert close(ranks[0], r["rank_median"], 1) and ranks[1:] == [
+                r["rank_lower"],
+                r["rank_upper"],
+            ], (key, name)
             if not hidden_count(r):
                 assert close(shown["Own data"], r["own_weight"] * 100, 1)
             # One benchmark: adjusted = ratio x benchmark, draw by draw, so for the medians too.
@@ -148,13 +179,18 @@ def test_measure_pages_agree_with_the_downloads(published):
             assert close(chart[name]["Adjusted"], r["rsr_median"] * k, 0.1)
             assert GROUP_WORDS[chart[name]["Group"]] == r["group"]
 
-        counted = rows[~rows.apply(hidden_count, axis=1)]  # units whose count is hidden are left out of both figures
+        # units whose count is hidden are left out of both figures
+        counted = rows[~rows.apply(hidden_count, axis=1)]
         moves = {r["Unit"]: r for r in table_with(page, "Unit", "Raw", "Adjusted", "Move")}
         assert set(moves) == set(counted.index), key
         for name, r in counted.iterrows():
             mv = moves[name]
-            assert close(mv["Raw"], r["raw_rate"] * k, 0.1) and close(mv["Adjusted"], r["rsr_median"] * k, 0.1)
-            assert abs(number(mv["Move"]) - (number(mv["Adjusted"]) - number(mv["Raw"]))) <= 0.1 + 1e-9, (key, name)
+            assert close(mv["Raw"], r["raw_rate"] * k, 0.1) and close(
+                mv["Adjusted"], r["rsr_median"] * k, 0.1
+            )
+            assert (
+                abs(number(mv["Move"]) - (number(mv["Adjusted"]) - number(mv["Raw"]))) <= 0.1 + 1e-9
+            ), (key, name)
 
         funnel = {r["Unit"]: r for r in table_with(page, "Value from O/E", "99.8% limits")}
         assert set(funnel) == set(counted.index), key
@@ -166,10 +202,15 @@ def test_measure_pages_agree_with_the_downloads(published):
             assert close(f["Expected"], r["expected"], 0.1), (key, name)
             lo95, hi95 = numbers(f["95% limits"])
             lo998, hi998 = numbers(f["99.8% limits"])
-            assert 0 <= lo998 <= lo95 <= bench * k + 0.05 <= hi95 + 0.1 <= hi998 + 0.1, (key, name, f)
+            assert 0 <= lo998 <= lo95 <= bench * k + 0.05 <= hi95 + 0.1 <= hi998 + 0.1, (
+                key,
+                name,
+                f,
+            )
             verdict = f["Against the 99.8% limits"]
             assert verdict in ("inside", "above", "below")
-            # The verdict follows the unrounded limits; the rounded ones shown must not contradict it.
+            # The verdict follows the unrounded limits; the rounded ones shown must not contradict
+            # it.
             if verdict == "above":
                 assert number(f["Value from O/E"]) >= hi998 - 0.1
             elif verdict == "below":
@@ -179,25 +220,41 @@ def test_measure_pages_agree_with_the_downloads(published):
             outside += verdict != "inside"
         text = " ".join(readability.prose(page))
         said = re.search(r"(\d+) of (\d+) units are outside the outer \(99\.8%\) limits", text)
-        assert said and int(said.group(1)) == outside and int(said.group(2)) == len(counted), (key, said and said.group(0))
+        assert said and int(said.group(1)) == outside and int(said.group(2)) == len(counted), (
+            key,
+            said and said.group(0),
+        )
 
         # The benchmark and the typical unit, as stated in words.
-        bench_shown = re.search(r"[Ee]ach unit is compared with this (?:rate|mean|average), the benchmark|benchmark is ([\d.,]+)", text)
+        bench_shown = re.search(
+            r"[Ee]ach unit is compared with this (?:rate|mean|average), the "
+            r"benchmark|benchmark is ([\d.,]+)",
+            text,
+        )
         assert bench_shown, key
-        stated = re.search(r"typical unit's adjusted value is ([\d.,]+)[^,]*, while the benchmark is ([\d.,]+)", text)
+        stated = re.search(
+            r"typical unit's adjusted value is ([\d.,]+)[^,]*, while the benchmark is ([\d.,]+)",
+            text,
+        )
         predictors = m["pulled_towards"]["predictors"]
         if "pulls a small unit towards units like it" in text:
             assert predictors, key  # the words say predictors are used only when they are
             changed = m["pulled_towards"]["units_whose_group_depends_on_the_predictors"]
-            said = re.search(r"For (\d+) units?, the group would differ with one typical unit for all", text)
+            said = re.search(
+                r"For (\d+) units?, the group would differ with one typical unit for all", text
+            )
             assert (int(said.group(1)) if said else 0) == len(changed), key
             group_of = csv[csv["measure"] == key].set_index("unit_id")["group"]
-            for c in changed:  # each such unit's group, as published, is the fit with the predictors
+            # each such unit's group, as published, is the fit with the predictors
+            for c in changed:
                 assert group_of[c["unit_id"]] == c["with"] != c["without"], (key, c)
         elif stated:
-            assert close(stated.group(1), m["typical_unit"] * k, 0.1) and close(stated.group(2), bench * k, 0.1)
+            assert close(stated.group(1), m["typical_unit"] * k, 0.1) and close(
+                stated.group(2), bench * k, 0.1
+            )
         else:
-            assert f"{m['typical_unit'] * k:.1f}" == f"{bench * k:.1f}", key  # not stated only when it rounds to the benchmark
+            # not stated only when it rounds to the benchmark
+            assert f"{m['typical_unit'] * k:.1f}" == f"{bench * k:.1f}", key
 
 
 def test_binary_expected_counts_add_up_to_the_benchmark(published):
@@ -206,12 +263,15 @@ def test_binary_expected_counts_add_up_to_the_benchmark(published):
         rows = csv[csv["measure"] == key]
         if m["type"] != "binary" or rows["status"].ne("reported").any():
             continue  # withheld units' counts are not published, so the total cannot be rebuilt
-        assert rows["expected"].sum() == pytest.approx(m["benchmark"] * m["patients"], rel=1e-4), key
+        assert rows["expected"].sum() == pytest.approx(m["benchmark"] * m["patients"], rel=1e-4), (
+            key
+        )
         assert rows["observed"].sum() == pytest.approx(m["events"]), key
 
 
 def test_hidden_counts_add_up_with_the_shown_ones_to_the_network_total(demo_cycle, published):
-    """Counts shown plus the true hidden counts are the network's published total; each true count is in its range."""
+    """Counts shown plus the true hidden counts are the network's published total; each true count
+    is in its range."""
     files, _, _ = demo_cycle
     _, csv, about = published
     counts = demo_counts(files.config.parent).set_index(["measure", "unit_id"])["observed"]
@@ -221,13 +281,21 @@ def test_hidden_counts_add_up_with_the_shown_ones_to_the_network_total(demo_cycl
         rows = csv[csv["measure"] == key].set_index("unit_id")
         true = counts.loc[key]
         shown = rows["count_status"] == "shown"
-        assert rows.loc[shown, "observed"].sum() + true[rows.index[~shown]].sum() == m["events"], key
+        assert rows.loc[shown, "observed"].sum() + true[rows.index[~shown]].sum() == m["events"], (
+            key
+        )
         assert (rows.loc[shown, "observed"] == true[rows.index[shown]]).all(), key
         small = rows[rows["count_status"] == "small"]
-        assert ((small["observed_low"] <= true[small.index]) & (true[small.index] <= small["observed_high"])).all(), key
-        assert ((true[small.index] < 11) | (small["cases"] - true[small.index] < 11)).all(), key  # the demo's threshold
+        assert (
+            (small["observed_low"] <= true[small.index])
+            & (true[small.index] <= small["observed_high"])
+        ).all(), key
+        # the demo's threshold
+        assert ((true[small.index] < 11) | (small["cases"] - true[small.index] < 11)).all(), key
         big = rows[shown & (rows["status"] == "reported")]
-        assert not ((big["observed"].between(1, 10)) | (big["cases"] - big["observed"]).between(1, 10)).any(), key
+        assert not (
+            (big["observed"].between(1, 10)) | (big["cases"] - big["observed"]).between(1, 10)
+        ).any(), key
 
 
 def test_unit_pages_agree_with_the_downloads(published):
@@ -235,7 +303,9 @@ def test_unit_pages_agree_with_the_downloads(published):
     for unit_id, rows in csv[csv["status"] == "reported"].groupby("unit_id"):
         page = (site / "units" / f"{unit_id}.html").read_text()
         text = " ".join(readability.prose(page))
-        numbers_table = {r["Measure"]: r for r in table_with(page, "Measure", "Cases", "Observed", "Own data")}
+        numbers_table = {
+            r["Measure"]: r for r in table_with(page, "Measure", "Cases", "Observed", "Own data")
+        }
         strip = {r["Measure"]: r for r in table_with(page, "Measure", "Interval", "Group")}
         starts = sorted(text.index(about[k]["name"] + ". Allowing") for k in rows["measure"])
         for _, r in rows.iterrows():
@@ -243,7 +313,9 @@ def test_unit_pages_agree_with_the_downloads(published):
             k = scale(m["type"])
             name = m["name"]
             row = numbers_table[name]
-            assert number(row["Cases"]) == r["cases"] and close(row["Expected"], r["expected"], step(m)), (unit_id, name)
+            assert number(row["Cases"]) == r["cases"] and close(
+                row["Expected"], r["expected"], step(m)
+            ), (unit_id, name)
             if hidden_count(r):
                 assert_count_hidden(row, r, (unit_id, name))
             else:
@@ -259,19 +331,34 @@ def test_unit_pages_agree_with_the_downloads(published):
             assert close(lo, r["ratio_lower"], 0.01) and close(hi, r["ratio_upper"], 0.01)
             # The sentence about this measure.
             start = text.index(name + ". Allowing")
-            words = text[start:next((i for i in starts if i > start), start + 1200)]
+            words = text[start : next((i for i in starts if i > start), start + 1200)]
             between = re.search(r"between ([\d.,]+)%?(?: days)? and ([\d.,]+)", words)
-            assert between and close(between.group(1), r["rsr_lower"] * k, 0.1) and close(between.group(2), r["rsr_upper"] * k, 0.1), (unit_id, words)
+            assert (
+                between
+                and close(between.group(1), r["rsr_lower"] * k, 0.1)
+                and close(between.group(2), r["rsr_upper"] * k, 0.1)
+            ), (unit_id, words)
             if r["count_status"] == "small":
-                assert f"Between {r['observed_low']:,.0f} and {r['observed_high']:,.0f} of its {r['cases']:,.0f} patients had this outcome." in words
+                assert (
+                    f"Between {r['observed_low']:,.0f} and {r['observed_high']:,.0f} of its "
+                    f"{r['cases']:,.0f} patients had this outcome." in words
+                )
             elif r["count_status"] == "protects":
                 assert "Its exact number of patients with this outcome is not shown" in words
             bench = re.search(r"(?:benchmark|network average) is ([\d.,]+)", words)
             assert bench and close(bench.group(1), m["benchmark"] * k, 0.1), (unit_id, words)
-            above = re.search(r"above (?:the benchmark|it) is (less than 1%|more than 99%|\d+%)", words)
+            above = re.search(
+                r"above (?:the benchmark|it) is (less than 1%|more than 99%|\d+%)", words
+            )
             assert above and chance_ok(above.group(1), r["prob_above_benchmark"]), (unit_id, words)
-            assert GROUPS[r["group"]].lower().replace("stands out as ", "") in words.lower(), (unit_id, words)
-            depends = {c["unit_id"]: c["without"] for c in m["pulled_towards"].get("units_whose_group_depends_on_the_predictors", [])}
+            assert GROUPS[r["group"]].lower().replace("stands out as ", "") in words.lower(), (
+                unit_id,
+                words,
+            )
+            depends = {
+                c["unit_id"]: c["without"]
+                for c in m["pulled_towards"].get("units_whose_group_depends_on_the_predictors", [])
+            }
             if unit_id in depends:
                 assert f"it would be {GROUPS[depends[unit_id]].lower()}." in words, (unit_id, words)
             else:
@@ -290,9 +377,15 @@ def test_methods_page_predictors_and_sensitivity_agree_with_the_downloads(publis
     assert len(effects) == sum(len(m["pulled_towards"]["predictors"]) for m in targeted.values())
     for row in effects:
         m = targeted[names[row["Measure"]]]
-        term = next(t for t in m["pulled_towards"]["predictors"] if f"({t['term']})" in row["Predictor"])
+        term = next(
+            t for t in m["pulled_towards"]["predictors"] if f"({t['term']})" in row["Predictor"]
+        )
         median, lo, hi = numbers(col(row, "Effect per SD"))[:3]
-        assert close(median, term["effect_median"], 0.01) and close(lo, term["effect_lower"], 0.01) and close(hi, term["effect_upper"], 0.01)
+        assert (
+            close(median, term["effect_median"], 0.01)
+            and close(lo, term["effect_lower"], 0.01)
+            and close(hi, term["effect_upper"], 0.01)
+        )
         assert lo <= median <= hi
     sensitivity = table_with(page, "Measure", "Units whose group changes", GROUPS["better"])
     for row in sensitivity:
@@ -301,7 +394,15 @@ def test_methods_page_predictors_and_sensitivity_agree_with_the_downloads(publis
         m = targeted[names[row["Measure"]]]
         for g in ("better", "typical", "worse"):
             shown = numbers(row[GROUPS[g]])
-            assert shown == [m["pulled_towards"]["groups"][g]["with"], m["pulled_towards"]["groups"][g]["without"]], (row, g)
-            published = csv[(csv["measure"] == names[row["Measure"]]) & (csv["status"] == "reported")]
-            assert shown[0] == (published["group"] == g).sum()  # the published groups are the fit with the predictors
-        assert number(row["Units whose group changes"]) == len(m["pulled_towards"]["units_whose_group_depends_on_the_predictors"])
+            assert shown == [
+                m["pulled_towards"]["groups"][g]["with"],
+                m["pulled_towards"]["groups"][g]["without"],
+            ], (row, g)
+            published = csv[
+                (csv["measure"] == names[row["Measure"]]) & (csv["status"] == "reported")
+            ]
+            # the published groups are the fit with the predictors
+            assert shown[0] == (published["group"] == g).sum()
+        assert number(row["Units whose group changes"]) == len(
+            m["pulled_towards"]["units_whose_group_depends_on_the_predictors"]
+        )

@@ -17,11 +17,11 @@ import pandas as pd
 import pytest
 from scipy.special import expit, logit
 
+from pipeline.benchmark import benchmark_offset
 from pipeline.cache import Cache, code_version
 from pipeline.casemix import fit_with_design
 from pipeline.config import load_config
-from pipeline.benchmark import benchmark_offset
-from pipeline.cycle import Quiet, fit_measures
+from pipeline.cycle import SilentReporter, fit_measures
 from pipeline.data import load_cohort
 from pipeline.shrinkage import Cells, unit_draws
 
@@ -63,44 +63,78 @@ ANCHOR = "u00"
 
 def _units() -> pd.DataFrame:
     sizes = [3000] + [2500] * 4 + list(np.linspace(20, 70, 25).round().astype(int))
-    return pd.DataFrame({"id": [f"u{i:02d}" for i in range(len(sizes))], "name": [f"Invented unit {i}" for i in range(len(sizes))],
-                         "kind": ["hospital"] * 5 + ["clinic"] * 25, "size": sizes})
+    return pd.DataFrame(
+        {
+            "id": [f"u{i:02d}" for i in range(len(sizes))],
+            "name": [f"Invented unit {i}" for i in range(len(sizes))],
+            "kind": ["hospital"] * 5 + ["clinic"] * 25,
+            "size": sizes,
+        }
+    )
 
 
 def _measure_toml(key: str, outcome: str, kind: str, casemix: str, family: str) -> str:
     extra = f'family = "{family}"\nunit_label = "days"\n' if family else ""
-    return f'\n[[measures]]\nkey = "{key}"\nname = "{key}"\ndefinition = "Invented."\noutcome = "{outcome}"\ntype = "{kind}"\ncasemix = "{casemix}"\n{extra}'
+    return (
+        f'\n[[measures]]\nkey = "{key}"\nname = "{key}"\ndefinition = "Invented."\noutcome '
+        f'= "{outcome}"\ntype = "{kind}"\ncasemix = "{casemix}"\n{extra}'
+    )
 
 
-def _invent(rng: np.random.Generator, units: pd.DataFrame) -> tuple[pd.DataFrame, dict[str, pd.DataFrame]]:
+def _invent(
+    rng: np.random.Generator, units: pd.DataFrame
+) -> tuple[pd.DataFrame, dict[str, pd.DataFrame]]:
     unit = np.repeat(units["id"].to_numpy(), units["size"].to_numpy())
     large = np.isin(unit, units["id"][:5])
-    mean_sev = dict(zip(units["id"], rng.normal(0, 1.0, len(units))))  # very different case mix across units
+    # very different case mix across units
+    mean_sev = dict(zip(units["id"], rng.normal(0, 1.0, len(units)), strict=True))
     sev = rng.normal([mean_sev[u] for u in unit], 1.0)
-    rows = pd.DataFrame({"stay_id": [f"s{i}" for i in range(len(unit))], "unit_id": unit, "sev": sev.round(3),
-                         "band": pd.cut(sev, [-np.inf, -1, 0, 1, np.inf], labels=["a", "b", "c", "d"]).astype(str)})
-    for key, (outcome, kind, _, family, sign) in MEASURES.items():
+    rows = pd.DataFrame(
+        {
+            "stay_id": [f"s{i}" for i in range(len(unit))],
+            "unit_id": unit,
+            "sev": sev.round(3),
+            "band": pd.cut(sev, [-np.inf, -1, 0, 1, np.inf], labels=["a", "b", "c", "d"]).astype(
+                str
+            ),
+        }
+    )
+    for outcome, kind, _, family, sign in MEASURES.values():
         effect = np.where(large, 0.35 * sign, -0.35 * sign) + rng.normal(0, 0.1, len(unit))
         if kind == "binary":
             rows[outcome] = rng.binomial(1, expit(-1.8 + 0.6 * sev + effect))
         elif family == "gamma":
             rows[outcome] = rng.gamma(2.0, np.exp(1.2 + 0.3 * sev + effect) / 2.0).round(3) + 0.01
         else:
-            rows[outcome] = np.exp(1.0 + 0.3 * sev + effect + rng.normal(0, 0.6, len(unit))).round(3) + 0.01
+            rows[outcome] = (
+                np.exp(1.0 + 0.3 * sev + effect + rng.normal(0, 0.6, len(unit))).round(3) + 0.01
+            )
     summaries = {}
     for key, sign in SUMMARIES.items():
         cases = units["size"].to_numpy()
-        expected = cases * 0.12 * np.exp(0.3 * rng.normal(0, 1, len(cases)))  # supplied from elsewhere, 10% too high overall
-        truth = expected / 1.1 * np.exp(np.where(np.arange(len(cases)) < 5, 0.3 * sign, -0.3 * sign))
+        # supplied from elsewhere, 10% too high overall
+        expected = cases * 0.12 * np.exp(0.3 * rng.normal(0, 1, len(cases)))
+        truth = (
+            expected / 1.1 * np.exp(np.where(np.arange(len(cases)) < 5, 0.3 * sign, -0.3 * sign))
+        )
         observed = rng.poisson(truth).astype(float)
         rest, total = observed[1:].sum(), expected.sum()
-        observed[0] = round(expected[0] * rest / (total - expected[0]))  # the anchor: O equals its scaled E
-        summaries[key] = pd.DataFrame({"unit_id": units["id"], "cases": cases, "events": observed, "expected": expected.round(4)})
+        # the anchor: O equals its scaled E
+        observed[0] = round(expected[0] * rest / (total - expected[0]))
+        summaries[key] = pd.DataFrame(
+            {
+                "unit_id": units["id"],
+                "cases": cases,
+                "events": observed,
+                "expected": expected.round(4),
+            }
+        )
     return rows, summaries
 
 
 def _balance_anchor(config, rows: pd.DataFrame, units: pd.DataFrame) -> None:
-    """Change the anchor's outcomes until its observed total equals its published expected total (in place)."""
+    """Change the anchor's outcomes until its observed total equals its published expected total (in
+    place)."""
     anchor = (rows["unit_id"] == ANCHOR).to_numpy()
     codes = pd.Categorical(rows["unit_id"], categories=units["id"]).codes.astype(np.int64)
     rng = np.random.default_rng(5)
@@ -109,13 +143,17 @@ def _balance_anchor(config, rows: pd.DataFrame, units: pd.DataFrame) -> None:
             continue
         for _ in range(6):
             fit, _, y = fit_with_design(measure, rows, codes)
-            _, expected, _ = benchmark_offset(config.reporting.benchmark, measure, fit, y, codes[fit.used])
+            _, expected, _ = benchmark_offset(
+                config.reporting.benchmark, measure, fit, y, codes[fit.used]
+            )
             e, o = expected[anchor].sum(), y[anchor].sum()
             if measure.type == "binary":
                 gap = int(round(e - o))
                 if gap == 0:
                     break
-                candidates = np.flatnonzero(anchor & (rows[measure.outcome].to_numpy() == (0 if gap > 0 else 1)))
+                candidates = np.flatnonzero(
+                    anchor & (rows[measure.outcome].to_numpy() == (0 if gap > 0 else 1))
+                )
                 flip = rng.choice(candidates, abs(gap), replace=False)
                 rows.loc[flip, measure.outcome] = 1 if gap > 0 else 0
             else:
@@ -132,30 +170,43 @@ def skewed(tmp_path_factory):
     text = CONFIG + "".join(_measure_toml(k, *v[:4]) for k, v in MEASURES.items())
     for key in SUMMARIES:
         summaries[key].to_csv(folder / f"{key}.csv", index=False)
-        text += f'\n[[measures]]\nkey = "{key}"\nname = "{key}"\ndefinition = "Invented."\noutcome = "events"\nsummary = "{key}.csv"\ncasemix = "1"\n'
+        text += (
+            f'\n[[measures]]\nkey = "{key}"\nname = "{key}"\ndefinition = '
+            f'"Invented."\noutcome = "events"\nsummary = "{key}.csv"\ncasemix = "1"\n'
+        )
     (folder / "cycle.toml").write_text(textwrap.dedent(text), encoding="utf-8")
     units.drop(columns="size").to_csv(folder / "units.csv", index=False)
     config = load_config(folder / "cycle.toml")
     _balance_anchor(config, rows, units)
     rows.to_csv(folder / "cohort.csv", index=False)
     cohort = load_cohort(config)
-    return fit_measures(config, cohort, Cache(None), Quiet())
+    return fit_measures(config, cohort, Cache(None), SilentReporter())
 
 
 def test_the_skewed_networks_use_every_likelihood(skewed):
     kinds = {r.measure.key: (r.casemix.family, len(r.table)) for r in skewed}
     assert set(kinds) == set(MEASURES) | set(SUMMARIES)
-    # the typical unit really differs from the benchmark in these networks (else the test proves little)
-    assert all(abs(np.log(r.typical / r.benchmark)) > 0.05 for r in skewed), {r.measure.key: r.typical / r.benchmark for r in skewed}
+    # the typical unit really differs from the benchmark in these networks (else the test proves
+    # little)
+    assert all(abs(np.log(r.typical / r.benchmark)) > 0.05 for r in skewed), {
+        r.measure.key: r.typical / r.benchmark for r in skewed
+    }
 
 
 def test_a_unit_with_as_many_events_as_expected_is_in_line_with_the_benchmark(skewed):
     for r in skewed:
         row = r.table.set_index("unit_id").loc[ANCHOR]
-        assert abs(row["observed"] / row["expected"] - 1) < 0.004, (r.measure.key, row["observed"], row["expected"])
+        assert abs(row["observed"] / row["expected"] - 1) < 0.004, (
+            r.measure.key,
+            row["observed"],
+            row["expected"],
+        )
         assert row["own_weight"] > 0.9, r.measure.key
         assert abs(row["ratio_median"] - 1) <= 0.03, (r.measure.key, row["ratio_median"])
-        assert row["group"] == "typical" and row["position"] == "spans", (r.measure.key, row["group"])
+        assert row["group"] == "typical" and row["position"] == "spans", (
+            r.measure.key,
+            row["group"],
+        )
         assert 0.2 < row["prob_above_benchmark"] < 0.8, (r.measure.key, row["prob_above_benchmark"])
 
 
@@ -163,14 +214,23 @@ def test_units_on_their_own_data_have_a_ratio_close_to_their_published_oe(skewed
     for r in skewed:
         t = r.table[(r.table["status"] == "reported") & (r.table["own_weight"] >= 0.9)]
         if r.casemix.family == "lognormal":
-            # A log-normal fit estimates a unit's mean from its log-scale mean, a different (more efficient)
-            # estimator than the arithmetic O/E: with 50 patients and sigma 0.6 the two differ by sampling
-            # noise of about 0.08 on the log scale whatever the benchmark. Only large units must agree.
+            # A log-normal fit estimates a unit's mean from its log-scale mean, a different (more
+            # efficient)
+            # estimator than the arithmetic O/E: with 50 patients and sigma 0.6 the two differ by
+            # sampling
+            # noise of about 0.08 on the log scale whatever the benchmark. Only large units must
+            # agree.
             t = t[t["cases"] >= 1000]
         assert len(t) >= 5, r.measure.key
         gap = np.abs(np.log(t["ratio_median"]) - np.log(t["oe_ratio"]))
-        print(f"{r.measure.key}: {len(t)} units with weight >= 0.9, largest |log ratio - log O/E| {gap.max():.4f}")
-        assert gap.max() <= 0.03, (r.measure.key, t.assign(gap=gap)[["unit_id", "oe_ratio", "ratio_median", "gap"]])
+        print(
+            f"{r.measure.key}: {len(t)} units with weight >= 0.9, largest |log ratio - log "
+            f"O/E| {gap.max():.4f}"
+        )
+        assert gap.max() <= 0.03, (
+            r.measure.key,
+            t.assign(gap=gap)[["unit_id", "oe_ratio", "ratio_median", "gap"]],
+        )
 
 
 def test_every_number_of_a_row_uses_the_same_benchmark(skewed):
@@ -178,19 +238,30 @@ def test_every_number_of_a_row_uses_the_same_benchmark(skewed):
         t = r.table[r.table["status"] == "reported"]
         assert np.allclose(t["rsr_median"], t["ratio_median"] * r.benchmark, rtol=1e-9)
         assert np.allclose(t["rsr_lower"], t["ratio_lower"] * r.benchmark, rtol=1e-9)
-        # expected counts add up to the benchmark's total over the whole network (calibration-in-the-large)
+        # expected counts add up to the benchmark's total over the whole network
+        # (calibration-in-the-large)
         total = r.table["expected"].sum()
         assert total == pytest.approx(r.benchmark * r.casemix.patients, rel=1e-6)
-        # a unit with its whole interval above the benchmark is above it in probability too, and vice versa
+        # a unit with its whole interval above the benchmark is above it in probability too, and
+        # vice versa
         above = t["rsr_lower"] > r.benchmark
-        assert (t.loc[above, "prob_above_benchmark"] > 0.95).all() and (t.loc[t["rsr_upper"] < r.benchmark, "prob_below_benchmark"] > 0.95).all()
+        assert (t.loc[above, "prob_above_benchmark"] > 0.95).all() and (
+            t.loc[t["rsr_upper"] < r.benchmark, "prob_below_benchmark"] > 0.95
+        ).all()
 
 
 def test_with_no_risk_factors_the_adjusted_rate_is_the_units_own_posterior_rate():
     # casemix = "1": every offset is the benchmark's intercept logit(R); the adjusted rate must be
-    # expit(logit(R) + mu + u_i) itself, with no rescaling factor (an identity, checked draw by draw).
+    # expit(logit(R) + mu + u_i) itself, with no rescaling factor (an identity, checked draw by
+    # draw).
     rate = 0.13
-    cells = Cells(unit=np.array([0, 1]), offset=np.full(2, logit(rate)), n=np.array([40.0, 900.0]), r=np.array([3.0, 120.0]), n_units=2)
+    cells = Cells(
+        unit=np.array([0, 1]),
+        offset=np.full(2, logit(rate)),
+        n=np.array([40.0, 900.0]),
+        r=np.array([3.0, 120.0]),
+        n_units=2,
+    )
     mu, u = np.array([-0.3, 0.1, 0.4]), np.array([[0.2, -0.1], [0.0, 0.5], [-0.6, 0.3]])
     draws = unit_draws(cells, {"mu": mu, "u": u, "tau": np.ones(3)})
     assert np.allclose(draws.ratio * rate, expit(logit(rate) + mu[:, None] + u), rtol=1e-12)

@@ -22,12 +22,27 @@ pytestmark = [pytest.mark.slow, pytest.mark.browser]
 
 CHROMIUM = shutil.which("chromium") or "/usr/bin/chromium"
 AXE = Path(__file__).parents[1] / "node_modules" / "axe-core" / "axe.min.js"
-ARGS = ["--no-sandbox", "--disable-gpu", "--disable-background-networking", "--disable-component-update", "--no-first-run"]
+ARGS = [
+    "--no-sandbox",
+    "--disable-gpu",
+    "--disable-background-networking",
+    "--disable-component-update",
+    "--no-first-run",
+]
 # One page of each kind; axe-core runs on each.
 KINDS = {
-    "home": "index.html", "units": "units.html", "guide": "guide.html", "measure": "measures/readmit30.html",
-    "continuous measure": "measures/stay.html", "unit profile": "units/mv01.html", "model report": "models/readmit30.html",
-    "changes": "changes.html", "methods": "methods.html", "cautions": "cautions.html", "downloads": "downloads.html", "search": "search.html",
+    "home": "index.html",
+    "units": "units.html",
+    "guide": "guide.html",
+    "measure": "measures/readmit30.html",
+    "continuous measure": "measures/stay.html",
+    "unit profile": "units/mv01.html",
+    "model report": "models/readmit30.html",
+    "changes": "changes.html",
+    "methods": "methods.html",
+    "cautions": "cautions.html",
+    "downloads": "downloads.html",
+    "search": "search.html",
 }
 
 
@@ -39,7 +54,9 @@ class _Quiet(http.server.SimpleHTTPRequestHandler):
 @pytest.fixture(scope="module")
 def served(demo_cycle):
     _, _, site = demo_cycle
-    server = http.server.ThreadingHTTPServer(("127.0.0.1", 0), functools.partial(_Quiet, directory=str(site)))
+    server = http.server.ThreadingHTTPServer(
+        ("127.0.0.1", 0), functools.partial(_Quiet, directory=str(site))
+    )
     threading.Thread(target=server.serve_forever, daemon=True).start()
     yield f"http://127.0.0.1:{server.server_address[1]}/", site
     server.shutdown()
@@ -49,7 +66,9 @@ def served(demo_cycle):
 def browser():
     from playwright.sync_api import sync_playwright
 
-    assert Path(CHROMIUM).exists(), "chromium is not installed: run tests/setup.sh (apt-get install chromium)"
+    assert Path(CHROMIUM).exists(), (
+        "chromium is not installed: run tests/setup.sh (apt-get install chromium)"
+    )
     with sync_playwright() as p:
         b = p.chromium.launch(executable_path=CHROMIUM, args=ARGS)
         yield b
@@ -59,10 +78,15 @@ def browser():
 def _page(browser, **context):
     page = browser.new_context(**context).new_page()
     page.errors = []  # console errors, page errors and failed requests, in order
-    page.on("console", lambda m: page.errors.append(f"console: {m.text}") if m.type == "error" else None)
+    page.on(
+        "console", lambda m: page.errors.append(f"console: {m.text}") if m.type == "error" else None
+    )
     page.on("pageerror", lambda e: page.errors.append(f"page error: {e}"))
     page.on("requestfailed", lambda r: page.errors.append(f"failed: {r.url}"))
-    page.on("response", lambda r: page.errors.append(f"HTTP {r.status}: {r.url}") if r.status >= 400 else None)
+    page.on(
+        "response",
+        lambda r: page.errors.append(f"HTTP {r.status}: {r.url}") if r.status >= 400 else None,
+    )
     return page
 
 
@@ -99,7 +123,9 @@ def test_home_table_sorts_filters_and_leads_to_a_unit(served, browser):
     page.locator("#unit-table-filter").fill("")
     page.locator("#unit-table-filter-group").select_option("Stands out as worse")
     shown = page.locator("#unit-table tbody tr:not([hidden])")
-    assert 0 < shown.count() < n and all("Stands out as worse" in shown.nth(i).inner_text() for i in range(shown.count()))
+    assert 0 < shown.count() < n and all(
+        "Stands out as worse" in shown.nth(i).inner_text() for i in range(shown.count())
+    )
     # follow a link to the unit's profile
     name = shown.nth(0).locator("td a").first.inner_text()
     shown.nth(0).locator("td a").first.click()
@@ -117,20 +143,30 @@ def test_every_page_loads_with_images_and_no_errors_and_no_broken_links(served, 
         rel = queue.popleft()
         response = page.goto(base + rel)
         assert response is not None and response.ok, rel
-        images = page.eval_on_selector_all("img", "els => els.map(e => [e.getAttribute('src'), e.complete && e.naturalWidth > 0])")
+        images = page.eval_on_selector_all(
+            "img", "els => els.map(e => [e.getAttribute('src'), e.complete && e.naturalWidth > 0])"
+        )
         for src, loaded in images:
             if not loaded:
                 page.locator(f'img[src="{src}"]').scroll_into_view_if_needed()
-                page.wait_for_function("s => { const i = document.querySelector(`img[src=\"${s}\"]`); return i.complete; }", arg=src)
+                page.wait_for_function(
+                    's => { const i = document.querySelector(`img[src="${s}"]`); return '
+                    "i.complete; }",
+                    arg=src,
+                )
                 loaded = page.eval_on_selector(f'img[src="{src}"]', "e => e.naturalWidth > 0")
             assert loaded, f"{rel}: image {src} did not load"
-        links = page.eval_on_selector_all("a[href], link[href], script[src]", "els => els.map(e => e.href || e.src)")
+        links = page.eval_on_selector_all(
+            "a[href], link[href], script[src]", "els => els.map(e => e.href || e.src)"
+        )
         for url in links:
             parsed = urlparse(url)
             if not url.startswith(base):
-                assert parsed.scheme in ("http", "https", "mailto") and not url.startswith("http://127.0.0.1"), url
+                assert parsed.scheme in ("http", "https", "mailto") and not url.startswith(
+                    "http://127.0.0.1"
+                ), url
                 continue
-            target = parsed.path[len(urlparse(base).path):]
+            target = parsed.path[len(urlparse(base).path) :]
             if not (site / target).is_file():
                 broken.append(f"{rel} -> {target}")
             elif target.endswith(".html") and target not in seen:
@@ -138,7 +174,9 @@ def test_every_page_loads_with_images_and_no_errors_and_no_broken_links(served, 
                 queue.append(target)
     assert broken == []
     assert page.errors == [], page.errors[:5]
-    on_disk = {p.relative_to(site).as_posix() for p in site.rglob("*.html") if "_source" not in p.parts}
+    on_disk = {
+        p.relative_to(site).as_posix() for p in site.rglob("*.html") if "_source" not in p.parts
+    }
     assert seen == on_disk  # every page is reachable by links from the home page
 
 
@@ -146,13 +184,25 @@ def test_every_page_loads_with_images_and_no_errors_and_no_broken_links(served, 
 def test_axe_finds_no_serious_or_critical_problem(served, browser, kind):
     # axe-core (Deque, open source) WCAG 2.x rules; we fail on "serious" and "critical" impacts.
     base, _ = served
-    page = _page(browser, bypass_csp=True)  # the site's CSP rightly refuses injected scripts; axe is ours, not the site's
+    # the site's CSP rightly refuses injected scripts; axe is ours, not the site's
+    page = _page(browser, bypass_csp=True)
     page.goto(base + KINDS[kind])
     page.add_script_tag(content=AXE.read_text())
     result = page.evaluate("async () => await axe.run(document, {resultTypes: ['violations']})")
-    bad = [(v["id"], v["impact"], len(v["nodes"]), v["nodes"][0]["target"]) for v in result["violations"] if v["impact"] in ("serious", "critical")]
-    minor = [(v["id"], v["impact"]) for v in result["violations"] if v["impact"] not in ("serious", "critical")]
-    print(f"\naxe {kind}: {len(result['violations'])} violations; serious or critical: {bad}; others: {minor}")
+    bad = [
+        (v["id"], v["impact"], len(v["nodes"]), v["nodes"][0]["target"])
+        for v in result["violations"]
+        if v["impact"] in ("serious", "critical")
+    ]
+    minor = [
+        (v["id"], v["impact"])
+        for v in result["violations"]
+        if v["impact"] not in ("serious", "critical")
+    ]
+    print(
+        f"\naxe {kind}: {len(result['violations'])} violations; serious or critical: {bad}; "
+        f"others: {minor}"
+    )
     assert bad == []
     assert page.errors == []
 
@@ -164,7 +214,9 @@ def _pages_in_pdf(pdf: bytes) -> int:
 def test_unit_profiles_print_on_one_page(served, browser):
     base, site = served
     page = _page(browser)
-    longest = sorted((site / "units").glob("*.html"), key=lambda p: len(p.read_text()), reverse=True)[:3]
+    longest = sorted(
+        (site / "units").glob("*.html"), key=lambda p: len(p.read_text()), reverse=True
+    )[:3]
     for profile in longest:
         page.goto(base + "units/" + profile.name)
         page.emulate_media(media="print")

@@ -21,7 +21,10 @@ def test_input_problems_exit_2(cycle_folder, capsys):
     units, cohort = small_cohort()
     cohort.loc[0, "readmit"] = 5
     assert main(["build", str(cycle_folder(cohort=cohort))]) == 2
-    assert "column 'readmit': must be 0 or 1 for a binary measure; found 5 at row 1." in capsys.readouterr().err
+    assert (
+        "column 'readmit': must be 0 or 1 for a binary measure; found 5 at row 1."
+        in capsys.readouterr().err
+    )
 
 
 def test_strict_stops_on_warnings(cycle_folder, capsys):
@@ -41,11 +44,16 @@ def test_check_lists_problems_or_passes_without_fitting(cycle_folder, capsys):
     from .conftest import small_cohort
 
     assert main(["check", str(cycle_folder())]) == 0
-    assert "fairgauge: check passed: 6 patient rows, 2 units with cases, 2 in the unit table; 0 warning(s). Nothing was fitted." in capsys.readouterr().out
+    assert (
+        "fairgauge: check passed: 6 patient rows, 2 units with cases, 2 in the unit table; 0 "
+        "warning(s). Nothing was fitted." in capsys.readouterr().out
+    )
     units, cohort = small_cohort()
     cohort.loc[1, "unit_id"] = "zz"
     cohort.loc[2, "readmit"] = 7
     assert main(["check", str(cycle_folder(cohort=cohort))]) == 2
     err = capsys.readouterr().err
     assert "2 problem(s) in the input data; nothing was fitted:" in err
-    assert "column 'unit_id': has unit ids not in the unit table" in err and "found 7 at row 3." in err
+    assert (
+        "column 'unit_id': has unit ids not in the unit table" in err and "found 7 at row 3." in err
+    )

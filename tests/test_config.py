@@ -19,44 +19,66 @@ def test_valid_config_gets_documented_defaults(cycle_folder):
     assert config.reporting.benchmark == "network"
     assert config.inputs.unit_column == "unit_id"
     assert config.cycle.output == (config.source.parent / "site").resolve()
-    assert config.cycle.cache == config.source.parent / ".fairgauge-cache"  # defaults resolve beside the config too
+    # defaults resolve beside the config too
+    assert config.cycle.cache == config.source.parent / ".fairgauge-cache"
     assert config.cycle.history == config.source.parent / "history"
     assert config.measures[0].better == "lower"
     assert len(config.sha256) == 64
 
 
 def test_every_problem_is_reported_at_once_with_hints(tmp_path):
-    bad = BASE_CONFIG.replace('title = "Test network"\n', "").replace('renderer = "builtin"', 'renderer = "quatro"')
-    bad = bad.replace('record_column = "stay_id"', 'record_column = "stay_id"\n[reporting]\nminimum_case = 5\ninterval = 1.5')
-    bad = bad.replace("chains = 2", "chians = 2").replace('casemix = "age + C(sex)"', 'casemix = "age + C(sex)"\ntype = "binari"')
+    bad = BASE_CONFIG.replace('title = "Test network"\n', "").replace(
+        'renderer = "builtin"', 'renderer = "quatro"'
+    )
+    bad = bad.replace(
+        'record_column = "stay_id"',
+        'record_column = "stay_id"\n[reporting]\nminimum_case = 5\ninterval = 1.5',
+    )
+    bad = bad.replace("chains = 2", "chians = 2").replace(
+        'casemix = "age + C(sex)"', 'casemix = "age + C(sex)"\ntype = "binari"'
+    )
     (tmp_path / "cycle.toml").write_text(bad)
     with pytest.raises(ConfigError) as caught:
         load_config(tmp_path / "cycle.toml")  # no data files exist: the config is checked first
     found = [str(p) for p in caught.value.problems]
     assert found == [
         "cycle.title: is required (Site title shown on every page.)",
-        "cycle.renderer: must be one of 'auto', 'quarto', 'builtin'; got 'quatro' Did you mean 'quarto'?",
-        "reporting.minimum_case: unknown key. Did you mean 'minimum_cases'? Allowed: benchmark, funnel_overdispersion, grouping, grouping_probability, hide_counts_below, interval, minimum_cases.",
+        "cycle.renderer: must be one of 'auto', 'quarto', 'builtin'; got 'quatro' Did you mean "
+        "'quarto'?",
+        "reporting.minimum_case: unknown key. Did you mean 'minimum_cases'? Allowed: "
+        "benchmark, funnel_overdispersion, grouping, grouping_probability, hide_counts_below, "
+        "interval, minimum_cases.",
         "reporting.interval: must be strictly between 0.5 and 1; got 1.5",
-        "sampler.chians: unknown key. Did you mean 'chains'? Allowed: chains, cores, draws, engine, seed, target_accept, tune.",
-        "measures[0].type: 'binari' is not an outcome type fairgauge fits. Allowed: binary, continuous. Did you mean 'binary'?",
+        "sampler.chians: unknown key. Did you mean 'chains'? Allowed: chains, cores, draws, "
+        "engine, seed, target_accept, tune.",
+        "measures[0].type: 'binari' is not an outcome type fairgauge fits. Allowed: binary, "
+        "continuous. Did you mean 'binary'?",
     ]
     assert "6 problem(s) in the cycle config; no data were read" in str(caught.value)
 
 
 def test_wrong_types_unknown_sections_and_duplicate_measures(tmp_path):
-    text = BASE_CONFIG.replace("draws = 300", 'draws = "many"') + BASE_CONFIG[BASE_CONFIG.index("[[measures]]") :] + "\n[reportng]\n"
+    text = (
+        BASE_CONFIG.replace("draws = 300", 'draws = "many"')
+        + BASE_CONFIG[BASE_CONFIG.index("[[measures]]") :]
+        + "\n[reportng]\n"
+    )
     (tmp_path / "cycle.toml").write_text(text)
     with pytest.raises(ConfigError) as caught:
         load_config(tmp_path / "cycle.toml")
     found = [str(p) for p in caught.value.problems]
     assert "sampler.draws: must be a whole number; got str 'many'" in found
-    assert "reportng: unknown section. Did you mean 'reporting'? Allowed: cycle, inputs, measures, reporting, sampler, validation." in found
+    assert (
+        "reportng: unknown section. Did you mean 'reporting'? Allowed: cycle, inputs, "
+        "measures, reporting, sampler, validation." in found
+    )
     assert "measures[1].key: 'readmit' is already used by measures[0]; keys must be unique" in found
 
 
 def test_measure_key_must_be_a_safe_file_name_and_formula_rhs_only(tmp_path):
-    text = BASE_CONFIG.replace('key = "readmit"', 'key = "../escape"').replace('casemix = "age + C(sex)"', 'casemix = "readmit ~ age"')
+    text = BASE_CONFIG.replace('key = "readmit"', 'key = "../escape"').replace(
+        'casemix = "age + C(sex)"', 'casemix = "readmit ~ age"'
+    )
     (tmp_path / "cycle.toml").write_text(text)
     with pytest.raises(ConfigError) as caught:
         load_config(tmp_path / "cycle.toml")
@@ -75,4 +97,6 @@ def test_not_toml_and_missing_file(tmp_path):
 
 def test_developers_guide_lists_every_config_key():
     guide = (Path(__file__).parents[1] / "DEVELOPERS.md").read_text(encoding="utf-8")
-    assert reference_table() in guide, "regenerate the key reference in DEVELOPERS.md with pipeline.config.reference_table()"
+    assert reference_table() in guide, (
+        "regenerate the key reference in DEVELOPERS.md with pipeline.config.reference_table()"
+    )

@@ -53,12 +53,19 @@ def test_a_lone_hidden_count_is_pinned_and_two_in_wide_ranges_are_not():
 
 
 def test_small_counts_and_their_ranges():
-    assert small([60, 60, 60, 60, 60], [0, 1, 10, 11, 55], 11).tolist() == [False, True, True, False, True]
+    assert small([60, 60, 60, 60, 60], [0, 1, 10, 11, 55], 11).tolist() == [
+        False,
+        True,
+        True,
+        False,
+        True,
+    ]
     assert small([60], [60], 11).tolist() == [False]  # every patient: nobody without it to protect
     assert band(60, 3, 11) == (1, 10) and band(60, 55, 11) == (50, 59)
     # With fewer than 21 cases a low and a high small count overlap, so both get the whole span.
     assert band(15, 3, 11) == (1, 14) and band(15, 12, 11) == (1, 14)
-    for cases in range(11, 40):  # a band is never narrower than the rule itself: no range gives the count away
+    # a band is never narrower than the rule itself: no range gives the count away
+    for cases in range(11, 40):
         for observed in range(cases + 1):
             if small([cases], [observed], 11)[0]:
                 lo, hi = band(cases, observed, 11)
@@ -67,11 +74,19 @@ def test_small_counts_and_their_ranges():
 
 def _table(cases, observed, status=None):
     n = len(cases)
-    return pd.DataFrame({
-        "measure": "m", "unit_id": [f"u{i}" for i in range(n)], "status": status or ["reported"] * n,
-        "cases": cases, "observed": np.array(observed, float), "expected": np.array(observed, float) + 0.5,
-        "raw_rate": np.array(observed, float) / np.array(cases), "oe_ratio": 1.0, "own_weight": 0.5,
-    })
+    return pd.DataFrame(
+        {
+            "measure": "m",
+            "unit_id": [f"u{i}" for i in range(n)],
+            "status": status or ["reported"] * n,
+            "cases": cases,
+            "observed": np.array(observed, float),
+            "expected": np.array(observed, float) + 0.5,
+            "raw_rate": np.array(observed, float) / np.array(cases),
+            "oe_ratio": 1.0,
+            "own_weight": 0.5,
+        }
+    )
 
 
 def test_one_small_count_gets_a_protecting_count_so_the_total_gives_nothing_back():
@@ -104,7 +119,8 @@ def test_the_rule_off_shows_every_count():
 
 
 def test_a_hidden_count_worked_out_to_be_zero_needs_no_protection():
-    # The network total says the unit too small to show had no patient with the outcome: what a shown zero says.
+    # The network total says the unit too small to show had no patient with the outcome: what a
+    # shown zero says.
     t = _table([5, 100, 200], [0, 30, 40], status=["too_few", "reported", "reported"])
     hide_small_counts(t, 11, 11)
     assert t["count_status"].tolist() == ["", "shown", "shown"]

@@ -31,7 +31,10 @@ def _unit_sums(sizes: np.ndarray, *columns: np.ndarray) -> list[np.ndarray]:
 
 def _coverage(null: str, oe, rho, mean_risk=float("nan")) -> dict[str, float]:
     out = {}
-    for level, (lo, hi) in {"95": ("lower_95", "upper_95"), "998": ("lower_998", "upper_998")}.items():
+    for level, (lo, hi) in {
+        "95": ("lower_95", "upper_95"),
+        "998": ("lower_998", "upper_998"),
+    }.items():
         lower = funnel.ratio_limit(null, rho, funnel.LEVEL_OF[lo], mean_risk)
         upper = funnel.ratio_limit(null, rho, funnel.LEVEL_OF[hi], mean_risk)
         out[level] = float(np.mean((oe >= lower) & (oe <= upper)))
@@ -72,7 +75,8 @@ def test_binary_outcomes_with_mixed_patient_risks():
 @pytest.mark.parametrize("cv2", [0.3, 1.0])
 def test_continuous_outcomes(family, cv2):
     # Length-of-stay-like outcomes with patient means varying 0.4 on the log scale and a squared
-    # coefficient of variation cv2 per patient; the funnel's gamma null for O/E with V = cv2 sum mu^2.
+    # coefficient of variation cv2 per patient; the funnel's gamma null for O/E with V = cv2 sum
+    # mu^2.
     rng = np.random.default_rng(12)
     sizes = _sizes(rng)
     mu = np.exp(rng.normal(1.5, 0.4, sizes.sum()))
@@ -92,5 +96,7 @@ def test_unit_level_counts():
     observed = rng.poisson(expected)
     cov = _coverage("poisson", observed / expected, expected)
     big = expected >= 5  # below about 5 expected events a discrete count cannot reach 95% both ways
-    assert _coverage("poisson", (observed / expected)[big], expected[big])["95"] == pytest.approx(0.95, abs=0.006)
+    assert _coverage("poisson", (observed / expected)[big], expected[big])["95"] == pytest.approx(
+        0.95, abs=0.006
+    )
     assert cov["998"] == pytest.approx(0.998, abs=0.0015), cov

@@ -1,4 +1,5 @@
-"""Pages and rendering pieces: escaping, addresses, strict templates, the built-in renderer, the tool helper."""
+"""Pages and rendering pieces: escaping, addresses, strict templates, the built-in renderer, the
+tool helper."""
 
 from __future__ import annotations
 
@@ -17,16 +18,32 @@ from pipeline.render import BuiltinRenderer
 
 @pytest.mark.parametrize(
     "text",
-    ["<script>alert(1)</script>", "[click](http://example.invalid)", "**bold** _it_ `code`", "St. Mary's #1 | A&E", "a\nb"],
+    [
+        "<script>alert(1)</script>",
+        "[click](http://example.invalid)",
+        "**bold** _it_ `code`",
+        "St. Mary's #1 | A&E",
+        "a\nb",
+    ],
 )
 def test_data_text_is_shown_literally(text):
     html = MarkdownIt("commonmark").enable("table").renderInline(md(text))
-    assert "<script" not in html and "<a " not in html and "<strong>" not in html and "<em>" not in html and "<code>" not in html
-    shown = html.replace("&lt;", "<").replace("&gt;", ">").replace("&amp;", "&").replace("&quot;", '"')
+    assert (
+        "<script" not in html
+        and "<a " not in html
+        and "<strong>" not in html
+        and "<em>" not in html
+        and "<code>" not in html
+    )
+    shown = (
+        html.replace("&lt;", "<").replace("&gt;", ">").replace("&amp;", "&").replace("&quot;", '"')
+    )
     assert shown == " ".join(text.split())
 
 
-@pytest.mark.parametrize("text", ["y ~ C(age_band) + a:b", "odd `tick` and ``two``", "<b>x</b> & *y*"])
+@pytest.mark.parametrize(
+    "text", ["y ~ C(age_band) + a:b", "odd `tick` and ``two``", "<b>x</b> & *y*"]
+)
 def test_code_spans_show_formulas_without_escapes(text):
     html = MarkdownIt("commonmark").enable("table").renderInline(code(text))
     assert html.startswith("<code>") and html.endswith("</code>")
@@ -44,7 +61,11 @@ def test_slugs_are_safe_stable_and_unique():
 def test_natural_frequencies_and_chances_in_words():
     assert natural_frequency(0.142) == "about 14 in every 100 patients"
     assert natural_frequency(0.014) == "about 14 in every 1,000 patients"
-    assert chance(0.004) == "less than 1%" and chance(0.9996) == "more than 99%" and chance(0.5) == "50%"
+    assert (
+        chance(0.004) == "less than 1%"
+        and chance(0.9996) == "more than 99%"
+        and chance(0.5) == "50%"
+    )
 
 
 def test_templates_fail_loudly_on_a_missing_value():
@@ -54,34 +75,48 @@ def test_templates_fail_loudly_on_a_missing_value():
 
 def test_builtin_renderer_turns_callouts_links_and_tables_into_html(tmp_path):
     (tmp_path / "_quarto.yml").write_text(
-        'project:\n  render: ["index.qmd", "sub/page.qmd"]\nwebsite:\n  title: "T"\n  page-footer:\n    left: "F"\n'
+        'project:\n  render: ["index.qmd", "sub/page.qmd"]\nwebsite:\n  title: "T"\n  '
+        'page-footer:\n    left: "F"\n'
         '  navbar:\n    left:\n      - href: index.qmd\n        text: "Home \\\\(A&amp;E\\\\)"\n'
     )
-    (tmp_path / "index.qmd").write_text('---\ntitle: "Home"\n---\n\n::: {.callout-warning title="Heed"}\nInner **text**.\n:::\n\n[next](sub/page.qmd#top)\n')
+    (tmp_path / "index.qmd").write_text(
+        '---\ntitle: "Home"\n---\n\n::: {.callout-warning title="Heed"}\nInner '
+        "**text**.\n:::\n\n[next](sub/page.qmd#top)\n"
+    )
     (tmp_path / "sub").mkdir()
-    (tmp_path / "sub" / "page.qmd").write_text('---\ntitle: "A \\\\<b\\\\>"\n---\n\n| a | b |\n|:--|--:|\n| 1 | 2 |\n')
+    (tmp_path / "sub" / "page.qmd").write_text(
+        '---\ntitle: "A \\\\<b\\\\>"\n---\n\n| a | b |\n|:--|--:|\n| 1 | 2 |\n'
+    )
     out = tmp_path / "out"
     out.mkdir()
     BuiltinRenderer(tmp_path).render(out)
     index = (out / "index.html").read_text()
-    assert '<aside class="callout callout-warning" role="note"><p class="callout-title">Heed</p><p>Inner <strong>text</strong>.</p>' in index
+    assert (
+        '<aside class="callout callout-warning" role="note"><p '
+        'class="callout-title">Heed</p><p>Inner <strong>text</strong>.</p>' in index
+    )
     assert 'href="sub/page.html#top"' in index
     page = (out / "sub" / "page.html").read_text()
     assert 'href="../index.html"' in page and 'href="../assets/fairgauge.css"' in page
     assert "<h1>A &lt;b&gt;</h1>" in page and "<title>A &lt;b&gt; · T</title>" in page
     assert '<a href="../index.html">Home (A&amp;E)</a>' in page
-    assert '<td class="fg-right">2</td>' in page and "style=" not in page  # the CSP allows no inline styles
-    assert 'href="../index.html" aria-current="page"' not in page and 'href="index.html" aria-current="page"' in index
+    # the CSP allows no inline styles
+    assert '<td class="fg-right">2</td>' in page and "style=" not in page
+    assert (
+        'href="../index.html" aria-current="page"' not in page
+        and 'href="index.html" aria-current="page"' in index
+    )
 
 
 def test_builtin_renderer_makes_figures_details_and_divs_like_quarto(tmp_path):
     (tmp_path / "_quarto.yml").write_text(
         'project:\n  render: ["index.qmd"]\nwebsite:\n  title: "T"\n  site-url: "https://example.org/x/"\n'
-        '  page-footer:\n    left: "F"\n  navbar:\n    left:\n      - href: index.qmd\n        text: "Home"\n'
+        '  page-footer:\n    left: "F"\n  navbar:\n    left:\n      - href: index.qmd\n        '
+        'text: "Home"\n'
     )
     (tmp_path / "index.qmd").write_text(
         '---\ntitle: "Home"\ndescription: "About <this>"\n---\n\n'
-        '::: {#box .fg-sortable}\n| a |\n|:--|\n| 1 |\n:::\n\n'
+        "::: {#box .fg-sortable}\n| a |\n|:--|\n| 1 |\n:::\n\n"
         '![Short *caption*.](figures/a.svg){fig-alt="Long alt with <tags> & 3 numbers"}\n\n'
         '::: {.callout-note collapse="true" title="The numbers"}\nHidden **table**.\n:::\n'
     )
@@ -90,9 +125,15 @@ def test_builtin_renderer_makes_figures_details_and_divs_like_quarto(tmp_path):
     BuiltinRenderer(tmp_path).render(out)
     index = (out / "index.html").read_text()
     assert '<div id="box" class="fg-sortable"><table>' in index
-    assert ('<figure><img src="figures/a.svg" alt="Long alt with &lt;tags&gt; &amp; 3 numbers" loading="lazy">'
-            "<figcaption>Short <em>caption</em>.</figcaption></figure>") in index
-    assert '<details class="callout callout-note"><summary class="callout-title">The numbers</summary><p>Hidden <strong>table</strong>.</p>' in index
+    assert (
+        '<figure><img src="figures/a.svg" alt="Long alt with &lt;tags&gt; &amp; 3 numbers" '
+        'loading="lazy">'
+        "<figcaption>Short <em>caption</em>.</figcaption></figure>"
+    ) in index
+    assert (
+        '<details class="callout callout-note"><summary class="callout-title">The '
+        "numbers</summary><p>Hidden <strong>table</strong>.</p>" in index
+    )
     assert '<meta name="description" content="About &lt;this&gt;">' in index
     assert '<link rel="canonical" href="https://example.org/x/index.html">' in index
     search = (out / "search.html").read_text()
@@ -136,13 +177,18 @@ def test_history_keeps_each_units_address(tmp_path):
 
 
 def test_templates_place_figures_by_their_kind_never_by_their_file_name():
-    """A unit or measure whose address contains "position-" or "funnel-" must not move a chart under another heading."""
+    """A unit or measure whose address contains "position-" or "funnel-" must not move a chart under
+    another heading."""
     import pandas as pd
 
     from pipeline import captions, templates_path
 
     for template in sorted((templates_path() / "qmd").glob("*.j2")):
         assert not re.search(r"in f\.src", template.read_text()), template.name
-    data = pd.DataFrame({"measure": ["M"], "period": ["P"], "order": [0], "value": [1.0], "lo": [0.5], "hi": [1.5]})
-    trend = captions.trend("figures/trend-unit-position-x.svg", data, "Unit position-x", lambda s: s)
+    data = pd.DataFrame(
+        {"measure": ["M"], "period": ["P"], "order": [0], "value": [1.0], "lo": [0.5], "hi": [1.5]}
+    )
+    trend = captions.trend(
+        "figures/trend-unit-position-x.svg", data, "Unit position-x", lambda s: s
+    )
     assert trend.kind == "trend"

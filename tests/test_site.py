@@ -1,4 +1,5 @@
-"""The demo site as readers get it: reading level, figures with words and numbers, contrast, Quarto features.
+"""The demo site as readers get it: reading level, figures with words and numbers, contrast, Quarto
+features.
 
 Uses the session's real demo cycle (``demo_cycle`` in conftest.py). Browser checks are in
 ``test_browser.py``.
@@ -38,7 +39,8 @@ def test_every_public_page_reads_at_grade_8_or_below(demo_cycle):
         rel = page.relative_to(site).as_posix()
         html = page.read_text()
         if EXEMPT.match(rel):
-            assert "not held to the reading level of the rest of the site" in html, rel  # labelled as exempt
+            # labelled as exempt
+            assert "not held to the reading level of the rest of the site" in html, rel
             continue
         counts = readability.page_level(html)
         assert counts.words > 10, rel
@@ -46,7 +48,10 @@ def test_every_public_page_reads_at_grade_8_or_below(demo_cycle):
         if grade > worst.get(page_kind(rel), (-99, ""))[0]:
             worst[page_kind(rel)] = (grade, rel)
         assert grade <= readability.GRADE_LIMIT, f"{rel} reads at grade {grade:.1f}"
-    print("\nworst reading grade per page kind:", {k: f"{g:.1f} ({r})" for k, (g, r) in sorted(worst.items())})
+    print(
+        "\nworst reading grade per page kind:",
+        {k: f"{g:.1f} ({r})" for k, (g, r) in sorted(worst.items())},
+    )
 
 
 def test_methods_page_keeps_its_appendix_apart_and_labelled(demo_cycle):
@@ -59,7 +64,8 @@ def test_methods_page_keeps_its_appendix_apart_and_labelled(demo_cycle):
 
 
 class _Figures(HTMLParser):
-    """Each <figure>: its img attributes, and whether a table follows inside the same .fg-figure block."""
+    """Each <figure>: its img attributes, and whether a table follows inside the same .fg-figure
+    block."""
 
     def __init__(self):
         super().__init__()
@@ -109,10 +115,15 @@ def test_every_figure_has_alt_text_from_its_data_and_a_table_beside_it(demo_cycl
             if block["png"]:
                 assert (page.parent / block["png"]).is_file()
             seen += 1
-    # per measure: intervals, funnel, movement; per model: ROC (binary, fitted) and calibration; per unit: position
+    # per measure: intervals, funnel, movement; per model: ROC (binary, fitted) and calibration; per
+    # unit: position
     assert seen >= 3 * len(summary.measures) + summary.units
     readmit = (site / "measures" / "readmit30.html").read_text()
-    assert "Funnel plot of" in readmit and "99.8% control limits" in readmit and "outside the outer (99.8%) limits" in readmit
+    assert (
+        "Funnel plot of" in readmit
+        and "99.8% control limits" in readmit
+        and "outside the outer (99.8%) limits" in readmit
+    )
     assert "From raw to adjusted" in readmit and 'href="../figures/funnel-readmit30.png"' in readmit
 
 
@@ -124,16 +135,32 @@ def test_site_colours_pass_wcag_aa():
     # WCAG 2.1 AA (W3C): 4.5:1 for text, 3:1 for graphics and large text.
     css = (Path(__file__).parents[1] / "templates" / "static" / "fairgauge.css").read_text()
     c = _css_colours(css)
-    text_pairs = [("ink", "paper"), ("muted", "paper"), ("link", "paper"), ("ink", "zebra"), ("link", "zebra"), ("muted", "zebra"),
-                  ("band-ink", "band"), ("ink", "warn-bg"), ("link", "warn-bg"), ("ink", "note-bg"), ("link", "note-bg")]
+    text_pairs = [
+        ("ink", "paper"),
+        ("muted", "paper"),
+        ("link", "paper"),
+        ("ink", "zebra"),
+        ("link", "zebra"),
+        ("muted", "zebra"),
+        ("band-ink", "band"),
+        ("ink", "warn-bg"),
+        ("link", "warn-bg"),
+        ("ink", "note-bg"),
+        ("link", "note-bg"),
+    ]
     for fg, bg in text_pairs:
-        assert contrast.ratio(c[fg], c[bg]) >= contrast.TEXT_MIN, (fg, bg, contrast.ratio(c[fg], c[bg]))
+        assert contrast.ratio(c[fg], c[bg]) >= contrast.TEXT_MIN, (
+            fg,
+            bg,
+            contrast.ratio(c[fg], c[bg]),
+        )
     for edge in ("warn-edge", "note-edge", "focus"):
         assert contrast.ratio(c[edge], c["paper"]) >= contrast.GRAPHICS_MIN, edge
     for name, (colour, _) in figures.GROUP_MARKS.items():
         for background in ("#FFFFFF", figures.BAND_FILL):
             assert contrast.ratio(colour, background) >= contrast.GRAPHICS_MIN, (name, background)
-    assert len({m for _, m in figures.GROUP_MARKS.values()}) == 3  # groups differ by shape too, not colour alone
+    # groups differ by shape too, not colour alone
+    assert len({m for _, m in figures.GROUP_MARKS.values()}) == 3
 
 
 def test_quarto_project_uses_the_website_features(demo_cycle):
@@ -142,7 +169,11 @@ def test_quarto_project_uses_the_website_features(demo_cycle):
     config = yaml.safe_load((project / "_quarto.yml").read_text())
     website = config["website"]
     assert website["search"] and website["site-url"] == "https://example.org/invented-network/"
-    assert website["navbar"]["left"] and website["description"] and website["favicon"] == "assets/favicon.svg"
+    assert (
+        website["navbar"]["left"]
+        and website["description"]
+        and website["favicon"] == "assets/favicon.svg"
+    )
     assert any(i.get("href") == "guide.qmd" for i in website["navbar"]["left"])
     for qmd in config["project"]["render"]:
         text = (project / qmd).read_text()

@@ -21,6 +21,11 @@ unit = np.repeat(np.arange(units), size)
 x = rng.normal(rng.normal(0, 0.4, units)[unit], 1.0).round(1)
 effect = -0.3 * (np.log(size) - np.log(size).mean()) + rng.normal(0, 0.3, units)
 y = (rng.random(len(unit)) < expit(-2.0 + 0.5 * x + effect[unit])).astype(int)
-cells = (pd.DataFrame({"unit": unit, "x": x, "y": y}).groupby(["unit", "x"]).agg(cases=("y", "size"), events=("y", "sum")).reset_index())
+cells = (
+    pd.DataFrame({"unit": unit, "x": x, "y": y})
+    .groupby(["unit", "x"])
+    .agg(cases=("y", "size"), events=("y", "sum"))
+    .reset_index()
+)
 cells["log_cases"] = np.log(size)[cells["unit"]]
 cells.to_csv(Path(__file__).with_name("volume_network.csv"), index=False, float_format="%.10g")
