@@ -20,9 +20,9 @@ import numpy as np
 import pandas as pd
 from scipy.special import expit
 
-from pipeline.casemix import fit_with_design
+from pipeline.casemix.model import fit_with_design
+from pipeline.casemix.validation import validate
 from pipeline.config import MeasureSection
-from pipeline.validation import validate
 
 TARGET_SECONDS, TARGET_GIB = 60.0, 4.0
 

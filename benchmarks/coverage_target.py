@@ -28,12 +28,12 @@ import numpy as np
 import pandas as pd
 from scipy.special import expit
 
-from pipeline.benchmark import benchmark_offset
-from pipeline.casemix import fit_with_design
+from pipeline.casemix.benchmark import benchmark_offset
+from pipeline.casemix.model import fit_with_design
 from pipeline.config import MeasureSection, SamplerSection
-from pipeline.sampling import Sampler
-from pipeline.shrinkage import Cells, ShrinkageSpec, unit_draws
-from pipeline.targets import design
+from pipeline.inputs.targets import design
+from pipeline.shrinkage.model import Cells, ShrinkageSpec, unit_draws
+from pipeline.shrinkage.sampling import Sampler
 
 SMALL = 150
 WORSE = 1.25

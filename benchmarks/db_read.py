@@ -34,7 +34,7 @@ import json, os, resource, sys, time
 which, conninfo, url = sys.argv[1], sys.argv[2], sys.argv[3]
 start = time.perf_counter()
 if which == "fairgauge":
-    from pipeline.warehouse import read_query
+    from pipeline.inputs.warehouse import read_query
     ids = ("unit_id", "stay_id")
     frame, origin = read_query(conninfo, "cohort", "cohort", 600, text_columns=ids)
 else:

@@ -30,11 +30,11 @@ import numpy as np
 import pandas as pd
 from scipy.special import expit
 
-from pipeline.casemix import fit_with_design
+from pipeline.casemix.model import fit_with_design
 from pipeline.config import MeasureSection, SamplerSection
 from pipeline.external import find_tool, run_tool
-from pipeline.sampling import Sampler
-from pipeline.shrinkage import Cells, ShrinkageSpec, unit_draws
+from pipeline.shrinkage.model import Cells, ShrinkageSpec, unit_draws
+from pipeline.shrinkage.sampling import Sampler
 
 R_SCRIPT = r"""
 args <- commandArgs(trailingOnly = TRUE)
@@ -135,7 +135,7 @@ def main() -> None:
         f"risk coefficient x1 {fit.coefficients['estimate'].iloc[0]:.4f} (true 0.5)"
     )
     # The series against the exact per-patient likelihood on a 100,000-patient subset (curves.py).
-    from pipeline.curves import build_curves, max_error
+    from pipeline.shrinkage.curves import build_curves, max_error
 
     subset = np.sort(np.random.default_rng(0).choice(len(y), 100_000, replace=False))
     ones, offset = np.ones(len(subset)), (fit.intercept + fit.linear)[subset]

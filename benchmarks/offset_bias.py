@@ -25,10 +25,10 @@ import numpy as np
 import pandas as pd
 from scipy.special import expit
 
-from pipeline.casemix import fit_casemix
+from pipeline.casemix.model import fit_casemix
 from pipeline.config import MeasureSection, SamplerSection
-from pipeline.sampling import Sampler
-from pipeline.shrinkage import Cells, ShrinkageSpec, unit_draws
+from pipeline.shrinkage.model import Cells, ShrinkageSpec, unit_draws
+from pipeline.shrinkage.sampling import Sampler
 
 warnings.filterwarnings("ignore")
 MEASURE = MeasureSection(key="sim", name="sim", definition="sim", outcome="y", casemix="x + z")

@@ -25,12 +25,14 @@ from pathlib import Path
 
 from pipeline.cache import Cache
 from pipeline.config import load_config
-from pipeline.cycle import SilentReporter, about, build_site, fit_measures
-from pipeline.data import load_cohort
+from pipeline.cycle import about, build_site
 from pipeline.demo import write_demo
+from pipeline.fitting import fit_measures
 from pipeline.history import past_cycles
-from pipeline.render import Renderer
+from pipeline.inputs.data import load_cohort
+from pipeline.progress import SilentReporter
 from pipeline.results import public_table
+from pipeline.website.render import Renderer
 
 ROOT = Path(__file__).resolve().parents[1]
 OUT = ROOT / "benchmarks" / "out" / "site-render"

@@ -20,7 +20,7 @@ from importlib import metadata
 from pathlib import Path
 from typing import Any
 
-from . import __version__
+from pipeline import __version__
 
 _LIBRARIES = ("numpy", "pandas", "statsmodels", "pymc", "nutpie", "arviz", "plotnine", "matplotlib")
 
@@ -39,15 +39,16 @@ def _versions() -> tuple:
 # Modules whose code decides the fitted numbers: their source and their upper-case constants are
 # part of every fit key, so an upgrade or a changed setting never reuses a stale fit.
 FITTING_MODULES = (
-    "benchmark",
-    "casemix",
-    "curves",
+    "casemix.benchmark",
+    "casemix.model",
+    "casemix.validation",
     "cycle",
-    "data",
-    "sampling",
-    "shrinkage",
-    "targets",
-    "validation",
+    "fitting",
+    "inputs.data",
+    "inputs.targets",
+    "shrinkage.curves",
+    "shrinkage.model",
+    "shrinkage.sampling",
 )
 
 

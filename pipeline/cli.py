@@ -10,8 +10,8 @@ import sys
 import time
 from pathlib import Path
 
-from . import __version__
-from .errors import FairgaugeError
+from pipeline import __version__
+from pipeline.errors import FairgaugeError
 
 
 class ConsoleReporter:
@@ -92,7 +92,7 @@ def _summary(summary, reporter: ConsoleReporter) -> None:
 def hidden_values(config, cohort) -> list[str]:
     """Per measure, how many values the disclosure rules will hide (before patients with missing
     risk factors are left out)."""
-    from .disclosure import planned
+    from pipeline.disclosure import planned
 
     lines = []
     for m in config.measures:
@@ -122,11 +122,11 @@ def main(argv: list[str] | None = None) -> int:
     args = _parser().parse_args(argv)
     reporter = ConsoleReporter()
     try:
-        from .config import load_config
-        from .cycle import run_cycle
+        from pipeline.config import load_config
+        from pipeline.cycle import run_cycle
 
         if args.command == "check":
-            from .data import load_cohort
+            from pipeline.inputs.data import load_cohort
 
             config = load_config(args.config)
             cohort = load_cohort(config)
@@ -145,7 +145,7 @@ def main(argv: list[str] | None = None) -> int:
                 print(f"fairgauge: {line}")
             return 0
         if args.command == "demo":
-            from .demo import write_demo
+            from pipeline.demo import write_demo
 
             reporter.stage(
                 f"inventing a network of {args.units} units in {args.folder}/ (all data made up)"

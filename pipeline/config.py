@@ -19,7 +19,7 @@ from dataclasses import MISSING, dataclass, field, fields, replace
 from pathlib import Path
 from typing import Any, Literal
 
-from .errors import ConfigError, Problem
+from pipeline.errors import ConfigError, Problem
 
 Check = Callable[[Any], "str | None"]
 
@@ -631,7 +631,7 @@ def _check_measures(measures: list[MeasureSection], problems: list[Problem]) -> 
                 )
         if m.social_risk:
             try:
-                from .data import formula_variables
+                from pipeline.inputs.data import formula_variables
 
                 used = formula_variables(m.casemix)
             except ValueError:

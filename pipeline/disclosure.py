@@ -31,7 +31,7 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 
-from .errors import InputError, Problem
+from pipeline.errors import InputError, Problem
 
 COUNT_STATUS = {
     "shown": "Shown",

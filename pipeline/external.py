@@ -10,7 +10,7 @@ import shutil
 import subprocess
 from pathlib import Path
 
-from .errors import ToolError
+from pipeline.errors import ToolError
 
 
 def find_tool(name: str) -> str | None:

@@ -20,8 +20,8 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from .errors import RenderError
-from .results import MeasureResult
+from pipeline.errors import RenderError
+from pipeline.results import MeasureResult
 
 # Words for a change between cycles, by the posterior probability that the rate is higher now.
 CHANGE_WORDS = (

@@ -13,14 +13,14 @@ from dataclasses import dataclass, replace
 import numpy as np
 import pandas as pd
 
-from .benchmark import reference_rate
-from .casemix import CaseMixFit
-from .config import CycleConfig, MeasureSection
-from .disclosure import hide_small_counts, protect_units
-from .sampling import Diagnostics
-from .shrinkage import UnitDraws, thin
-from .targets import TargetDesign
-from .validation import Validation
+from pipeline.casemix.benchmark import reference_rate
+from pipeline.casemix.model import CaseMixFit
+from pipeline.casemix.validation import Validation
+from pipeline.config import CycleConfig, MeasureSection
+from pipeline.disclosure import hide_small_counts, protect_units
+from pipeline.inputs.targets import TargetDesign
+from pipeline.shrinkage.model import UnitDraws, thin
+from pipeline.shrinkage.sampling import Diagnostics
 
 # Unit states, in our own words (the key is stored; the words are shown).
 STATUS = {

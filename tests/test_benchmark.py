@@ -1,4 +1,4 @@
-"""One benchmark for every published number (pipeline/benchmark.py), checked as invariants.
+"""One benchmark for every published number (pipeline/casemix/benchmark.py), checked as invariants.
 
 Invented skewed networks: a few large units that differ from many small ones, in both directions,
 for every likelihood (binomial cells, binomial curves, gamma, log-normal, unit-level Poisson). In
@@ -17,13 +17,14 @@ import pandas as pd
 import pytest
 from scipy.special import expit, logit
 
-from pipeline.benchmark import benchmark_offset
 from pipeline.cache import Cache, code_version
-from pipeline.casemix import fit_with_design
+from pipeline.casemix.benchmark import benchmark_offset
+from pipeline.casemix.model import fit_with_design
 from pipeline.config import load_config
-from pipeline.cycle import SilentReporter, fit_measures
-from pipeline.data import load_cohort
-from pipeline.shrinkage import Cells, unit_draws
+from pipeline.fitting import fit_measures
+from pipeline.inputs.data import load_cohort
+from pipeline.progress import SilentReporter
+from pipeline.shrinkage.model import Cells, unit_draws
 
 pytestmark = pytest.mark.slow
 
@@ -268,7 +269,7 @@ def test_with_no_risk_factors_the_adjusted_rate_is_the_units_own_posterior_rate(
 
 
 def test_a_changed_fitting_constant_changes_the_fit_key(monkeypatch):
-    from pipeline import shrinkage
+    from pipeline.shrinkage import model as shrinkage
 
     before = code_version()
     monkeypatch.setattr(shrinkage, "CENTRE_BELOW", shrinkage.CENTRE_BELOW * 2)

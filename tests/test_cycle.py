@@ -17,8 +17,8 @@ import yaml
 from pipeline.config import load_config
 from pipeline.cycle import MARKER, run_cycle
 from pipeline.errors import FitError, RenderError
-from pipeline.pages import unit_slugs
-from pipeline.sampling import Diagnostics, Sampler
+from pipeline.shrinkage.sampling import Diagnostics, Sampler
+from pipeline.website.pages import unit_slugs
 
 from .conftest import demo_counts
 

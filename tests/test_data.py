@@ -10,8 +10,8 @@ import pandas as pd
 import pytest
 
 from pipeline.config import load_config
-from pipeline.data import formula_variables, load_cohort
 from pipeline.errors import InputError
+from pipeline.inputs.data import formula_variables, load_cohort
 
 from .conftest import BASE_CONFIG
 

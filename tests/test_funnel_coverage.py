@@ -15,7 +15,7 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from pipeline import funnel
+from pipeline.website import funnel
 
 K = 20_000
 

@@ -26,10 +26,10 @@ import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from pipeline.casemix import fit_with_design
+from pipeline.casemix.model import fit_with_design
 from pipeline.config import load_config
-from pipeline.data import load_cohort
 from pipeline.errors import ConfigError, FitError, InputError
+from pipeline.inputs.data import load_cohort
 
 from .conftest import BASE_CONFIG
 

@@ -12,8 +12,16 @@ from markdown_it import MarkdownIt
 
 from pipeline.errors import ToolError
 from pipeline.external import run_tool
-from pipeline.pages import chance, code, environment, md, natural_frequency, slug, unit_slugs
-from pipeline.render import BuiltinRenderer
+from pipeline.website.pages import (
+    chance,
+    code,
+    environment,
+    md,
+    natural_frequency,
+    slug,
+    unit_slugs,
+)
+from pipeline.website.render import BuiltinRenderer
 
 
 @pytest.mark.parametrize(
@@ -181,7 +189,8 @@ def test_templates_place_figures_by_their_kind_never_by_their_file_name():
     another heading."""
     import pandas as pd
 
-    from pipeline import captions, templates_path
+    from pipeline import templates_path
+    from pipeline.website import captions
 
     for template in sorted((templates_path() / "qmd").glob("*.j2")):
         assert not re.search(r"in f\.src", template.read_text()), template.name

@@ -12,7 +12,7 @@ import pandas as pd
 import pytest
 from scipy import stats
 
-from pipeline import contrast, funnel, readability
+from pipeline.website import colours, funnel, readability
 
 # --- Reading level -----------------------------------------------------------------------------
 
@@ -102,14 +102,14 @@ def test_wcag_contrast_worked_values():
     # WCAG 2.1 relative luminance and contrast ratio (W3C). [computed] #767676 on white 4.5422
     # passes
     # AA for text; #777777 on white 4.4781 fails.
-    assert contrast.ratio("#767676", "#ffffff") == pytest.approx(4.5422, abs=5e-4)
-    assert contrast.ratio("#777777", "#ffffff") == pytest.approx(4.4781, abs=5e-4)
+    assert colours.ratio("#767676", "#ffffff") == pytest.approx(4.5422, abs=5e-4)
+    assert colours.ratio("#777777", "#ffffff") == pytest.approx(4.4781, abs=5e-4)
     assert (
-        contrast.ratio("#767676", "#ffffff")
-        >= contrast.TEXT_MIN
-        > contrast.ratio("#777777", "#ffffff")
+        colours.ratio("#767676", "#ffffff")
+        >= colours.TEXT_MIN
+        > colours.ratio("#777777", "#ffffff")
     )
-    assert contrast.ratio("#000", "#fff") == pytest.approx(21.0)
+    assert colours.ratio("#000", "#fff") == pytest.approx(21.0)
 
 
 # --- Funnel limits -----------------------------------------------------------------------------

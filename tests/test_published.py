@@ -7,8 +7,8 @@ import numpy as np
 import pytest
 
 from pipeline.config import SamplerSection
-from pipeline.sampling import Sampler
-from pipeline.shrinkage import Cells, ShrinkageSpec, james_stein
+from pipeline.shrinkage.model import Cells, ShrinkageSpec, james_stein
+from pipeline.shrinkage.sampling import Sampler
 
 # Efron & Morris (1975, JASA 70:311-319; 1977 Scientific American): hits in the first 45 at-bats
 # of 18 players and their batting average over the rest of the season.

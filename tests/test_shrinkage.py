@@ -8,8 +8,8 @@ from scipy import stats
 from scipy.special import expit
 
 from pipeline.config import SamplerSection
-from pipeline.sampling import Diagnostics, Sampler, fit_failed
-from pipeline.shrinkage import Cells, ShrinkageSpec, build_model, unit_draws
+from pipeline.shrinkage.model import Cells, ShrinkageSpec, build_model, unit_draws
+from pipeline.shrinkage.sampling import Diagnostics, Sampler, fit_failed
 
 
 def test_spec_is_plain_and_printable():
@@ -46,17 +46,17 @@ def test_cells_keep_every_patient_and_event():
 def test_model_gives_the_per_patient_bernoulli_likelihood(seed, representation, monkeypatch):
     """Cells, unit curves and the parameterisation change no log-density difference (vs. scipy per
     patient, no sampling)."""
-    from pipeline.shrinkage import model_data, rough_tau, unit_estimates
+    from pipeline.shrinkage.model import model_data, rough_tau, unit_estimates
 
     unit, offset, y = _patients(seed)
     unit[:150] = 0  # one unit with many patients
     cells = Cells.from_patients(unit, offset, y, 5)
     if representation == "curves":  # force the series even though the cells are fewer here
-        monkeypatch.setattr("pipeline.shrinkage.CURVE_DEGREE", 0)
+        monkeypatch.setattr("pipeline.shrinkage.model.CURVE_DEGREE", 0)
     estimate, se = unit_estimates(ShrinkageSpec(), cells, model_data(ShrinkageSpec(), cells)[1])
     # so that both parameterisations occur here
     smallest = np.sort(se)[:2].mean() / rough_tau(estimate, se)
-    monkeypatch.setattr("pipeline.shrinkage.CENTRE_BELOW", smallest)
+    monkeypatch.setattr("pipeline.shrinkage.model.CENTRE_BELOW", smallest)
     data, built = model_data(ShrinkageSpec(), cells)
     assert ("coef" in data) == (representation == "curves")
     centred = data["centred"].astype(bool)
@@ -90,7 +90,7 @@ def test_model_gives_the_per_patient_bernoulli_likelihood(seed, representation, 
 
 
 def test_unit_curves_match_the_exact_likelihood_and_ratio():
-    from pipeline.curves import build_curves, curve_values, max_error
+    from pipeline.shrinkage.curves import build_curves, curve_values, max_error
 
     rng = np.random.default_rng(5)
     unit = np.repeat(np.arange(30), rng.integers(1, 3000, 30))
@@ -220,8 +220,8 @@ def test_tail_ess_and_energy_checks_are_named():
 
 
 def test_the_cheaper_exact_representation_is_chosen():
-    from pipeline import curves
-    from pipeline.shrinkage import CURVE_DEGREE, model_data
+    from pipeline.shrinkage import curves
+    from pipeline.shrinkage.model import CURVE_DEGREE, model_data
 
     assert CURVE_DEGREE == curves.DEGREE
     unit, offset, y = _patients()

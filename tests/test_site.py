@@ -14,7 +14,7 @@ from pathlib import Path
 import pytest
 import yaml
 
-from pipeline import contrast, figures, readability
+from pipeline.website import colours, figures, readability
 
 pytestmark = pytest.mark.slow
 
@@ -149,16 +149,16 @@ def test_site_colours_pass_wcag_aa():
         ("link", "note-bg"),
     ]
     for fg, bg in text_pairs:
-        assert contrast.ratio(c[fg], c[bg]) >= contrast.TEXT_MIN, (
+        assert colours.ratio(c[fg], c[bg]) >= colours.TEXT_MIN, (
             fg,
             bg,
-            contrast.ratio(c[fg], c[bg]),
+            colours.ratio(c[fg], c[bg]),
         )
     for edge in ("warn-edge", "note-edge", "focus"):
-        assert contrast.ratio(c[edge], c["paper"]) >= contrast.GRAPHICS_MIN, edge
+        assert colours.ratio(c[edge], c["paper"]) >= colours.GRAPHICS_MIN, edge
     for name, (colour, _) in figures.GROUP_MARKS.items():
         for background in ("#FFFFFF", figures.BAND_FILL):
-            assert contrast.ratio(colour, background) >= contrast.GRAPHICS_MIN, (name, background)
+            assert colours.ratio(colour, background) >= colours.GRAPHICS_MIN, (name, background)
     # groups differ by shape too, not colour alone
     assert len({m for _, m in figures.GROUP_MARKS.values()}) == 3
 

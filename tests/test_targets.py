@@ -7,7 +7,7 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from pipeline import targets
+from pipeline.inputs import targets
 
 
 def _units(n=40, seed=0):
@@ -117,7 +117,7 @@ def test_a_bad_predictor_stops_the_cycle_before_any_fit(cycle_folder, capsys, mo
     def no_fit(*a, **k):
         raise AssertionError("nothing may be fitted")
 
-    monkeypatch.setattr("pipeline.cycle.fit_with_design", no_fit)
+    monkeypatch.setattr("pipeline.fitting.fit_with_design", no_fit)
     config = BASE_CONFIG.replace(
         'casemix = "age + C(sex)"',
         'casemix = "age + C(sex)"\npull_towards = ["log_cases", "beds"]',
@@ -142,11 +142,11 @@ def test_predictor_coefficient_and_unit_effects_agree_with_lme4():
     to well within one standard error with this much data (tolerances below, our choice)."""
     from pathlib import Path
 
-    from pipeline.benchmark import benchmark_offset
-    from pipeline.casemix import fit_with_design
+    from pipeline.casemix.benchmark import benchmark_offset
+    from pipeline.casemix.model import fit_with_design
     from pipeline.config import MeasureSection, SamplerSection
-    from pipeline.sampling import Sampler
-    from pipeline.shrinkage import Cells, ShrinkageSpec
+    from pipeline.shrinkage.model import Cells, ShrinkageSpec
+    from pipeline.shrinkage.sampling import Sampler
 
     folder = Path(__file__).parent / "reference_data"
     cells = pd.read_csv(folder / "volume_network.csv")
@@ -200,7 +200,7 @@ def test_predictor_coefficient_and_unit_effects_agree_with_lme4():
 def test_pages_name_the_predictors_and_the_units_whose_group_depends_on_them():
     from types import SimpleNamespace
 
-    from pipeline import pages
+    from pipeline.website import pages
 
     changed = pd.DataFrame(
         {

@@ -20,11 +20,11 @@ from pathlib import Path
 import pandas as pd
 import pytest
 
-from pipeline import readability
 from pipeline.config import load_config
 from pipeline.cycle import MARKER, remove_stale_builds, run_cycle
 from pipeline.disclosure import protect_units
 from pipeline.errors import RenderError
+from pipeline.website import readability
 
 
 def _files(site: Path) -> list[Path]:
@@ -293,7 +293,7 @@ def test_wording_changes_reuse_cached_fits_but_model_changes_refit(hostile_cycle
     def sampler_called(self, cells, seed):
         raise _SamplerCalled
 
-    monkeypatch.setattr("pipeline.sampling.Sampler.run", sampler_called)
+    monkeypatch.setattr("pipeline.shrinkage.sampling.Sampler.run", sampler_called)
     config = load_config(folder / "cycle.toml")
     reworded = _with_measure(config, definition="Patients readmitted, reworded for this test.")
     start = time.perf_counter()

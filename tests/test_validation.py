@@ -10,9 +10,8 @@ import pandas as pd
 import pytest
 from scipy.special import expit
 
-from pipeline.casemix import fit_casemix, fit_with_design
-from pipeline.config import MeasureSection
-from pipeline.validation import (
+from pipeline.casemix.model import fit_casemix, fit_with_design
+from pipeline.casemix.validation import (
     binary_metrics,
     delong,
     group_table,
@@ -20,6 +19,7 @@ from pipeline.validation import (
     roc_points,
     validate,
 )
+from pipeline.config import MeasureSection
 
 BIRTHWT = Path(__file__).parent / "reference_data" / "birthwt.csv"
 

@@ -16,8 +16,8 @@ import pandas as pd
 import pytest
 
 from pipeline.config import load_config
-from pipeline.data import load_cohort
 from pipeline.errors import ConfigError, InputError
+from pipeline.inputs.data import load_cohort
 
 from .postgres_server import free_port, throwaway_server
 

@@ -290,7 +290,7 @@ def model_data(spec: ShrinkageSpec, cells: Cells) -> tuple[dict[str, np.ndarray]
         return {"n": cells.n, "r": cells.r}, None
     if spec.likelihood == "binomial" and len(cells.n) > cells.n_units * (CURVE_DEGREE + 1):
         # cheaper than the cells, and within 1e-6 of them (curves.py)
-        from .curves import build_curves
+        from pipeline.shrinkage.curves import build_curves
 
         curves = build_curves(cells.unit, cells.offset, cells.n, cells.r, cells.n_units)
         data = curves.data()
@@ -361,7 +361,7 @@ def build_model(spec: ShrinkageSpec, cells: Cells, data: dict[str, np.ndarray] |
         else:
             a = pm.Logistic("a", 0.0, 1.0, shape=cells.n_units)
         if "coef" in data:
-            from .curves import curve_loglik
+            from pipeline.shrinkage.curves import curve_loglik
 
             pm.Potential("loglik", pt.sum(curve_loglik(a, data)))
         else:

@@ -30,8 +30,8 @@ import numpy as np
 import pandas as pd
 import plotnine as p9
 
-from .cache import Cache, key
-from .results import GROUPS, MeasureResult
+from pipeline.cache import Cache, key
+from pipeline.results import GROUPS, MeasureResult
 
 matplotlib.use("Agg")
 matplotlib.rcParams.update(

@@ -17,16 +17,17 @@ from pathlib import PurePosixPath
 import jinja2
 import pandas as pd
 
-from . import captions, templates_path
-from .captions import FigureView, attr
-from .config import CycleConfig
-from .figures import axis, measure_figure_path, png_of, unit_figure_path
-from .funnel import Funnel, outside
-from .history import PastCycle, changes
-from .report import model_view
-from .results import GROUPS, POSITION, STATUS, MeasureResult
-from .sampling import K_HAT_MAX, LIMITS
-from .shrinkage import ShrinkageSpec
+from pipeline import templates_path
+from pipeline.config import CycleConfig
+from pipeline.history import PastCycle, changes
+from pipeline.results import GROUPS, POSITION, STATUS, MeasureResult
+from pipeline.shrinkage.model import ShrinkageSpec
+from pipeline.shrinkage.sampling import K_HAT_MAX, LIMITS
+from pipeline.website import captions
+from pipeline.website.captions import FigureView, attr
+from pipeline.website.figures import axis, measure_figure_path, png_of, unit_figure_path
+from pipeline.website.funnel import Funnel, outside
+from pipeline.website.model_page import model_view
 
 _MD_SPECIAL = set("\\`*_{}[]()#+-.!|~^$@:\"'")
 _ENTITIES = {"&": "&amp;", "<": "&lt;", ">": "&gt;"}

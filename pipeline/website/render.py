@@ -20,10 +20,10 @@ import yaml
 from markdown_it import MarkdownIt
 from markupsafe import Markup
 
-from . import __version__, templates_path
-from .errors import RenderError
-from .external import find_tool, run_tool
-from .readability import prose
+from pipeline import __version__, templates_path
+from pipeline.errors import RenderError
+from pipeline.external import find_tool, run_tool
+from pipeline.website.readability import prose
 
 ASSETS = ("figures", "downloads", "assets", "fairgauge-manifest.json")  # copied as they are
 

@@ -34,8 +34,8 @@ from scipy.special import expit
 from scipy.special import logit as _logit
 from scipy.stats import rankdata
 
-from .config import MeasureSection, family_of
-from .errors import FitError
+from pipeline.config import MeasureSection, family_of
+from pipeline.errors import FitError
 
 
 def logit(p):
@@ -392,7 +392,7 @@ def fit_with_design(
 ) -> tuple[CaseMixFit, np.ndarray | None, np.ndarray]:
     """:func:`fit_casemix`, also returning the design matrix (None when nothing was fitted) and the
     outcome of the rows used."""
-    from .data import formula_variables
+    from pipeline.inputs.data import formula_variables
 
     if measure.expected_column:
         fit = supplied_casemix(measure, rows, unit_codes)
@@ -510,7 +510,7 @@ def without_terms(casemix: str, variables: tuple[str, ...]) -> str:
     Terms are expanded by patsy first, so in ``age * deprivation`` only ``deprivation`` and
     ``age:deprivation`` go and ``age`` stays.
     """
-    from .data import formula_variables
+    from pipeline.inputs.data import formula_variables
 
     terms = patsy.ModelDesc.from_formula(casemix).rhs_termlist
     kept = [

@@ -33,8 +33,8 @@ from __future__ import annotations
 import numpy as np
 from scipy.special import expit
 
-from .casemix import CaseMixFit, calibrate_intercept
-from .config import MeasureSection, family_of
+from pipeline.casemix.model import CaseMixFit, calibrate_intercept
+from pipeline.config import MeasureSection, family_of
 
 
 def reference_rate(fixed: str | float, measure_type: str, network_rate: float) -> float:

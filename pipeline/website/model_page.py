@@ -11,11 +11,11 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from .captions import FigureView, attr
-from .casemix import FAMILIES
-from .figures import model_figure_path
-from .results import POSITION, MeasureResult
-from .validation import LABELS
+from pipeline.casemix.model import FAMILIES
+from pipeline.casemix.validation import LABELS
+from pipeline.results import POSITION, MeasureResult
+from pipeline.website.captions import FigureView, attr
+from pipeline.website.figures import model_figure_path
 
 BINARY_ROWS = [
     "c_statistic",

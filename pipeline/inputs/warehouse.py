@@ -26,7 +26,7 @@ from dataclasses import dataclass
 import numpy as np
 import pandas as pd
 
-from .errors import InputError, Problem
+from pipeline.errors import InputError, Problem
 
 CONNECT_TIMEOUT = 10  # seconds libpq waits for a server before giving up (connect_timeout)
 _TABLE_NAME = re.compile(r"^[A-Za-z_][A-Za-z0-9_$]*(\.[A-Za-z_][A-Za-z0-9_$]*)?$")

@@ -13,7 +13,7 @@ from dataclasses import dataclass, field
 import numpy as np
 import pandas as pd
 
-from .results import GROUPS
+from pipeline.results import GROUPS
 
 NAMES_IN_ALT = 5  # list at most this many units by name in a sentence of alt text
 

@@ -17,10 +17,10 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from .config import CycleConfig
-from .errors import InputError, Problem
-from .targets import check as check_targets
-from .warehouse import read_query
+from pipeline.config import CycleConfig
+from pipeline.errors import InputError, Problem
+from pipeline.inputs.targets import check as check_targets
+from pipeline.inputs.warehouse import read_query
 
 UNIT_TABLE_COLUMNS = ("id", "name", "kind")
 # Column names that suggest direct identifiers (common practice, no source: the usual

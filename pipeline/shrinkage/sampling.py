@@ -1,7 +1,7 @@
 """Running the shrinkage fit: sampling, diagnostics with one safer retry, and prior sensitivity.
 
-:class:`Sampler` compiles the PyMC model of a :class:`~pipeline.shrinkage.ShrinkageSpec` once per
-cycle (nutpie) and samples every measure's data with it, or uses PyMC's own NUTS. Every fit is
+:class:`Sampler` compiles the PyMC model of a :class:`~pipeline.shrinkage.model.ShrinkageSpec` once
+per cycle (nutpie) and samples every measure's data with it, or uses PyMC's own NUTS. Every fit is
 checked against ``LIMITS``; a failed fit is run once more with :func:`safer` settings and then stops
 the cycle. Prior sensitivity reweights the same draws to a narrower and a wider prior for the
 between-unit SD (Pareto-smoothed importance sampling), or refits when the weights are unreliable.
@@ -16,9 +16,9 @@ from typing import Any
 
 import numpy as np
 
-from .config import SamplerSection
-from .errors import FitError
-from .shrinkage import Cells, ShrinkageSpec, build_model, model_data
+from pipeline.config import SamplerSection
+from pipeline.errors import FitError
+from pipeline.shrinkage.model import Cells, ShrinkageSpec, build_model, model_data
 
 # Diagnostic limits (Vehtari et al. 2021, Bayesian Analysis 16:667: R-hat below 1.01 and bulk
 # and tail effective sample sizes of at least 100 per chain; divergences must be absent; an

@@ -1,0 +1,1 @@
+"""The case-mix stage: the risk model, its validation, and the one benchmark."""

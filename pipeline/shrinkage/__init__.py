@@ -1,0 +1,1 @@
+"""The shrinkage stage: the hierarchical model, unit likelihood curves, sampling."""

@@ -1,0 +1,1 @@
+"""The site stage: figures, funnel limits, words, pages and the renderers."""

@@ -1,0 +1,116 @@
+"""The shape of the code base: imports flow one way through the stages of a cycle, and modules and
+functions stay small enough to read in one go."""
+
+from __future__ import annotations
+
+import ast
+from pathlib import Path
+
+PIPELINE = Path(__file__).resolve().parents[1] / "pipeline"
+
+# Each group of modules and the groups it may import from (besides itself). The cycle reads
+# top-down: inputs -> case-mix -> shrinkage -> results -> site; the pages see results, never the
+# fitting code.
+BASE = {"pipeline", "errors", "progress", "formulas", "external", "cache"}
+GROUPS = {
+    "base": set(),
+    "config": {"base"},
+    "inputs": {"base", "config"},
+    "casemix": {"base", "config"},
+    "shrinkage": {"base", "config"},
+    "results": {"base", "config", "inputs", "casemix", "shrinkage"},
+    "fitting": {"base", "config", "inputs", "casemix", "shrinkage", "results"},
+    "website": {"base", "config", "results"},
+    "top": {"base", "config", "inputs", "casemix", "shrinkage", "results", "fitting", "website"},
+}
+TOP = {"cycle", "cli", "demo"}
+RESULTS = {"results", "disclosure", "history"}
+MODULE_LINES, FUNCTION_LINES = 400, 60
+
+
+def _modules() -> dict[str, Path]:
+    out = {}
+    for path in sorted(PIPELINE.rglob("*.py")):
+        parts = path.relative_to(PIPELINE).with_suffix("").parts
+        name = ".".join(p for p in parts if p != "__init__")
+        out[name or "pipeline"] = path
+    return out
+
+
+def _group(module: str) -> str:
+    first = module.split(".")[0]
+    if first in BASE:
+        return "base"
+    if first in RESULTS:
+        return "results"
+    if first in TOP:
+        return "top"
+    return first
+
+
+def _imports(path: Path) -> list[tuple[str, int, bool]]:
+    """(imported pipeline module, line, inside a function) for every import of fairgauge code."""
+    tree = ast.parse(path.read_text(encoding="utf-8"))
+    inner = {
+        id(node)
+        for f in ast.walk(tree)
+        if isinstance(f, ast.FunctionDef | ast.AsyncFunctionDef)
+        for node in ast.walk(f)
+    }
+    out = []
+    for node in ast.walk(tree):
+        names = []
+        if isinstance(node, ast.ImportFrom) and node.module and node.level == 0:
+            if node.module == "pipeline" or node.module.startswith("pipeline."):
+                base = node.module.removeprefix("pipeline").lstrip(".")
+                names = [f"{base}.{a.name}".lstrip(".") for a in node.names]
+                names = [n if _is_module(n) else base or "pipeline" for n in names]
+        elif isinstance(node, ast.ImportFrom) and node.level:
+            names = ["(relative import)"]
+        elif isinstance(node, ast.Import):
+            names = [
+                a.name.removeprefix("pipeline.") for a in node.names if a.name.startswith("pipeline")
+            ]
+        out += [(n, node.lineno, id(node) in inner) for n in names]
+    return out
+
+
+def _is_module(name: str) -> bool:
+    return name in _modules()
+
+
+def test_imports_flow_one_way():
+    wrong = []
+    for module, path in _modules().items():
+        mine = _group(module)
+        for imported, line, in_function in _imports(path):
+            where = f"{path.relative_to(PIPELINE.parent)}:{line}"
+            if imported == "(relative import)":
+                wrong.append(f"{where}: relative import (use the full pipeline.… name)")
+                continue
+            theirs = _group(imported)
+            if theirs != mine and theirs not in GROUPS[mine]:
+                wrong.append(f"{where}: {mine} module {module} imports {theirs} module {imported}")
+            if in_function:
+                wrong.append(f"{where}: {module} imports {imported} inside a function")
+    assert not wrong, "\n".join(wrong)
+
+
+def test_no_import_cycles():
+    graph = {
+        m: {i for i, _, _ in _imports(p) if i in _modules() and i != m}
+        for m, p in _modules().items()
+    }
+    done: set[str] = set()
+
+    def visit(node: str, trail: list[str]) -> None:
+        if node in trail:
+            raise AssertionError("import cycle: " + " -> ".join([*trail, node]))
+        if node in done:
+            return
+        for nxt in graph[node]:
+            visit(nxt, [*trail, node])
+        done.add(node)
+
+    for m in graph:
+        visit(m, [])
