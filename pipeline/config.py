@@ -20,6 +20,7 @@ from pathlib import Path
 from typing import Any, Literal
 
 from pipeline.errors import ConfigError, Problem
+from pipeline.formulas import formula_variables
 
 Check = Callable[[Any], "str | None"]
 
@@ -631,8 +632,6 @@ def _check_measures(measures: list[MeasureSection], problems: list[Problem]) -> 
                 )
         if m.social_risk:
             try:
-                from pipeline.inputs.data import formula_variables
-
                 used = formula_variables(m.casemix)
             except ValueError:
                 used = []

@@ -14,13 +14,13 @@ import numpy as np
 import pandas as pd
 
 from pipeline.casemix.benchmark import reference_rate
-from pipeline.casemix.model import CaseMixFit
-from pipeline.casemix.validation import Validation
+from pipeline.casemix.model import FAMILIES, CaseMixFit
+from pipeline.casemix.validation import LABELS, Validation
 from pipeline.config import CycleConfig, MeasureSection
 from pipeline.disclosure import hide_small_counts, protect_units
 from pipeline.inputs.targets import TargetDesign
-from pipeline.shrinkage.model import UnitDraws, thin
-from pipeline.shrinkage.sampling import Diagnostics
+from pipeline.shrinkage.model import ShrinkageSpec, UnitDraws, thin
+from pipeline.shrinkage.sampling import K_HAT_MAX, LIMITS, Diagnostics
 
 # Unit states, in our own words (the key is stored; the words are shown).
 STATUS = {
@@ -76,6 +76,21 @@ PUBLIC_COLUMNS = [
 ]
 HISTORY_DRAWS = 1000  # draws kept per unit for comparing cycles
 RANK_DRAWS = 1000  # draws used for ranks
+
+
+@dataclass(frozen=True)
+class FitSettings:
+    """How the fits are made, in the words the methods and model pages use (the site's one view of
+    the fitting code's settings)."""
+
+    sampler_checks: dict  # the convergence limits every fit must meet
+    priors: list[str]  # one line per prior of the shrinkage model
+    k_hat_max: float  # largest Pareto k-hat at which prior sensitivity reweights instead of refits
+    families: dict  # case-mix family -> (the model in words, the word for its effect ratio)
+    metric_labels: dict  # validation metric -> its label
+
+
+FIT_SETTINGS = FitSettings(LIMITS, ShrinkageSpec().describe(), K_HAT_MAX, FAMILIES, LABELS)
 
 
 @dataclass(frozen=True)

@@ -11,7 +11,8 @@ import pytest
 
 from pipeline.config import load_config
 from pipeline.errors import InputError
-from pipeline.inputs.data import formula_variables, load_cohort
+from pipeline.formulas import formula_variables
+from pipeline.inputs.data import load_cohort
 
 from .conftest import BASE_CONFIG
 

@@ -26,6 +26,13 @@ GROUPS = {
 TOP = {"cycle", "cli", "demo"}
 RESULTS = {"results", "disclosure", "history"}
 MODULE_LINES, FUNCTION_LINES = 400, 60
+# Imports inside a function, each for its import cost, never to dodge a loop (test_no_import_cycles
+# holds with them at the top).
+LAZY = {
+    "cli": "the command line answers --help and reports bad configs without loading the fitting "
+    "libraries (about 2.5 s)",
+    "shrinkage.model": "numba, which unit curves need, is loaded only by a fit that uses them",
+}
 
 
 def _modules() -> dict[str, Path]:
@@ -68,9 +75,8 @@ def _imports(path: Path) -> list[tuple[str, int, bool]]:
         elif isinstance(node, ast.ImportFrom) and node.level:
             names = ["(relative import)"]
         elif isinstance(node, ast.Import):
-            names = [
-                a.name.removeprefix("pipeline.") for a in node.names if a.name.startswith("pipeline")
-            ]
+            names = [a.name.removeprefix("pipeline.") for a in node.names]
+            names = [n for n in names if _is_module(n)]
         out += [(n, node.lineno, id(node) in inner) for n in names]
     return out
 
@@ -91,7 +97,7 @@ def test_imports_flow_one_way():
             theirs = _group(imported)
             if theirs != mine and theirs not in GROUPS[mine]:
                 wrong.append(f"{where}: {mine} module {module} imports {theirs} module {imported}")
-            if in_function:
+            if in_function and module not in LAZY:
                 wrong.append(f"{where}: {module} imports {imported} inside a function")
     assert not wrong, "\n".join(wrong)
 

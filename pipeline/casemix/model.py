@@ -36,6 +36,7 @@ from scipy.stats import rankdata
 
 from pipeline.config import MeasureSection, family_of
 from pipeline.errors import FitError
+from pipeline.formulas import formula_variables
 
 
 def logit(p):
@@ -392,8 +393,6 @@ def fit_with_design(
 ) -> tuple[CaseMixFit, np.ndarray | None, np.ndarray]:
     """:func:`fit_casemix`, also returning the design matrix (None when nothing was fitted) and the
     outcome of the rows used."""
-    from pipeline.inputs.data import formula_variables
-
     if measure.expected_column:
         fit = supplied_casemix(measure, rows, unit_codes)
         return fit, None, rows[measure.outcome].to_numpy(dtype=float)
@@ -510,8 +509,6 @@ def without_terms(casemix: str, variables: tuple[str, ...]) -> str:
     Terms are expanded by patsy first, so in ``age * deprivation`` only ``deprivation`` and
     ``age:deprivation`` go and ``age`` stays.
     """
-    from pipeline.inputs.data import formula_variables
-
     terms = patsy.ModelDesc.from_formula(casemix).rhs_termlist
     kept = [
         t

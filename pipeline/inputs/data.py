@@ -7,7 +7,6 @@ Rows are numbered from 1 = the first data row (for a CSV, file line = row + 1).
 
 from __future__ import annotations
 
-import ast
 import difflib
 import hashlib
 import re
@@ -19,6 +18,7 @@ import pandas as pd
 
 from pipeline.config import CycleConfig
 from pipeline.errors import InputError, Problem
+from pipeline.formulas import formula_variables
 from pipeline.inputs.targets import check as check_targets
 from pipeline.inputs.warehouse import read_query
 
@@ -150,25 +150,6 @@ def _rows(mask: pd.Series | np.ndarray) -> str:
     return f"row{'s' if len(positions) > 1 else ''} {shown}" + (
         f" (and {more} more)" if more > 0 else ""
     )
-
-
-def formula_variables(rhs: str) -> list[str]:
-    """Column names a patsy right-hand side uses (function names such as C or np.log excluded)."""
-    try:
-        # patsy's interaction operator ':' is not Python; any binary operator parses the same names
-        tree = ast.parse(rhs.replace("~", " ").replace(":", "*"), mode="eval")
-    except SyntaxError as exc:
-        raise ValueError(f"'{rhs}' is not a valid formula: {exc.msg}") from None
-    called = {id(n.func) for n in ast.walk(tree) if isinstance(n, ast.Call)}
-    attr_bases = {id(n.value) for n in ast.walk(tree) if isinstance(n, ast.Attribute)}
-    found = [
-        n
-        for n in ast.walk(tree)
-        if isinstance(n, ast.Name) and id(n) not in called and id(n) not in attr_bases
-    ]
-    # in the order they are written
-    names = [n.id for n in sorted(found, key=lambda n: n.col_offset)]
-    return list(dict.fromkeys(names))
 
 
 def _check_units(units: pd.DataFrame, where: str, problems: list[Problem]) -> None:

@@ -11,9 +11,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from pipeline.casemix.model import FAMILIES
-from pipeline.casemix.validation import LABELS
-from pipeline.results import POSITION, MeasureResult
+from pipeline.results import FIT_SETTINGS, POSITION, MeasureResult
 from pipeline.website.captions import FigureView, attr
 from pipeline.website.figures import model_figure_path
 
@@ -253,7 +251,9 @@ def model_view(m: MeasureResult, drawn: dict, md, code) -> ModelView:
     continuous = m.measure.type == "continuous"
     unit = md(m.measure.unit_label) if continuous else "%"
     source = fit.family if fit.family in ("supplied", "unit summary") else "fitted"
-    family, ratio_word = FAMILIES.get(fit.family, ("none: expected values were supplied", "ratio"))
+    family, ratio_word = FIT_SETTINGS.families.get(
+        fit.family, ("none: expected values were supplied", "ratio")
+    )
     extra = []
     if fit.family == "lognormal":
         extra.append(
@@ -321,7 +321,9 @@ def model_view(m: MeasureResult, drawn: dict, md, code) -> ModelView:
                     _fmt(key, inside, unit),
                     (_fmt(key, cv, unit) if v.cross_validated is not None else "not applicable"),
                 )
-            label = LABELS[key] + (" (95% interval, DeLong)" if key == "c_statistic" else "")
+            label = FIT_SETTINGS.metric_labels[key] + (
+                " (95% interval, DeLong)" if key == "c_statistic" else ""
+            )
             if key in ("sensitivity", "specificity", "ppv"):
                 label += f" ({v.threshold * 100:.1f}%)"
             rows.append({"label": label, "in_sample": shown, "cross_validated": shown_cv})

@@ -20,9 +20,7 @@ import pandas as pd
 from pipeline import templates_path
 from pipeline.config import CycleConfig
 from pipeline.history import PastCycle, changes
-from pipeline.results import GROUPS, POSITION, STATUS, MeasureResult
-from pipeline.shrinkage.model import ShrinkageSpec
-from pipeline.shrinkage.sampling import K_HAT_MAX, LIMITS
+from pipeline.results import FIT_SETTINGS, GROUPS, POSITION, STATUS, MeasureResult
 from pipeline.website import captions
 from pipeline.website.captions import FigureView, attr
 from pipeline.website.figures import axis, measure_figure_path, png_of, unit_figure_path
@@ -786,8 +784,8 @@ def render_pages(
         "site": site,
         "measures": measures,
         "units": unit_views,
-        "limits": LIMITS,
-        "priors": ShrinkageSpec().describe(),
+        "limits": FIT_SETTINGS.sampler_checks,
+        "priors": FIT_SETTINGS.priors,
         "reporting": config.reporting,
         "sampler": config.sampler,
         "validation": config.validation,
@@ -796,7 +794,7 @@ def render_pages(
         "symbols": SYMBOLS,
         "groups": GROUPS,
         "group_symbols": GROUP_SYMBOLS,
-        "k_hat_max": K_HAT_MAX,
+        "k_hat_max": FIT_SETTINGS.k_hat_max,
     }
     pages: list[tuple[str, str, dict]] = [
         ("index.qmd", "index.qmd.j2", {}),
