@@ -29,9 +29,11 @@ from pipeline.history import PastCycle, kept_addresses, past_cycles, record_cycl
 from pipeline.inputs.data import Cohort, load_cohort
 from pipeline.progress import SILENT, Reporter
 from pipeline.results import DICTIONARY, MeasureResult, public_table, results_json
-from pipeline.website.figures import MAX_FIGURE_UNITS, draw_all, plan
+from pipeline.website.addresses import unit_slugs
+from pipeline.website.drawing import draw_all, figure_jobs
+from pipeline.website.figures import MAX_FIGURE_UNITS
 from pipeline.website.funnel import for_measure
-from pipeline.website.pages import render_pages, unit_slugs
+from pipeline.website.pages import render_pages
 from pipeline.website.render import Renderer, choose_renderer, render_site
 
 # every site's provenance; only folders holding it are ever replaced
@@ -173,7 +175,9 @@ def build_site(
         # figure path (relative to the project) -> the data drawn, once drawing is done
         drawn: dict = {}
         if figures:
-            jobs = plan(results, cohort.units.index, slugs, past, funnels, config.cycle.period)
+            jobs = figure_jobs(
+                results, cohort.units.index, slugs, past, funnels, config.cycle.period
+            )
             reporter.stage(
                 f"drawing {len(jobs)} figures ({len(results)} measures, {len(cohort.units)} units)"
             )

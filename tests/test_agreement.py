@@ -17,8 +17,8 @@ import re
 import pandas as pd
 import pytest
 
+from pipeline.results import GROUPS
 from pipeline.website import readability
-from pipeline.website.pages import GROUPS
 
 from .conftest import demo_counts
 

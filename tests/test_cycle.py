@@ -18,7 +18,7 @@ from pipeline.config import load_config
 from pipeline.cycle import MARKER, run_cycle
 from pipeline.errors import FitError, RenderError
 from pipeline.shrinkage.sampling import Diagnostics, Sampler
-from pipeline.website.pages import unit_slugs
+from pipeline.website.addresses import unit_slugs
 
 from .conftest import demo_counts
 

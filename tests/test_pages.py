@@ -12,15 +12,9 @@ from markdown_it import MarkdownIt
 
 from pipeline.errors import ToolError
 from pipeline.external import run_tool
-from pipeline.website.pages import (
-    chance,
-    code,
-    environment,
-    md,
-    natural_frequency,
-    slug,
-    unit_slugs,
-)
+from pipeline.website.addresses import slug, unit_slugs
+from pipeline.website.markup import chance, code, md, natural_frequency
+from pipeline.website.pages import environment
 from pipeline.website.render import BuiltinRenderer
 
 
@@ -197,7 +191,5 @@ def test_templates_place_figures_by_their_kind_never_by_their_file_name():
     data = pd.DataFrame(
         {"measure": ["M"], "period": ["P"], "order": [0], "value": [1.0], "lo": [0.5], "hi": [1.5]}
     )
-    trend = captions.trend(
-        "figures/trend-unit-position-x.svg", data, "Unit position-x", lambda s: s
-    )
+    trend = captions.trend("figures/trend-unit-position-x.svg", data, "Unit position-x")
     assert trend.kind == "trend"

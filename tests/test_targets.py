@@ -200,7 +200,7 @@ def test_predictor_coefficient_and_unit_effects_agree_with_lme4():
 def test_pages_name_the_predictors_and_the_units_whose_group_depends_on_them():
     from types import SimpleNamespace
 
-    from pipeline.website import pages
+    from pipeline.website import markup, sentences, views
 
     changed = pd.DataFrame(
         {
@@ -246,22 +246,24 @@ def test_pages_name_the_predictors_and_the_units_whose_group_depends_on_them():
     m = SimpleNamespace(
         targets={"terms": terms, "groups": groups, "changed": changed, "tau_without": 0.3}
     )
-    view = pages._targets_view(m)
+    view = views.targets_view(m)
     assert view["words"] == "size and kind" and view["count"] == 1
     assert (
         view["terms"][0]["effect"] == "0.80 (0.70 to 0.90)" and view["groups"]["worse"] == "4 / 3"
     )
     assert view["changed"] == [
         {
-            "name": pages.md("Unit *One*"),
+            "name": markup.md("Unit *One*"),
             "with": "stands out as worse",
             "without": "in line with the benchmark",
         }
     ]
-    sentence = pages._target_sentence(m, pd.Series({"unit_id": "u1"}))
+    sentence = sentences.target_sentence(m, pd.Series({"unit_id": "u1"}))
     assert (
         "if every unit were pulled towards one typical unit, it would be in line with the "
         "benchmark." in sentence
     )
-    assert pages._target_sentence(m, pd.Series({"unit_id": "u2"})) == ""
-    assert pages._target_sentence(SimpleNamespace(targets=None), pd.Series({"unit_id": "u1"})) == ""
+    assert sentences.target_sentence(m, pd.Series({"unit_id": "u2"})) == ""
+    assert (
+        sentences.target_sentence(SimpleNamespace(targets=None), pd.Series({"unit_id": "u1"})) == ""
+    )

@@ -14,13 +14,9 @@ import numpy as np
 import pandas as pd
 
 from pipeline.results import GROUPS
+from pipeline.website.markup import attr, md
 
 NAMES_IN_ALT = 5  # list at most this many units by name in a sentence of alt text
-
-
-def attr(text: object) -> str:
-    """Text for a quoted attribute value in both Quarto (pandoc) and the built-in renderer."""
-    return " ".join(str(text).split()).replace("\\", "/").replace('"', "”")
 
 
 @dataclass(frozen=True)
@@ -36,8 +32,9 @@ class FigureView:
     kind: str = ""
 
 
-def _names(names: list[str], md) -> str:
-    shown = [md(n) for n in names[:NAMES_IN_ALT]]
+def _names(names: list[str], escape) -> str:
+    """Up to NAMES_IN_ALT unit names, each through ``escape``, and how many more."""
+    shown = [escape(n) for n in names[:NAMES_IN_ALT]]
     more = len(names) - len(shown)
     text = ", ".join(shown)
     return text + (f" and {more} more" if more > 0 else "")
@@ -57,7 +54,7 @@ def _group_counts(groups: pd.Series, names: pd.Series) -> str:
 
 
 def intervals(
-    src: str, png: str, data: pd.DataFrame, fmt, span, benchmark: str, level: str, md
+    src: str, png: str, data: pd.DataFrame, fmt, span, benchmark: str, level: str
 ) -> FigureView:
     """``fmt(x)`` formats one scaled value; ``span(lo, hi)`` an interval."""
     low, high = data.iloc[0], data.iloc[-1]
@@ -85,7 +82,7 @@ def intervals(
 
 
 def movement(
-    src: str, png: str, data: pd.DataFrame, fmt, benchmark: str, points: str, md
+    src: str, png: str, data: pd.DataFrame, fmt, benchmark: str, points: str
 ) -> FigureView:
     """``points`` names the unit of a move ('percentage points' or the outcome's unit)."""
     move = (data["adjusted"] - data["raw"]).abs()
@@ -125,7 +122,6 @@ def funnel(
     counts: dict,
     phi: float,
     widened: bool,
-    md,
 ) -> FigureView:
     out95 = points[(points["value"] < points["lower_95"]) | (points["value"] > points["upper_95"])]
     out998 = points[
@@ -181,7 +177,7 @@ def funnel(
     )
 
 
-def position(src: str, data: pd.DataFrame, unit_name: str, md) -> FigureView:
+def position(src: str, data: pd.DataFrame, unit_name: str) -> FigureView:
     parts = []
     for r in data.itertuples():
         if pd.isna(r.ratio):
@@ -216,7 +212,7 @@ def position(src: str, data: pd.DataFrame, unit_name: str, md) -> FigureView:
     )
 
 
-def trend(src: str, data: pd.DataFrame, unit_name: str, md) -> FigureView:
+def trend(src: str, data: pd.DataFrame, unit_name: str) -> FigureView:
     parts = []
     for measure, d in data.groupby("measure", sort=False):
         parts.append(

@@ -10,19 +10,15 @@ mark passes WCAG 2.1 AA for graphics (3:1 on white; checked in ``tests/test_publ
 
 Speed: a site of 200 units needs 200 unit strips. The strip's frame (facets, scales, network
 bands, benchmark lines) is built once by plotnine; for each unit only the unit's marks are moved
-before the file is written. Drawing jobs run in up to ``WORKERS`` processes, and every file is
-cached by the hash of its data and of this module.
+before the file is written. ``drawing.py`` schedules the drawing and caches every file by the hash
+of its data and of this module.
 """
 
 from __future__ import annotations
 
 import hashlib
 import io
-import os
-import shutil
 import warnings
-from concurrent.futures import ProcessPoolExecutor
-from dataclasses import dataclass, field
 from pathlib import Path
 
 import matplotlib
@@ -30,8 +26,7 @@ import numpy as np
 import pandas as pd
 import plotnine as p9
 
-from pipeline.cache import Cache, key
-from pipeline.results import GROUPS, MeasureResult
+from pipeline.results import GROUPS
 
 matplotlib.use("Agg")
 matplotlib.rcParams.update(
@@ -48,8 +43,8 @@ BENCHMARK_INK = "#000000"
 BAND_FILL = "#DCE3EA"  # background band only; never the sole carrier of meaning
 DPI = 110
 MAX_FIGURE_UNITS = 300  # above this a chart with one row per unit is unreadable and slow to draw
-WORKERS = max(1, min(2, os.cpu_count() or 1))
-PNG_MAX_UNITS = 100
+
+
 LEGEND = "Group"
 
 
@@ -95,180 +90,11 @@ def _save(plot, path: Path, png: bool) -> None:
     matplotlib.pyplot.close(fig)
 
 
-_SOURCE = hashlib.sha256(Path(__file__).read_bytes()).hexdigest()  # drawing code changes redraw
-
-
-# --- paths ---------------------------------------------------------------------------------
-
-
-def measure_figure_path(measure_key: str, kind: str = "intervals") -> str:
-    """kind: intervals | funnel | movement."""
-    return f"figures/{kind}-{measure_key}.svg"
-
-
-def unit_figure_path(unit_slug: str, kind: str = "position") -> str:
-    """kind: position | trend."""
-    return f"figures/{kind}-{unit_slug}.svg"
-
-
-def png_of(relative: str) -> str:
-    return relative[: -len(".svg")] + ".png"
-
-
-# --- jobs and the cache ----------------------------------------------------------------------
-
-
-@dataclass
-class Job:
-    """One drawing: ``draw(*args, path, png)`` writes ``relative`` (and its PNG when ``png``)."""
-
-    relative: str
-    draw: str  # name of a draw function in this module (picklable for worker processes)
-    data: pd.DataFrame
-    args: tuple = ()
-    png: bool = False
-    # the args as hashed text, when many jobs share them (computed once by the caller)
-    args_text: str = ""
-    cache_name: str = field(default="", init=False)
-
-    def __post_init__(self):
-        # DataFrames are hashed by their full CSV text (json's default=str would truncate them).
-        args = self.args_text or tuple(
-            a.to_csv() if isinstance(a, pd.DataFrame) else a for a in self.args
-        )
-        self.cache_name = key("figure", self.draw, self.data.to_csv(), args, self.png, _SOURCE)
-
-
-def _run(job_draw: str, data: pd.DataFrame, args: tuple, path: str, png: bool) -> None:
-    globals()[job_draw](data, *args, Path(path), png)
-
-
-class Drawing:
-    """Figures being drawn: the main process has drawn its share; ``wait`` collects the worker's."""
-
-    def __init__(
-        self, project: Path, jobs: list[Job], todo: list[Job], cache: Cache, pool, futures
-    ):
-        self.project, self.jobs, self.todo, self.cache, self.pool, self.futures = (
-            project,
-            jobs,
-            todo,
-            cache,
-            pool,
-            futures,
-        )
-        # Every planned file exists once ``wait`` returns: each SVG with the data it was drawn from
-        # (pages build alt text and tables from exactly that), each PNG copy with None.
-        self.drawn: dict[str, pd.DataFrame | None] = {job.relative: job.data for job in jobs}
-        self.drawn.update({png_of(job.relative): None for job in jobs if job.png})
-
-    def wait(self) -> dict[str, pd.DataFrame | None]:
-        try:
-            for future in self.futures:
-                future.result()
-        finally:
-            if self.pool is not None:
-                self.pool.shutdown(cancel_futures=True)
-        for job in self.todo:
-            path = self.project / job.relative
-            self.cache.store_file(job.cache_name + ".svg", path)
-            if job.png:
-                self.cache.store_file(job.cache_name + ".png", path.with_suffix(".png"))
-        return self.drawn
-
-
-def draw_all(project: Path, jobs: list[Job], cache: Cache, workers: int = WORKERS) -> Drawing:
-    """Start drawing every job into ``project`` (cached ones are copied); call ``wait()`` before
-    using the files.
-
-    With 2 workers the main process draws half of the work itself while one spawned process draws
-    the other half; the caller can write pages in between, while the worker finishes.
-    """
-    todo = []
-    for job in jobs:
-        path = project / job.relative
-        path.parent.mkdir(parents=True, exist_ok=True)
-        names = [job.cache_name + ".svg"] + ([job.cache_name + ".png"] if job.png else [])
-        hits = [h for h in map(cache.file, names) if h is not None]
-        if len(hits) == len(names):
-            shutil.copyfile(hits[0], path)
-            if job.png:
-                shutil.copyfile(hits[1], path.with_suffix(".png"))
-        else:
-            todo.append(job)
-    tasks = _tasks(project, todo, workers)
-    mine, theirs = tasks[0::2], tasks[1::2]  # alternate by cost: the worker also pays its start-up
-    pool, futures = None, []
-    if workers > 1 and theirs:
-        import multiprocessing
-
-        pool = ProcessPoolExecutor(1, mp_context=multiprocessing.get_context("spawn"))
-        futures = [pool.submit(globals()[name], *args) for name, args in theirs]
-    else:
-        mine = tasks
-    try:
-        for name, args in mine:
-            globals()[name](*args)
-    except BaseException:
-        if pool is not None:
-            pool.shutdown(cancel_futures=True)
-        raise
-    return Drawing(project, jobs, todo, cache, pool, futures)
-
-
-def _cost(task: tuple) -> float:
-    name, args = task
-    if name == "draw_positions":
-        return 0.05 * len(args[1])
-    return 0.5 + 0.015 * len(args[1])  # a chart's cost grows with its rows
-
-
-def _tasks(project: Path, jobs: list[Job], workers: int) -> list[tuple]:
-    """(function name, arguments) per task, costliest first; unit strips in chunks that share one
-    frame."""
-    strips = [j for j in jobs if j.draw == "draw_position"]
-    tasks: list[tuple[str, tuple]] = [
-        ("_run", (j.draw, j.data, j.args, str(project / j.relative), j.png))
-        for j in jobs
-        if j.draw != "draw_position"
-    ]
-    chunks = 2 * workers if len(strips) > 40 else 1
-    tasks += [
-        ("draw_positions", (_frame_of(strips), [(str(project / j.relative), j.data) for j in part]))
-        for part in (strips[i::chunks] for i in range(chunks))
-        if part
-    ]
-    return sorted(tasks, key=_cost, reverse=True)
-
-
-def _frame_of(strips: list[Job]) -> pd.DataFrame | None:
-    return strips[0].args[0] if strips else None
+# a change to the drawing code redraws every figure (part of each figure's cache key)
+DRAWING_CODE = hashlib.sha256(Path(__file__).read_bytes()).hexdigest()
 
 
 # --- measure figures -------------------------------------------------------------------------
-
-
-def axis(result: MeasureResult) -> tuple[float, str]:
-    """(multiplier, axis label) for a measure's adjusted values: percent for rates, the outcome's
-    unit otherwise."""
-    if result.measure.type == "continuous":
-        return 1.0, f"Adjusted mean, {result.measure.unit_label}"
-    return 100.0, "Risk-standardised rate, %"
-
-
-def measure_figure_data(result: MeasureResult) -> pd.DataFrame:
-    """What the interval chart shows: reported units, lowest adjusted value first."""
-    t = result.table[result.table["status"] == "reported"].sort_values(["rsr_median", "unit_name"])
-    k = axis(result)[0]
-    return pd.DataFrame(
-        {
-            "unit_name": t["unit_name"],
-            "rsr": t["rsr_median"] * k,
-            "lo": t["rsr_lower"] * k,
-            "hi": t["rsr_upper"] * k,
-            "group": t["group"],
-        }
-    ).reset_index(drop=True)
 
 
 def _unit_axis(names: pd.Series) -> pd.Categorical:
@@ -298,23 +124,6 @@ def draw_intervals(data: pd.DataFrame, benchmark: float, label: str, path: Path,
         + _theme(7.5, max(3.0, 1.6 + 0.19 * len(data)))
     )
     _save(plot, path, png)
-
-
-def movement_figure_data(result: MeasureResult) -> pd.DataFrame:
-    """Each reported unit's raw and adjusted value, fewest cases first (small units move most)."""
-    t = result.table[
-        (result.table["status"] == "reported") & result.table["raw_rate"].notna()
-    ].sort_values(["cases", "unit_name"])
-    k = axis(result)[0]
-    return pd.DataFrame(
-        {
-            "unit_name": t["unit_name"],
-            "cases": t["cases"].astype(int),
-            "raw": t["raw_rate"] * k,
-            "adjusted": t["rsr_median"] * k,
-            "group": t["group"],
-        }
-    ).reset_index(drop=True)
 
 
 def draw_movement(data: pd.DataFrame, benchmark: float, label: str, path: Path, png: bool) -> None:
@@ -381,50 +190,6 @@ def draw_funnel(
 
 
 # --- unit figures ----------------------------------------------------------------------------
-
-
-def position_frame(results: list[MeasureResult]) -> pd.DataFrame:
-    """The part of every unit strip that is the same for all units: per measure, where most units
-    sit.
-
-    Ratios to the benchmark: the benchmark itself (1, benchmark.py), and the 10th-90th percentile
-    band of the reported units' adjusted ratios.
-    """
-    rows = []
-    for r in results:
-        t = r.table[r.table["status"] == "reported"]
-        lo, hi = np.quantile(t["ratio_median"], [0.1, 0.9]) if len(t) else (np.nan, np.nan)
-        rows.append(
-            {
-                "measure": r.measure.name,
-                "bench": 1.0,
-                "band_lo": lo,
-                "band_hi": hi,
-                "x_min": float(t["ratio_lower"].min()) if len(t) else 0.8,
-                "x_max": float(t["ratio_upper"].max()) if len(t) else 1.25,
-            }
-        )
-    return pd.DataFrame(rows)
-
-
-def position_data(unit_id: str, results: list[MeasureResult]) -> pd.DataFrame | None:
-    """A unit's adjusted ratio to the benchmark on every measure (NaN where not reported); None if
-    none reported."""
-    rows = []
-    for r in results:
-        row = r.table[r.table["unit_id"] == unit_id]
-        reported = len(row) and row["status"].iloc[0] == "reported"
-        rows.append(
-            {
-                "measure": r.measure.name,
-                "ratio": row["ratio_median"].iloc[0] if reported else np.nan,
-                "lo": row["ratio_lower"].iloc[0] if reported else np.nan,
-                "hi": row["ratio_upper"].iloc[0] if reported else np.nan,
-                "group": row["group"].iloc[0] if reported else "",
-            }
-        )
-    data = pd.DataFrame(rows)
-    return None if data["ratio"].isna().all() else data
 
 
 def _x_limits(frame: pd.DataFrame) -> tuple[float, float]:
@@ -529,36 +294,6 @@ def draw_positions(frame: pd.DataFrame, items: list[tuple[str, pd.DataFrame]]) -
     matplotlib.pyplot.close(fig)
 
 
-def trend_data(
-    unit_id: str, results: list[MeasureResult], past, period: str = "this cycle"
-) -> pd.DataFrame | None:
-    """A unit's published adjusted values in each kept cycle and now (scaled like the measure
-    charts)."""
-    rows = []
-    for r in results:
-        k = axis(r)[0]
-        cycles = [(p.period, p.table[p.table["measure"] == r.measure.key]) for p in past] + [
-            (None, r.table)
-        ]
-        for i, (label, table) in enumerate(cycles):
-            row = table[(table["unit_id"] == unit_id) & (table["status"] == "reported")]
-            if len(row):
-                rows.append(
-                    {
-                        "measure": r.measure.name,
-                        "order": i,
-                        "period": label or period,
-                        "value": row["rsr_median"].iloc[0] * k,
-                        "lo": row["rsr_lower"].iloc[0] * k,
-                        "hi": row["rsr_upper"].iloc[0] * k,
-                    }
-                )
-    data = pd.DataFrame(rows)
-    if data.empty or data.groupby("measure")["order"].nunique().max() < 2:
-        return None  # a trend needs at least two cycles
-    return data
-
-
 def draw_trend(data: pd.DataFrame, path: Path, png: bool) -> None:
     """A unit's adjusted value per cycle with its interval, one panel per measure."""
     periods = list(dict.fromkeys(data.sort_values("order")["period"]))
@@ -579,24 +314,6 @@ def draw_trend(data: pd.DataFrame, path: Path, png: bool) -> None:
 
 
 # --- model report figures --------------------------------------------------------------------
-
-
-def model_figure_path(measure_key: str, kind: str) -> str:
-    return f"figures/model-{measure_key}-{kind}.svg"
-
-
-def roc_figure_data(result: MeasureResult) -> pd.DataFrame:
-    """ROC curves, in-sample and cross-validated, one row per point."""
-    v = result.model_validation
-    curves = [("In sample", v.in_sample)]
-    if v.cross_validated is not None:
-        curves.append((f"Cross-validated ({v.folds} folds)", v.cross_validated))
-    parts = []
-    for fit, metrics in curves:
-        if metrics.roc is None:
-            raise ValueError(f"{result.measure.key}: ROC curves are for binary outcomes only")
-        parts.append(metrics.roc.assign(fit=fit))
-    return pd.concat(parts, ignore_index=True)
 
 
 # Okabe-Ito blue, darkened vermillion
@@ -630,30 +347,6 @@ def draw_roc(data: pd.DataFrame, path: Path, png: bool) -> None:
     _save(plot, path, png)
 
 
-def calibration_figure_data(result: MeasureResult) -> pd.DataFrame:
-    """Observed against expected mean per risk group, in-sample and cross-validated (percent for
-    rates)."""
-    v = result.model_validation
-    k = 100.0 if v.binary else 1.0
-    parts = [("In sample", v.in_sample)] + (
-        [(f"Cross-validated ({v.folds} folds)", v.cross_validated)] if v.cross_validated else []
-    )
-    return pd.concat(
-        [
-            pd.DataFrame(
-                {
-                    "group": m.groups["group"],
-                    "expected": m.groups["expected_mean"] * k,
-                    "observed": m.groups["observed_mean"] * k,
-                    "fit": name,
-                }
-            )
-            for name, m in parts
-        ],
-        ignore_index=True,
-    )
-
-
 def draw_calibration(data: pd.DataFrame, label: str, path: Path, png: bool) -> None:
     """Observed against expected by risk group; points on the diagonal are perfectly calibrated."""
     top = float(max(data["expected"].max(), data["observed"].max())) * 1.05
@@ -671,85 +364,3 @@ def draw_calibration(data: pd.DataFrame, label: str, path: Path, png: bool) -> N
         + _theme(5.0, 5.0)
     )
     _save(plot, path, png)
-
-
-# --- what to draw ----------------------------------------------------------------------------
-
-
-def plan(
-    results: list[MeasureResult],
-    unit_ids,
-    slugs: dict[str, str],
-    past,
-    funnels: dict,
-    period: str = "this cycle",
-) -> list[Job]:
-    """Every figure of the site as a drawing job (measure charts with PNG beside, unit strips, model
-    plots)."""
-    jobs: list[Job] = []
-    for r in results:
-        scale, label = axis(r)
-        key_ = r.measure.key
-        data = measure_figure_data(r)
-        if len(data):
-            # PNG copies for slides and documents; above PNG_MAX_UNITS rows the tall PNG costs more
-            # than it helps
-            jobs.append(
-                Job(
-                    measure_figure_path(key_, "intervals"),
-                    "draw_intervals",
-                    data,
-                    (r.benchmark * scale, label),
-                    png=len(data) <= PNG_MAX_UNITS,
-                )
-            )
-            jobs.append(
-                Job(
-                    measure_figure_path(key_, "movement"),
-                    "draw_movement",
-                    movement_figure_data(r),
-                    (r.benchmark * scale, label),
-                )
-            )
-        f = funnels.get(key_)
-        if f is not None:
-            points, curves = f.scaled(scale)
-            jobs.append(
-                Job(
-                    measure_figure_path(key_, "funnel"),
-                    "draw_funnel",
-                    points,
-                    (curves, f.benchmark * scale, label),
-                    png=True,
-                )
-            )
-        if r.validation is not None:
-            jobs.append(
-                Job(
-                    model_figure_path(key_, "calibration"),
-                    "draw_calibration",
-                    calibration_figure_data(r),
-                    ("%" if r.validation.binary else r.measure.unit_label,),
-                )
-            )
-            if r.validation.binary:
-                jobs.append(Job(model_figure_path(key_, "roc"), "draw_roc", roc_figure_data(r)))
-    frame = position_frame(results)
-    frame_text = frame.to_csv()  # shared by every strip: turned into text once
-    for uid in unit_ids:
-        data = position_data(uid, results)
-        if data is not None:
-            jobs.append(
-                Job(
-                    unit_figure_path(slugs[uid], "position"),
-                    "draw_position",
-                    data,
-                    (frame,),
-                    args_text=frame_text,
-                )
-            )
-        if past:
-            trend = trend_data(uid, results, past, period)
-            if trend is not None:
-                jobs.append(Job(unit_figure_path(slugs[uid], "trend"), "draw_trend", trend))
-    return jobs

@@ -12,8 +12,9 @@ from dataclasses import dataclass
 import numpy as np
 
 from pipeline.results import FIT_SETTINGS, POSITION, MeasureResult
-from pipeline.website.captions import FigureView, attr
-from pipeline.website.figures import model_figure_path
+from pipeline.website.captions import FigureView
+from pipeline.website.figure_data import model_figure_path
+from pipeline.website.markup import attr, code, md
 
 BINARY_ROWS = [
     "c_statistic",
@@ -75,7 +76,7 @@ def _in_ten(c: float) -> str:
     return f"about {c * 10:.0f} times in 10"
 
 
-def _summary(m: MeasureResult, md) -> list[str]:
+def _summary(m: MeasureResult) -> list[str]:
     v = m.validation
     if v is None:
         return [
@@ -235,7 +236,7 @@ def _alt_calibration(m: MeasureResult, unit: str) -> str:
     )
 
 
-def _losses(m: MeasureResult, md) -> str:
+def _losses(m: MeasureResult) -> str:
     """Units that lost patients to missing risk factors, largest loss first (names from the results
     table)."""
     names = m.table.set_index("unit_id")["unit_name"]
@@ -245,7 +246,7 @@ def _losses(m: MeasureResult, md) -> str:
     return "; ".join(f"{md(names.get(u, u))} {n:,}" for u, n in by_unit)
 
 
-def model_view(m: MeasureResult, drawn: dict, md, code) -> ModelView:
+def model_view(m: MeasureResult, drawn: dict) -> ModelView:
     """Everything the model report of one measure shows, formatted."""
     fit, v = m.casemix, m.validation
     continuous = m.measure.type == "continuous"
@@ -273,7 +274,7 @@ def model_view(m: MeasureResult, drawn: dict, md, code) -> ModelView:
             f"{ex['dropped_rows']:,} patients were left out of this measure because a risk "
             f"factor was missing (by risk factor: {per_var}). "
             "They are not counted in any unit's cases. Patients left out, by unit: "
-            f"{_losses(m, md)}."
+            f"{_losses(m)}."
         )
     if ex.get("imputed_rows"):
         per_var = ", ".join(f"{md(k)} {n:,}" for k, n in ex["imputed"].items())
@@ -385,7 +386,7 @@ def model_view(m: MeasureResult, drawn: dict, md, code) -> ModelView:
         validation=rows,
         folds=v.folds if v is not None else 0,
         groups=groups,
-        summary=_summary(m, md),
+        summary=_summary(m),
         roc=_roc_figure(m, roc_path) if roc_path in drawn else None,
         calibration=_calibration_figure(m, cal_path, unit) if cal_path in drawn else None,
         equity=equity,

@@ -1,0 +1,444 @@
+"""The views the page templates lay out: every measure, unit and cell formatted once."""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass, field
+
+import pandas as pd
+
+from pipeline.config import CycleConfig
+from pipeline.history import PastCycle, changes
+from pipeline.results import GROUPS, POSITION, STATUS, MeasureResult
+from pipeline.website import captions
+from pipeline.website.captions import FigureView
+from pipeline.website.figure_data import axis, measure_figure_path, png_of, unit_figure_path
+from pipeline.website.funnel import Funnel, outside
+from pipeline.website.markup import chance, code, md, num, value, value_span
+from pipeline.website.sentences import (
+    GROUP_SYMBOLS,
+    SYMBOLS,
+    WORDS,
+    count_note,
+    like_words,
+    observed_words,
+    target_words,
+    unit_sentence,
+)
+
+
+@dataclass(frozen=True)
+class Cell:
+    """One unit on one measure, formatted."""
+
+    status: str
+    status_words: str
+    cases: str
+    observed: str
+    expected: str
+    raw_rate: str
+    oe_ratio: str
+    rate: str
+    interval: str
+    ratio: str
+    ratio_interval: str
+    chance_above: str
+    position: str
+    position_words: str
+    symbol: str
+    sentence: str
+    group: str = ""
+    group_words: str = ""
+    group_symbol: str = ""
+    rank: str = ""
+    weight: str = ""
+    other_side: str = ""
+
+
+@dataclass(frozen=True)
+class MeasureView:
+    key: str
+    name: str
+    definition: str
+    better: str
+    href: str
+    model_href: str
+    kind: str  # binary or continuous
+    words: dict[str, str]  # column and sentence words that differ between rates and means
+    figures: list[FigureView]
+    funnel_words: str
+    patients: str
+    events: str
+    network_rate: str
+    benchmark: str
+    benchmark_is_network: bool
+    # adjusted value of the typical unit, what small units are pulled towards ("" when it rounds to
+    # the benchmark)
+    typical: str
+    c_statistic: str
+    units_in_fit: int
+    formula: str
+    tau: str
+    rhat: str
+    ess: str
+    divergences: int
+    coefficients: list[dict[str, str]]
+    sensitivity: list[dict[str, str]] = field(default_factory=list)
+    rows: list[dict] = field(default_factory=list)  # unit name, href, Cell
+    # unit-level predictors of what units are pulled towards: words, terms, groups, changes
+    targets: dict | None = None
+    # what the small-count rule hid on this measure, in plain words ("" when nothing)
+    count_note: str = ""
+
+
+@dataclass(frozen=True)
+class UnitView:
+    id: str
+    name: str
+    kind: str
+    href: str
+    figures: list[FigureView]  # position strip, then the trend when history exists
+    cells: list[tuple[MeasureView, Cell]]
+    summary: str  # one plain sentence over all measures
+
+
+def _cell(m: MeasureResult, row: pd.Series, level: str, min_cases: int) -> Cell:
+    reported = row["status"] == "reported"
+    show = (lambda v: v) if reported else (lambda v: "")
+    count = row.get("count_status", "shown") if reported else ""
+    counted = (lambda v: v) if reported and count == "shown" else (lambda v: "")
+    return Cell(
+        status=row["status"],
+        status_words=STATUS[row["status"]],
+        cases=f"{int(row['cases']):,}"
+        if reported
+        else {"too_few": f"fewer than {min_cases}", "withheld": "withheld"}.get(row["status"], "0"),
+        observed=observed_words(row, count),
+        expected=(
+            f"{row['expected']:,.1f}" if m.measure.type == "binary" else f"{row['expected']:,.0f}"
+        )
+        if reported
+        else "",
+        raw_rate=counted(value(m.measure, row["raw_rate"])),
+        oe_ratio=counted(num(row["oe_ratio"])),
+        rate=show(value(m.measure, row["rsr_median"])),
+        interval=show(value_span(m.measure, row["rsr_lower"], row["rsr_upper"])),
+        ratio=show(num(row["ratio_median"])),
+        ratio_interval=show(f"{num(row['ratio_lower'])} to {num(row['ratio_upper'])}"),
+        chance_above=show(chance(row["prob_above_benchmark"])),
+        position=row["position"],
+        position_words=POSITION.get(row["position"], STATUS[row["status"]]),
+        symbol=SYMBOLS[row["position"]],
+        sentence=unit_sentence(md(row["unit_name"]), m, row, level, min_cases),
+        group=row["group"] if reported else "",
+        group_words=GROUPS.get(row["group"], STATUS[row["status"]])
+        if reported
+        else STATUS[row["status"]],
+        group_symbol=GROUP_SYMBOLS.get(row["group"], "") if reported else "",
+        rank=f"{row['rank_median']:.0f} ({row['rank_lower']:.0f} to {row['rank_upper']:.0f})"
+        if reported
+        else "",
+        weight=counted(f"{row['own_weight'] * 100:.0f}%") if pd.notna(row["own_weight"]) else "",
+        other_side=show(chance(row["prob_other_side"])),
+    )
+
+
+def _if_drawn(path: str, drawn: dict) -> str:
+    return path if path in drawn else ""
+
+
+def _measure_figures(
+    m: MeasureResult, drawn: dict, f: Funnel | None, level: str
+) -> tuple[list[FigureView], str]:
+    """The measure's pictures (intervals, funnel, movement) with their words and tables; and the
+    funnel in a sentence."""
+    k = axis(m)[0]
+    unit = md(m.measure.unit_label) if m.measure.type == "continuous" else "%"
+    fmt = (
+        (lambda x: f"{x:,.1f} {unit}")
+        if m.measure.type == "continuous"
+        else (lambda x: f"{x:.1f}%")
+    )
+    bench = fmt(m.benchmark * k)
+    out = []
+    path = measure_figure_path(m.measure.key, "intervals")
+    if path in drawn:
+        out.append(
+            captions.intervals(
+                path,
+                _if_drawn(png_of(path), drawn),
+                drawn[path],
+                fmt,
+                lambda lo, hi: f"{fmt(lo)} to {fmt(hi)}",
+                bench,
+                level,
+            )
+        )
+    words = ""
+    path = measure_figure_path(m.measure.key, "funnel")
+    if f is not None:
+        counts = outside(f)
+        if path in drawn:
+            out.append(
+                captions.funnel(
+                    path,
+                    _if_drawn(png_of(path), drawn),
+                    drawn[path],
+                    fmt,
+                    bench,
+                    counts,
+                    f.phi,
+                    f.widened,
+                )
+            )
+        spread = (
+            "about what chance alone would give"
+            if f.phi < 1.5
+            else f"{f.phi:.1f} times what chance alone would give"
+        )
+        words = (
+            f"In the funnel plot, {counts['998']} of {counts['units']} units are outside the "
+            f"outer (99.8%) limits and {counts['95']} are outside the inner (95%) limits. "
+            f"The spread between units is {spread}. "
+            + (
+                "The limits were widened to allow for it."
+                if f.widened
+                else "The limits were not widened for it."
+            )
+        )
+    path = measure_figure_path(m.measure.key, "movement")
+    if path in drawn:
+        points_word = "percentage points" if m.measure.type == "binary" else unit
+        out.append(captions.movement(path, "", drawn[path], fmt, bench, points_word))
+    return out, words
+
+
+def _unit_figures(name: str, slug_: str, drawn: dict) -> list[FigureView]:
+    out = []
+    path = unit_figure_path(slug_, "position")
+    if path in drawn:
+        out.append(captions.position(path, drawn[path], name))
+    path = unit_figure_path(slug_, "trend")
+    if path in drawn:
+        out.append(captions.trend(path, drawn[path], name))
+    return out
+
+
+def unit_summary(cells: list[tuple[MeasureView, Cell]]) -> str:
+    """One sentence over all measures: how many reported and in which groups."""
+    reported = [(m, c) for m, c in cells if c.status == "reported"]
+    if not reported:
+        return "No measure has enough cases at this unit to report in this period."
+    parts = []
+    for g in ("worse", "better"):
+        names = [m.name for m, c in reported if c.group == g]
+        if names:
+            parts.append(f"{GROUPS[g].lower()} on {', '.join(names)}")
+    typical = sum(c.group == "typical" for _, c in reported)
+    text = f"{len(reported)} of {len(cells)} measures are reported. "
+    if parts:
+        text += "This unit " + " and ".join(parts) + ". "
+    text += (
+        f"On {typical} {'measure' if typical == 1 else 'measures'} it is in line with the "
+        "benchmark."
+    )
+    return text
+
+
+def views(
+    config: CycleConfig,
+    results: list[MeasureResult],
+    units: pd.DataFrame,
+    slugs: dict[str, str],
+    drawn: dict,
+    funnels: dict[str, Funnel | None] | None = None,
+) -> tuple[list[MeasureView], list[UnitView]]:
+    """Format every number once; return the measure and unit views the templates lay out."""
+    level = f"{config.reporting.interval * 100:g}%"
+    measures: list[MeasureView] = []
+    cells: dict[str, list[tuple[MeasureView, Cell]]] = {uid: [] for uid in units.index}
+    for m in results:
+        d = m.diagnostics
+        coefs = [
+            {
+                "term": md(term),
+                "ratio": num(r["ratio"]),
+                "interval": f"{num(r['lower'])} to {num(r['upper'])}",
+            }
+            for term, r in m.casemix.coefficients.iterrows()
+        ]
+        continuous = m.measure.type == "continuous"
+        figures, funnel_words = _measure_figures(
+            m, drawn, (funnels or {}).get(m.measure.key), level
+        )
+        view = MeasureView(
+            key=m.measure.key,
+            name=md(m.measure.name),
+            definition=md(m.measure.definition),
+            better=m.measure.better,
+            href=f"measures/{m.measure.key}.qmd",
+            model_href=f"models/{m.measure.key}.qmd",
+            kind=m.measure.type,
+            words=WORDS["continuous" if continuous else "binary"],
+            figures=figures,
+            funnel_words=funnel_words,
+            patients=f"{m.casemix.patients:,}",
+            events=f"{m.casemix.events:,.0f}"
+            + (f" {md(m.measure.unit_label)}" if continuous else ""),
+            network_rate=value(m.measure, m.network_rate),
+            benchmark=value(m.measure, m.benchmark),
+            benchmark_is_network=config.reporting.benchmark == "network" or continuous,
+            typical=""
+            if m.typical != m.typical
+            or value(m.measure, m.typical) == value(m.measure, m.benchmark)
+            else value(m.measure, m.typical),
+            c_statistic=num(m.casemix.c_statistic, 3)
+            if not continuous
+            and m.casemix.patients
+            and m.casemix.c_statistic == m.casemix.c_statistic
+            else "not applicable",
+            units_in_fit=m.casemix.units_in_fit,
+            formula=code(m.casemix.formula),
+            tau=f"{num(m.tau[0])} ({num(m.tau[1])} to {num(m.tau[2])})",
+            rhat=num(d.rhat_max, 3),
+            ess=f"{d.ess_bulk_min:,.0f}",
+            divergences=d.divergences,
+            coefficients=coefs,
+            sensitivity=[
+                {
+                    "prior": f"HalfNormal({alt['scale']:g})",
+                    "method": f"{alt['method']} (k-hat {alt['k_hat']:.2f})",
+                    "changed": "; ".join(
+                        f"{md(name)}: {GROUPS[a].lower()} → {GROUPS[b].lower()}"
+                        for name, a, b in alt["changed"]
+                    )
+                    or "none",
+                    "count": str(len(alt["changed"])),
+                }
+                for alt in m.sensitivity
+            ],
+            targets=targets_view(m),
+            count_note=count_note(m.table, config.reporting.hide_counts_below),
+        )
+        ordered = m.table.sort_values(
+            ["status", "rsr_median"],
+            key=lambda s: (
+                s.map({"reported": 0, "too_few": 1, "withheld": 2, "no_cases": 3})
+                if s.name == "status"
+                else s
+            ),
+        )
+        for _, row in ordered.iterrows():
+            cell = _cell(m, row, level, config.reporting.minimum_cases)
+            view.rows.append(
+                {
+                    "name": md(row["unit_name"]),
+                    "href": f"units/{slugs[row['unit_id']]}.qmd",
+                    "cell": cell,
+                }
+            )
+            cells[row["unit_id"]].append((view, cell))
+        measures.append(view)
+    unit_views = [
+        UnitView(
+            id=md(uid),
+            name=md(u["name"]),
+            kind=md(u["kind"]),
+            href=f"units/{slugs[uid]}.qmd",
+            figures=_unit_figures(u["name"], slugs[uid], drawn),
+            cells=cells[uid],
+            summary=unit_summary(cells[uid]),
+        )
+        for uid, u in units.iterrows()
+    ]
+    return measures, unit_views
+
+
+def targets_view(m: MeasureResult) -> dict | None:
+    """What the methods and measure pages say about the predictors of what units are pulled
+    towards."""
+    t = m.targets
+    if t is None:
+        return None
+    terms = [
+        {
+            "term": md(target_words(x["term"])),
+            "code": code(x["term"]),
+            "sd": f"{x['sd']:.2f} (cases x {math.exp(x['sd']):.1f})"
+            if x["term"] == "log_cases"
+            else f"{x['sd']:.3g}",
+            "effect": f"{num(x['effect_median'])} ({num(x['effect_lower'])} to "
+            f"{num(x['effect_upper'])})",
+        }
+        for x in t["terms"]
+    ]
+    changed = [
+        {
+            "name": md(c.unit_name),
+            "with": GROUPS[c.group_with].lower(),
+            "without": GROUPS[c.group_without].lower(),
+        }
+        for c in t["changed"].itertuples()
+    ]
+    groups = {g: f"{n['with']} / {n['without']}" for g, n in t["groups"].items()}
+    return {
+        "words": md(like_words([x["term"] for x in t["terms"]])),
+        "terms": terms,
+        "changed": changed,
+        "groups": groups,
+        "count": len(changed),
+    }
+
+
+def trends(
+    config: CycleConfig, results: list[MeasureResult], past: list[PastCycle], slugs: dict[str, str]
+) -> dict[str, list[dict]]:
+    """Per unit, its published adjusted rates in earlier cycles and now (reported cycles only)."""
+    out: dict[str, list[dict]] = {uid: [] for uid in slugs}
+    for r in results:
+        cycles = [(p.period, p.table[p.table["measure"] == r.measure.key]) for p in past] + [
+            (config.cycle.period, r.table)
+        ]
+        for period, table in cycles:
+            for _, row in table[table["status"] == "reported"].iterrows():
+                if row["unit_id"] in out:
+                    out[row["unit_id"]].append(
+                        {
+                            "measure": md(r.measure.name),
+                            "period": md(period),
+                            "rate": value(r.measure, row["rsr_median"]),
+                            "interval": value_span(r.measure, row["rsr_lower"], row["rsr_upper"]),
+                        }
+                    )
+    return out
+
+
+def change_views(
+    results: list[MeasureResult], previous: PastCycle | None, slugs: dict[str, str]
+) -> list[dict]:
+    """The changes page, one block per measure (empty when there is no earlier cycle)."""
+    if previous is None:
+        return []
+    table = changes(results, previous)
+    blocks = []
+    for r in results:
+        rows = table[table["measure"] == r.measure.key] if len(table) else table
+        blocks.append(
+            {
+                "name": md(r.measure.name),
+                "rows": [
+                    {
+                        "name": md(x["unit_name"]),
+                        "href": f"units/{slugs[x['unit_id']]}.qmd",
+                        "before": f"{value(r.measure, x['before'])} "
+                        f"({value_span(r.measure, x['before_lower'], x['before_upper'])})",
+                        "now": f"{value(r.measure, x['now'])} "
+                        f"({value_span(r.measure, x['now_lower'], x['now_upper'])})",
+                        "chance": chance(x["p_higher"]),
+                        "words": x["words"],
+                    }
+                    for _, x in rows.sort_values("p_higher", ascending=False).iterrows()
+                ],
+            }
+        )
+    return blocks
