@@ -32,7 +32,8 @@ from pipeline.casemix.benchmark import benchmark_offset
 from pipeline.casemix.model import fit_with_design
 from pipeline.config import MeasureSection, SamplerSection
 from pipeline.inputs.targets import design
-from pipeline.shrinkage.model import Cells, ShrinkageSpec, unit_draws
+from pipeline.shrinkage.draws import unit_draws
+from pipeline.shrinkage.model import Cells, ShrinkageSpec
 from pipeline.shrinkage.sampling import Sampler
 
 SMALL = 150

@@ -33,7 +33,8 @@ from scipy.special import expit
 from pipeline.casemix.model import fit_with_design
 from pipeline.config import MeasureSection, SamplerSection
 from pipeline.external import find_tool, run_tool
-from pipeline.shrinkage.model import Cells, ShrinkageSpec, unit_draws
+from pipeline.shrinkage.draws import unit_draws
+from pipeline.shrinkage.model import Cells, ShrinkageSpec
 from pipeline.shrinkage.sampling import Sampler
 
 R_SCRIPT = r"""

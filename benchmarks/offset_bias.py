@@ -27,7 +27,8 @@ from scipy.special import expit
 
 from pipeline.casemix.model import fit_casemix
 from pipeline.config import MeasureSection, SamplerSection
-from pipeline.shrinkage.model import Cells, ShrinkageSpec, unit_draws
+from pipeline.shrinkage.draws import unit_draws
+from pipeline.shrinkage.model import Cells, ShrinkageSpec
 from pipeline.shrinkage.sampling import Sampler
 
 warnings.filterwarnings("ignore")

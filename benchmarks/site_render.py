@@ -27,11 +27,11 @@ from pipeline.cache import Cache
 from pipeline.config import load_config
 from pipeline.cycle import about, build_site
 from pipeline.demo import write_demo
+from pipeline.downloads import public_table
 from pipeline.fitting import fit_measures
 from pipeline.history import past_cycles
 from pipeline.inputs.data import load_cohort
 from pipeline.progress import SilentReporter
-from pipeline.results import public_table
 from pipeline.website.render import Renderer
 
 ROOT = Path(__file__).resolve().parents[1]

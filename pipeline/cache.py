@@ -43,10 +43,12 @@ FITTING_MODULES = (
     "casemix.model",
     "casemix.validation",
     "cycle",
+    "fit_steps",
     "fitting",
     "inputs.data",
     "inputs.targets",
     "shrinkage.curves",
+    "shrinkage.draws",
     "shrinkage.model",
     "shrinkage.sampling",
 )

@@ -23,12 +23,13 @@ import pandas as pd
 from pipeline import __version__, templates_path
 from pipeline.cache import Cache, library_versions
 from pipeline.config import CycleConfig
+from pipeline.downloads import DICTIONARY, public_table, results_json
 from pipeline.errors import RenderError, StrictError
 from pipeline.fitting import fit_measures
 from pipeline.history import PastCycle, kept_addresses, past_cycles, record_cycle
 from pipeline.inputs.data import Cohort, load_cohort
 from pipeline.progress import SILENT, Reporter
-from pipeline.results import DICTIONARY, MeasureResult, public_table, results_json
+from pipeline.results import MeasureResult
 from pipeline.website.addresses import unit_slugs
 from pipeline.website.drawing import draw_all, figure_jobs
 from pipeline.website.figures import MAX_FIGURE_UNITS

@@ -4,6 +4,8 @@ from __future__ import annotations
 
 import ast
 
+import patsy
+
 
 def formula_variables(rhs: str) -> list[str]:
     """Column names a patsy right-hand side uses (function names such as C or np.log excluded)."""
@@ -22,3 +24,20 @@ def formula_variables(rhs: str) -> list[str]:
     # in the order they are written
     names = [n.id for n in sorted(found, key=lambda n: n.col_offset)]
     return list(dict.fromkeys(names))
+
+
+def without_terms(casemix: str, variables: tuple[str, ...]) -> str:
+    """The case-mix formula with every term that uses one of ``variables`` removed ("1" if none is
+    left).
+
+    Terms are expanded by patsy first, so in ``age * deprivation`` only ``deprivation`` and
+    ``age:deprivation`` go and ``age`` stays.
+    """
+    terms = patsy.ModelDesc.from_formula(casemix).rhs_termlist
+    kept = [
+        t
+        for t in terms
+        if t.factors
+        and not set(formula_variables(" + ".join(f.code for f in t.factors))) & set(variables)
+    ]
+    return " + ".join(":".join(f.code for f in t.factors) for t in kept) if kept else "1"

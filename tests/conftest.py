@@ -134,7 +134,7 @@ def hostile_cycle(tmp_path_factory):
     """
     import numpy as np
 
-    from pipeline.demo import invent_network
+    from pipeline.invented import invent_network
 
     folder = tmp_path_factory.mktemp("hostile")
     units, cohort, *_ = invent_network(seed=3, n_units=16, smallest=10, largest=500)

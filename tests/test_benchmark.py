@@ -24,7 +24,8 @@ from pipeline.config import load_config
 from pipeline.fitting import fit_measures
 from pipeline.inputs.data import load_cohort
 from pipeline.progress import SilentReporter
-from pipeline.shrinkage.model import Cells, unit_draws
+from pipeline.shrinkage.draws import unit_draws
+from pipeline.shrinkage.model import Cells
 
 pytestmark = pytest.mark.slow
 

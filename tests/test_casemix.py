@@ -110,7 +110,7 @@ def test_block_newton_solver_gives_statsmodels_estimates_for_many_units(monkeypa
     rng = np.random.default_rng(8)
     rows, unit = _network(rng, n_units=60, per_unit=80, confounded=True)
     dense = fit_casemix(_measure("x + C(sex)"), rows, unit)
-    monkeypatch.setattr("pipeline.casemix.model.DENSE_LIMIT", 0)
+    monkeypatch.setattr("pipeline.casemix.solver.DENSE_LIMIT", 0)
     blocked = fit_casemix(_measure("x + C(sex)"), rows, unit)
     assert (dense.solver, blocked.solver) == ("statsmodels", "block-newton")
     assert blocked.units_in_fit == dense.units_in_fit
@@ -120,7 +120,7 @@ def test_block_newton_solver_gives_statsmodels_estimates_for_many_units(monkeypa
     assert blocked.coefficients["std_error"].to_numpy() == pytest.approx(
         dense.coefficients["std_error"].to_numpy(), rel=1e-5
     )
-    monkeypatch.setattr("pipeline.casemix.model.DENSE_LIMIT", 0)
+    monkeypatch.setattr("pipeline.casemix.solver.DENSE_LIMIT", 0)
     no_terms = fit_casemix(_measure("1"), rows, unit)
     assert len(no_terms.coefficients) == 0 and no_terms.expected.sum() == pytest.approx(
         rows["y"].sum()
@@ -244,7 +244,7 @@ def test_design_problems_are_explained_in_words():
 
 
 def test_formula_terms_splines_interactions_and_supplied_risk():
-    from pipeline.casemix.model import without_terms
+    from pipeline.formulas import without_terms
 
     rng = np.random.default_rng(7)
     rows, unit = _network(rng, n_units=5, per_unit=300, confounded=False)

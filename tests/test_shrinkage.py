@@ -8,7 +8,8 @@ from scipy import stats
 from scipy.special import expit
 
 from pipeline.config import SamplerSection
-from pipeline.shrinkage.model import Cells, ShrinkageSpec, build_model, unit_draws
+from pipeline.shrinkage.draws import unit_draws
+from pipeline.shrinkage.model import Cells, ShrinkageSpec, build_model
 from pipeline.shrinkage.sampling import Diagnostics, Sampler, fit_failed
 
 

@@ -117,7 +117,7 @@ def test_a_bad_predictor_stops_the_cycle_before_any_fit(cycle_folder, capsys, mo
     def no_fit(*a, **k):
         raise AssertionError("nothing may be fitted")
 
-    monkeypatch.setattr("pipeline.fitting.fit_with_design", no_fit)
+    monkeypatch.setattr("pipeline.fit_steps.fit_with_design", no_fit)
     config = BASE_CONFIG.replace(
         'casemix = "age + C(sex)"',
         'casemix = "age + C(sex)"\npull_towards = ["log_cases", "beds"]',

@@ -27,7 +27,8 @@ import statsmodels.api as sm
 from scipy.special import logit
 from scipy.stats import chi2, norm, rankdata
 
-from pipeline.casemix.model import CaseMixFit, estimate, expected_values, network_intercept
+from pipeline.casemix.model import CaseMixFit, expected_values, network_intercept
+from pipeline.casemix.solver import estimate
 
 Z95 = float(norm.ppf(0.975))
 

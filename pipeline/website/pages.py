@@ -19,10 +19,11 @@ from pipeline.config import CycleConfig
 from pipeline.history import PastCycle
 from pipeline.results import FIT_SETTINGS, GROUPS, POSITION, MeasureResult
 from pipeline.website.funnel import Funnel
+from pipeline.website.history_views import change_views, trends
 from pipeline.website.markup import attr, code, md
 from pipeline.website.model_page import model_view
 from pipeline.website.sentences import GROUP_SYMBOLS, SYMBOLS
-from pipeline.website.views import change_views, trends, views
+from pipeline.website.views import views
 
 
 def environment() -> jinja2.Environment:

@@ -8,7 +8,6 @@ from dataclasses import dataclass, field
 import pandas as pd
 
 from pipeline.config import CycleConfig
-from pipeline.history import PastCycle, changes
 from pipeline.results import GROUPS, POSITION, STATUS, MeasureResult
 from pipeline.website import captions
 from pipeline.website.captions import FigureView
@@ -388,57 +387,3 @@ def targets_view(m: MeasureResult) -> dict | None:
         "groups": groups,
         "count": len(changed),
     }
-
-
-def trends(
-    config: CycleConfig, results: list[MeasureResult], past: list[PastCycle], slugs: dict[str, str]
-) -> dict[str, list[dict]]:
-    """Per unit, its published adjusted rates in earlier cycles and now (reported cycles only)."""
-    out: dict[str, list[dict]] = {uid: [] for uid in slugs}
-    for r in results:
-        cycles = [(p.period, p.table[p.table["measure"] == r.measure.key]) for p in past] + [
-            (config.cycle.period, r.table)
-        ]
-        for period, table in cycles:
-            for _, row in table[table["status"] == "reported"].iterrows():
-                if row["unit_id"] in out:
-                    out[row["unit_id"]].append(
-                        {
-                            "measure": md(r.measure.name),
-                            "period": md(period),
-                            "rate": value(r.measure, row["rsr_median"]),
-                            "interval": value_span(r.measure, row["rsr_lower"], row["rsr_upper"]),
-                        }
-                    )
-    return out
-
-
-def change_views(
-    results: list[MeasureResult], previous: PastCycle | None, slugs: dict[str, str]
-) -> list[dict]:
-    """The changes page, one block per measure (empty when there is no earlier cycle)."""
-    if previous is None:
-        return []
-    table = changes(results, previous)
-    blocks = []
-    for r in results:
-        rows = table[table["measure"] == r.measure.key] if len(table) else table
-        blocks.append(
-            {
-                "name": md(r.measure.name),
-                "rows": [
-                    {
-                        "name": md(x["unit_name"]),
-                        "href": f"units/{slugs[x['unit_id']]}.qmd",
-                        "before": f"{value(r.measure, x['before'])} "
-                        f"({value_span(r.measure, x['before_lower'], x['before_upper'])})",
-                        "now": f"{value(r.measure, x['now'])} "
-                        f"({value_span(r.measure, x['now_lower'], x['now_upper'])})",
-                        "chance": chance(x["p_higher"]),
-                        "words": x["words"],
-                    }
-                    for _, x in rows.sort_values("p_higher", ascending=False).iterrows()
-                ],
-            }
-        )
-    return blocks
