@@ -153,18 +153,7 @@ def build_site(
     slugs: dict[str, str] | None = None,
 ) -> Path:
     """Write figures, downloads and pages into a new folder beside the output; render it there."""
-    output = config.cycle.output
-    try:
-        output.parent.mkdir(parents=True, exist_ok=True)
-        remove_stale_builds(output)
-        build = Path(
-            tempfile.mkdtemp(prefix=f".{output.name}.tmp-{os.getpid()}-", dir=output.parent)
-        )
-    except OSError as exc:
-        raise RenderError(
-            f"cannot write beside the output folder {output} ({exc.strerror or exc}); the "
-            "previous site was left as it was."
-        ) from None
+    build = _new_build_folder(config.cycle.output)
     drawing = None
     try:
         project = build / "_source"
@@ -173,8 +162,6 @@ def build_site(
         funnels = {
             r.measure.key: for_measure(r, config.reporting.funnel_overdispersion) for r in results
         }
-        # figure path (relative to the project) -> the data drawn, once drawing is done
-        drawn: dict = {}
         if figures:
             jobs = figure_jobs(
                 results, cohort.units.index, slugs, past, funnels, config.cycle.period
@@ -184,27 +171,13 @@ def build_site(
             )
             # a worker may still be drawing while the pages are written
             drawing = draw_all(project, jobs, cache)
-            drawn = drawing.drawn
+        # figure path (relative to the project) -> the data drawn, once drawing is done
+        drawn: dict = drawing.drawn if drawing is not None else {}
         reporter.stage("writing results and pages")
-        (project / MARKER).write_text(json.dumps(manifest, indent=2), encoding="utf-8")
-        (project / "downloads").mkdir(parents=True)
-        table.to_csv(project / "downloads" / "results.csv", index=False, float_format="%.6g")
-        (project / "downloads" / "results.json").write_text(
-            results_json(table, results, manifest), encoding="utf-8"
-        )
-        (project / "assets").mkdir()
-        for asset in ("fairgauge.css", "fairgauge.js", "favicon.svg"):
-            shutil.copyfile(templates_path() / "static" / asset, project / "assets" / asset)
-        for page in render_pages(
-            config,
-            results,
-            cohort.units,
-            slugs,
-            drawn,
-            past,
-            {**manifest, "dictionary": DICTIONARY},
-            funnels,
-        ):
+        _write_downloads(project, table, results, manifest)
+        site = {**manifest, "dictionary": DICTIONARY}
+        pages = render_pages(config, results, cohort.units, slugs, drawn, past, site, funnels)
+        for page in pages:
             target = project / page.path
             target.parent.mkdir(parents=True, exist_ok=True)
             target.write_text(page.text, encoding="utf-8")
@@ -226,6 +199,36 @@ def build_site(
         _stop(drawing)
         shutil.rmtree(build, ignore_errors=True)
         raise
+
+
+def _new_build_folder(output: Path) -> Path:
+    """A new, empty folder beside ``output`` for this build (stale ones of dead builds removed)."""
+    try:
+        output.parent.mkdir(parents=True, exist_ok=True)
+        remove_stale_builds(output)
+        return Path(
+            tempfile.mkdtemp(prefix=f".{output.name}.tmp-{os.getpid()}-", dir=output.parent)
+        )
+    except OSError as exc:
+        raise RenderError(
+            f"cannot write beside the output folder {output} ({exc.strerror or exc}); the "
+            "previous site was left as it was."
+        ) from None
+
+
+def _write_downloads(
+    project: Path, table: pd.DataFrame, results: list[MeasureResult], manifest: dict
+) -> None:
+    """The manifest, the downloads (results.csv, results.json) and the static assets."""
+    (project / MARKER).write_text(json.dumps(manifest, indent=2), encoding="utf-8")
+    (project / "downloads").mkdir(parents=True)
+    table.to_csv(project / "downloads" / "results.csv", index=False, float_format="%.6g")
+    (project / "downloads" / "results.json").write_text(
+        results_json(table, results, manifest), encoding="utf-8"
+    )
+    (project / "assets").mkdir()
+    for asset in ("fairgauge.css", "fairgauge.js", "favicon.svg"):
+        shutil.copyfile(templates_path() / "static" / asset, project / "assets" / asset)
 
 
 def _stop(drawing) -> None:

@@ -206,3 +206,22 @@ def demo_counts(inputs: Path) -> pd.DataFrame:
         ].assign(measure="pressure")
     )
     return pd.concat(parts, ignore_index=True)
+
+
+# Fixtures that run a whole cycle: a test that uses one is slow, whatever its own marks say.
+WHOLE_CYCLE_FIXTURES = {"demo_cycle", "demo_counts"}
+
+
+def pytest_collection_modifyitems(config, items):
+    for item in items:
+        if WHOLE_CYCLE_FIXTURES & set(getattr(item, "fixturenames", ())):
+            item.add_marker(pytest.mark.slow)
+
+
+@pytest.fixture
+def fake_sampler(monkeypatch):
+    """Every shrinkage fit in the test draws from the fake sampler (tests/fake_sampler.py)."""
+    from .fake_sampler import fake_run
+
+    monkeypatch.setattr("pipeline.shrinkage.sampling.Sampler.run", fake_run)
+    return fake_run

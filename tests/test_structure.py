@@ -123,3 +123,23 @@ def test_no_import_cycles():
 
     for m in graph:
         visit(m, [])
+
+
+def _function_lengths() -> list[tuple[int, str]]:
+    out = []
+    for module, path in _modules().items():
+        for node in ast.walk(ast.parse(path.read_text(encoding="utf-8"))):
+            if isinstance(node, ast.FunctionDef | ast.AsyncFunctionDef):
+                out.append((node.end_lineno - node.lineno + 1, f"{module}.{node.name}"))
+    return out
+
+
+def test_modules_and_functions_are_small():
+    long_modules = [
+        f"{m}: {n} lines"
+        for m, p in _modules().items()
+        if (n := len(p.read_text(encoding="utf-8").splitlines())) > MODULE_LINES
+    ]
+    long_functions = [f"{name}: {n} lines" for n, name in _function_lengths() if n > FUNCTION_LINES]
+    assert not long_modules, f"modules over {MODULE_LINES} lines: {long_modules}"
+    assert not long_functions, f"functions over {FUNCTION_LINES} lines: {long_functions}"

@@ -280,27 +280,7 @@ def fit_with_design(
         )
     x = design(measure, frame, formula)
     notes = check_design(measure, x, y, binary)
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore")  # convergence problems are checked below, in words
-        try:
-            b, se, dispersion, units_in_fit, solver = estimate(family, y, x.to_numpy(), codes)
-        except (np.linalg.LinAlgError, ValueError) as exc:
-            raise FitError(
-                f"measure '{measure.key}': the case-mix fit failed ({exc}). Check for risk "
-                "factors that never vary or that copy each other."
-            ) from None
-    if not (np.all(np.isfinite(b)) and np.all(np.isfinite(se))) or np.any(np.abs(b) > 15):
-        bad = [
-            name
-            for name, v, s in zip(x.columns, b, se, strict=True)
-            if not np.isfinite(v) or not np.isfinite(s) or abs(v) > 15
-        ]
-        raise FitError(
-            f"measure '{measure.key}': the case-mix coefficients for {', '.join(bad)} could "
-            "not be estimated "
-            "(a risk factor that almost perfectly predicts the outcome, or that is constant). "
-            "Remove or group it."
-        )
+    b, se, dispersion, units_in_fit, solver = _estimate_checked(measure, family, y, x, codes)
     linear = x.to_numpy() @ b if x.shape[1] else np.zeros(len(y))
     intercept, smearing = network_intercept(family, y, linear)
     fit = CaseMixFit(
@@ -323,6 +303,34 @@ def fit_with_design(
         warnings=tuple(notes),
     )
     return fit, x.to_numpy(), y
+
+
+def _estimate_checked(
+    measure: MeasureSection, family: str, y: np.ndarray, x: pd.DataFrame, codes: np.ndarray
+) -> tuple[np.ndarray, np.ndarray, float, int, str]:
+    """:func:`~pipeline.casemix.solver.estimate`, with a failed or degenerate fit explained."""
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")  # convergence problems are checked below, in words
+        try:
+            b, se, dispersion, units_in_fit, solver = estimate(family, y, x.to_numpy(), codes)
+        except (np.linalg.LinAlgError, ValueError) as exc:
+            raise FitError(
+                f"measure '{measure.key}': the case-mix fit failed ({exc}). Check for risk "
+                "factors that never vary or that copy each other."
+            ) from None
+    if not (np.all(np.isfinite(b)) and np.all(np.isfinite(se))) or np.any(np.abs(b) > 15):
+        bad = [
+            name
+            for name, v, s in zip(x.columns, b, se, strict=True)
+            if not np.isfinite(v) or not np.isfinite(s) or abs(v) > 15
+        ]
+        raise FitError(
+            f"measure '{measure.key}': the case-mix coefficients for {', '.join(bad)} could "
+            "not be estimated "
+            "(a risk factor that almost perfectly predicts the outcome, or that is constant). "
+            "Remove or group it."
+        )
+    return b, se, dispersion, units_in_fit, solver
 
 
 def coefficient_table(terms, b: np.ndarray, se: np.ndarray) -> pd.DataFrame:

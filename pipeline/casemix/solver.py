@@ -73,53 +73,67 @@ def within_glm(
     k = x.shape[1]
     logistic = family == "logistic"
 
-    def blocks(a_: np.ndarray, b_: np.ndarray):
-        """Score and information blocks: g_a, residuals, h_aa (diagonal), h_ab, Schur complement of
-        h_aa."""
-        eta = a_[unit] + x @ b_
-        if logistic:
-            p = expit(eta)
-            w, r = p * (1 - p), y - p
-        else:  # Gamma, log link: score (y - m)/m per unit of eta, Fisher weight 1
-            w, r = np.ones_like(y), y * np.exp(-eta) - 1.0
-        h_aa = np.bincount(unit, weights=w, minlength=n_units)
-        h_ab = (
-            np.column_stack(
-                [np.bincount(unit, weights=w * x[:, c], minlength=n_units) for c in range(k)]
-            )
-            if k
-            else np.zeros((n_units, 0))
-        )
-        schur = (x * w[:, None]).T @ x - h_ab.T @ (h_ab / h_aa[:, None])
-        return np.bincount(unit, weights=r, minlength=n_units), r, h_aa, h_ab, schur
-
-    def loglik(a_: np.ndarray, b_: np.ndarray) -> float:
-        eta = a_[unit] + x @ b_
-        if logistic:
-            return float(np.sum(y * eta - np.logaddexp(0.0, eta)))
-        return float(-np.sum(y * np.exp(-eta) + eta))
-
     counts = np.bincount(unit, minlength=n_units)
     mean = np.bincount(unit, weights=y, minlength=n_units) / counts
     a, b = (np.log(mean / (1 - mean)) if logistic else np.log(mean)), np.zeros(k)
-    current = loglik(a, b)
+    current = _loglik(y, x, unit, logistic, a, b)
     for _ in range(max_iter):
-        g_a, r, h_aa, h_ab, schur = blocks(a, b)
+        g_a, r, h_aa, h_ab, schur = _blocks(y, x, unit, n_units, logistic, a, b)
         db = np.linalg.solve(schur, x.T @ r - h_ab.T @ (g_a / h_aa)) if k else b
         da = (g_a - h_ab @ db) / h_aa
         step = 1.0
         while step > 1e-4:  # step halving keeps every iteration uphill
-            trial = loglik(a + step * da, b + step * db)
+            trial = _loglik(y, x, unit, logistic, a + step * da, b + step * db)
             if trial >= current - 1e-12:
                 break
             step /= 2
         a, b, current = a + step * da, b + step * db, trial
         if max(np.abs(step * da).max(initial=0), np.abs(step * db).max(initial=0)) < tol:
             break
-    _, r, _, _, schur = blocks(a, b)
+    _, r, _, _, schur = _blocks(y, x, unit, n_units, logistic, a, b)
     dispersion = 1.0 if logistic else float(np.sum(r**2) / max(len(y) - k - n_units, 1))
     se = np.sqrt(np.diag(np.linalg.inv(schur)) * dispersion) if k else np.zeros(0)
     return b, se, dispersion
+
+
+def _blocks(
+    y: np.ndarray,
+    x: np.ndarray,
+    unit: np.ndarray,
+    n_units: int,
+    logistic: bool,
+    a_: np.ndarray,
+    b_: np.ndarray,
+):
+    """Score and information blocks at intercepts ``a_`` and coefficients ``b_``: g_a, residuals,
+    h_aa (diagonal), h_ab, Schur complement of h_aa."""
+    k = x.shape[1]
+    eta = a_[unit] + x @ b_
+    if logistic:
+        p = expit(eta)
+        w, r = p * (1 - p), y - p
+    else:  # Gamma, log link: score (y - m)/m per unit of eta, Fisher weight 1
+        w, r = np.ones_like(y), y * np.exp(-eta) - 1.0
+    h_aa = np.bincount(unit, weights=w, minlength=n_units)
+    h_ab = (
+        np.column_stack(
+            [np.bincount(unit, weights=w * x[:, c], minlength=n_units) for c in range(k)]
+        )
+        if k
+        else np.zeros((n_units, 0))
+    )
+    schur = (x * w[:, None]).T @ x - h_ab.T @ (h_ab / h_aa[:, None])
+    return np.bincount(unit, weights=r, minlength=n_units), r, h_aa, h_ab, schur
+
+
+def _loglik(
+    y: np.ndarray, x: np.ndarray, unit: np.ndarray, logistic: bool, a_: np.ndarray, b_: np.ndarray
+) -> float:
+    """Log-likelihood (up to a constant) of the logistic or Gamma (unit shape) model."""
+    eta = a_[unit] + x @ b_
+    if logistic:
+        return float(np.sum(y * eta - np.logaddexp(0.0, eta)))
+    return float(-np.sum(y * np.exp(-eta) + eta))
 
 
 def within_ols(y: np.ndarray, x: np.ndarray, unit: np.ndarray, n_units: int):

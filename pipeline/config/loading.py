@@ -204,42 +204,51 @@ def _check_measures(measures: list[MeasureSection], problems: list[Problem]) -> 
                 )
             )
         if m.summary:
-            for other, default in (("casemix", "1"), ("expected_column", ""), ("social_risk", ())):
-                if getattr(m, other) != default:
-                    problems.append(
-                        Problem(
-                            f"{where}.{other}",
-                            "cannot be used with summary (unit-level input has no patient rows "
-                            "to fit); remove it.",
-                        )
-                    )
-            if m.type != "binary":
-                problems.append(
-                    Problem(
-                        f"{where}.summary",
-                        "unit-level input is supported for binary measures only (observed "
-                        "events and expected events per unit).",
-                    )
-                )
+            _check_unit_level(m, where, problems)
         if m.social_risk:
-            try:
-                used = formula_variables(m.casemix)
-            except ValueError:
-                used = []
-            for v in m.social_risk:
-                if v not in used:
-                    problems.append(
-                        Problem(
-                            f"{where}.social_risk",
-                            f"'{v}' is not a variable of the case-mix formula '{m.casemix}'; "
-                            "list only variables the formula uses.",
-                        )
-                    )
+            _check_social_risk(m, where, problems)
 
 
-def load_config(path: str | Path) -> CycleConfig:
-    """Read and validate a cycle config, reporting every problem at once."""
-    path = Path(path).resolve()
+def _check_unit_level(m: MeasureSection, where: str, problems: list[Problem]) -> None:
+    """A measure read from unit totals has no patient-level settings, and is binary."""
+    for other, default in (("casemix", "1"), ("expected_column", ""), ("social_risk", ())):
+        if getattr(m, other) != default:
+            problems.append(
+                Problem(
+                    f"{where}.{other}",
+                    "cannot be used with summary (unit-level input has no patient rows "
+                    "to fit); remove it.",
+                )
+            )
+    if m.type != "binary":
+        problems.append(
+            Problem(
+                f"{where}.summary",
+                "unit-level input is supported for binary measures only (observed "
+                "events and expected events per unit).",
+            )
+        )
+
+
+def _check_social_risk(m: MeasureSection, where: str, problems: list[Problem]) -> None:
+    """Each social-risk factor is a variable of the measure's case-mix formula."""
+    try:
+        used = formula_variables(m.casemix)
+    except ValueError:
+        used = []
+    for v in m.social_risk:
+        if v not in used:
+            problems.append(
+                Problem(
+                    f"{where}.social_risk",
+                    f"'{v}' is not a variable of the case-mix formula '{m.casemix}'; "
+                    "list only variables the formula uses.",
+                )
+            )
+
+
+def _read_toml(path: Path) -> tuple[bytes, dict]:
+    """The config file's bytes (for its hash) and its TOML tables."""
     try:
         raw_bytes = path.read_bytes()
     except OSError as exc:
@@ -247,10 +256,43 @@ def load_config(path: str | Path) -> CycleConfig:
             [Problem(str(path), f"cannot be read ({exc.strerror}). Check the path.")]
         ) from None
     try:
-        raw = tomllib.loads(raw_bytes.decode("utf-8"))
+        return raw_bytes, tomllib.loads(raw_bytes.decode("utf-8"))
     except (tomllib.TOMLDecodeError, UnicodeDecodeError) as exc:
         raise ConfigError([Problem(str(path), f"is not valid TOML: {exc}")]) from None
 
+
+def _check_reporting(reporting, problems: list[Problem]) -> None:
+    """No published unit can have fewer patients than the small-count threshold."""
+    if reporting.hide_counts_below > reporting.minimum_cases:
+        problems.append(
+            Problem(
+                "reporting.hide_counts_below",
+                f"is {reporting.hide_counts_below}, above reporting.minimum_cases "
+                f"({reporting.minimum_cases}): a unit with fewer patients than that would show "
+                "a small patient count. "
+                "Raise minimum_cases to at least hide_counts_below, or lower hide_counts_below.",
+            )
+        )
+
+
+def _check_cohort_named(inputs: InputsSection, measures: list, problems: list[Problem]) -> None:
+    """A cohort is named whenever a measure reads patient rows."""
+    if inputs.cohort is None and not inputs.cohort_query:
+        patient = [m.key for m in measures if m is not None and not m.summary]
+        if patient:
+            problems.append(
+                Problem(
+                    "inputs.cohort",
+                    f"is required: measure(s) {', '.join(patient)} read patient rows. "
+                    "Name the cohort file, or give every measure a summary file of unit totals.",
+                )
+            )
+
+
+def load_config(path: str | Path) -> CycleConfig:
+    """Read and validate a cycle config, reporting every problem at once."""
+    path = Path(path).resolve()
+    raw_bytes, raw = _read_toml(path)
     problems: list[Problem] = []
     allowed_top = set(SECTIONS) | {"measures"}
     for key in raw:
@@ -278,35 +320,13 @@ def load_config(path: str | Path) -> CycleConfig:
     ]
     _check_measures([m for m in measures if m is not None], problems)
     reporting = sections.get("reporting")
-    if reporting is not None and reporting.hide_counts_below > reporting.minimum_cases:
-        problems.append(
-            Problem(
-                "reporting.hide_counts_below",
-                f"is {reporting.hide_counts_below}, above reporting.minimum_cases "
-                f"({reporting.minimum_cases}): a unit with fewer patients than that would show "
-                "a small patient count. "
-                "Raise minimum_cases to at least hide_counts_below, or lower hide_counts_below.",
-            )
-        )
+    if reporting is not None:
+        _check_reporting(reporting, problems)
     inputs = sections.get("inputs")
     if inputs is not None:
         inputs = _check_inputs(inputs, base, problems)
         sections["inputs"] = inputs
-    if (
-        inputs is not None
-        and inputs.cohort is None
-        and not inputs.cohort_query
-        and any(m is not None and not m.summary for m in measures)
-    ):
-        patient = [m.key for m in measures if m is not None and not m.summary]
-        problems.append(
-            Problem(
-                "inputs.cohort",
-                f"is required: measure(s) {', '.join(patient)} read patient rows. "
-                "Name the cohort file, or give every measure a summary file of unit totals.",
-            )
-        )
-
+        _check_cohort_named(inputs, measures, problems)
     if problems:
         raise ConfigError(problems)
     return CycleConfig(

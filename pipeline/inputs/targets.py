@@ -76,30 +76,10 @@ def check(
             problems.append(f"'{name}' is listed twice")
             continue
         seen.add(name)
-        if name == "log_cases":
-            if cases is not None and cases.loc[present].nunique() < 2:
-                problems.append(
-                    "'log_cases' is the same for every unit (every unit has the same number of "
-                    "cases)"
-                )
-            n_columns += 1
-        elif name == "case_mix":
-            if not has_patients:
-                problems.append(
-                    "'case_mix' needs patient rows; this measure is read from unit-level totals"
-                )
-            elif not has_risk:
-                problems.append(
-                    "'case_mix' needs risk factors; this measure's casemix is \"1\" (no adjustment)"
-                )
-            n_columns += 1
-        elif name == "kind":
-            levels = kinds.loc[present].nunique()
-            if levels < 2:
-                problems.append(
-                    "'kind' is the same for every unit with data, so it cannot tell units apart"
-                )
-            n_columns += max(levels - 1, 0)
+        if name in ("log_cases", "case_mix", "kind"):
+            found, columns = _builtin_problems(name, kinds, present, has_patients, has_risk, cases)
+            problems += found
+            n_columns += columns
         elif name not in attributes.columns:
             allowed = ", ".join([*PREDICTORS, *[c for c in attributes.columns]])
             problems.append(
@@ -107,24 +87,7 @@ def check(
                 f"allowed: {allowed}"
             )
         else:
-            column = pd.to_numeric(attributes[name].loc[present], errors="coerce")
-            bad = column.isna() & attributes[name].loc[present].notna()
-            if bad.any():
-                problems.append(
-                    f"units table column '{name}' must hold numbers; found "
-                    f"{attributes[name].loc[present][bad].iloc[0]!r} "
-                    f"for unit(s) {_ids(bad[bad].index)}"
-                )
-            elif column.isna().any():
-                problems.append(
-                    f"units table column '{name}' is empty for unit(s) "
-                    f"{_ids(column.index[column.isna()])}; every unit with data needs a value"
-                )
-            elif column.nunique() < 2:
-                problems.append(
-                    f"units table column '{name}' is the same for every unit with data, so it "
-                    "cannot tell units apart"
-                )
+            problems += _column_problems(name, attributes[name].loc[present])
             n_columns += 1
     if n_columns and len(present) < UNITS_PER_PREDICTOR * n_columns:
         problems.append(
@@ -133,6 +96,67 @@ def check(
             f"({UNITS_PER_PREDICTOR} per term); this measure has {len(present)}"
         )
     return [f"{p} (measure '{measure_key}')." for p in problems]
+
+
+def _builtin_problems(
+    name: str,
+    kinds: pd.Series,
+    present: pd.Index,
+    has_patients: bool,
+    has_risk: bool,
+    cases: pd.Series | None,
+) -> tuple[list[str], int]:
+    """Problems with one built-in predictor, and how many columns it adds to the design."""
+    found: list[str] = []
+    columns = 0
+    if name == "log_cases":
+        if cases is not None and cases.loc[present].nunique() < 2:
+            found.append(
+                "'log_cases' is the same for every unit (every unit has the same number of cases)"
+            )
+        columns = 1
+    elif name == "case_mix":
+        if not has_patients:
+            found.append(
+                "'case_mix' needs patient rows; this measure is read from unit-level totals"
+            )
+        elif not has_risk:
+            found.append(
+                "'case_mix' needs risk factors; this measure's casemix is \"1\" (no adjustment)"
+            )
+        columns = 1
+    elif name == "kind":
+        levels = kinds.loc[present].nunique()
+        if levels < 2:
+            found.append(
+                "'kind' is the same for every unit with data, so it cannot tell units apart"
+            )
+        columns = max(levels - 1, 0)
+    return found, columns
+
+
+def _column_problems(name: str, values: pd.Series) -> list[str]:
+    """A units-table column named in ``pull_towards`` holds a number for every unit with data,
+    and not the same one."""
+    column = pd.to_numeric(values, errors="coerce")
+    bad = column.isna() & values.notna()
+    if bad.any():
+        return [
+            f"units table column '{name}' must hold numbers; found "
+            f"{values[bad].iloc[0]!r} "
+            f"for unit(s) {_ids(bad[bad].index)}"
+        ]
+    if column.isna().any():
+        return [
+            f"units table column '{name}' is empty for unit(s) "
+            f"{_ids(column.index[column.isna()])}; every unit with data needs a value"
+        ]
+    if column.nunique() < 2:
+        return [
+            f"units table column '{name}' is the same for every unit with data, so it "
+            "cannot tell units apart"
+        ]
+    return []
 
 
 def _ids(index) -> str:

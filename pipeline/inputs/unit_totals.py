@@ -56,11 +56,23 @@ def load_summary(
     if absent:
         return None
     ids = frame[unit_col].astype("string").str.strip()
+    _check_unit_ids(ids, unit_ids, f"{where}, column '{unit_col}'", problems)
+    cases, events, expected = _check_numbers(frame, observed, where, problems)
+    return pd.DataFrame(
+        {"cases": cases.to_numpy(), "observed": events.to_numpy(), "expected": expected.to_numpy()},
+        index=pd.Index(ids, name="id"),
+    )
+
+
+def _check_unit_ids(
+    ids: pd.Series, unit_ids: pd.Index, column: str, problems: list[Problem]
+) -> None:
+    """Every unit id is in the unit table, and appears once."""
     unknown = ~ids.isin(unit_ids)
     if unknown.any():
         problems.append(
             Problem(
-                f"{where}, column '{unit_col}'",
+                column,
                 f"has unit ids not in the unit table, such as '{ids[unknown].iloc[0]}', at "
                 f"{row_list(unknown)}.",
             )
@@ -69,10 +81,16 @@ def load_summary(
     if dup.any():
         problems.append(
             Problem(
-                f"{where}, column '{unit_col}'",
+                column,
                 f"repeats unit ids at {row_list(dup)}; each unit appears once in a unit summary.",
             )
         )
+
+
+def _check_numbers(
+    frame: pd.DataFrame, observed: str, where: str, problems: list[Problem]
+) -> tuple[pd.Series, pd.Series, pd.Series]:
+    """Cases, observed events and expected events are numbers a unit can have: (the three)."""
     numbers = {c: pd.to_numeric(frame[c], errors="coerce") for c in ("cases", observed, "expected")}
     cases, events, expected = numbers["cases"], numbers[observed], numbers["expected"]
     checks = [
@@ -107,10 +125,7 @@ def load_summary(
                 "needs at least one event and one non-event across the network to compare units.",
             )
         )
-    return pd.DataFrame(
-        {"cases": cases.to_numpy(), "observed": events.to_numpy(), "expected": expected.to_numpy()},
-        index=pd.Index(ids, name="id"),
-    )
+    return cases, events, expected
 
 
 def read_unit_totals(

@@ -116,33 +116,9 @@ def read_query(
     ``where`` names the source in errors ("database cohort (inputs.cohort_query)");
     ``text_columns`` are kept as text, as for files.
     """
-    try:
-        import adbc_driver_postgresql.dbapi as pg
-    except ImportError:  # pragma: no cover - depends on the installation
-        raise InputError(
-            [
-                Problem(
-                    where,
-                    "reading from a database needs the database extra: pip install "
-                    "'fairgauge[database]'.",
-                )
-            ]
-        ) from None
+    pg = _driver(where)
     sql = query_text(source)
-    try:
-        connection = pg.connect(_with_timeout(conninfo), autocommit=True)
-    except Exception as exc:  # the driver raises several types; all mean "could not connect"
-        raise InputError(
-            [
-                Problem(
-                    where,
-                    f"cannot connect to the database: {_clean(str(exc), conninfo)}. Check the "
-                    "connection "
-                    "string, that the server is running, and the password in PGPASSWORD, "
-                    "~/.pgpass or the service file.",
-                )
-            ]
-        ) from None
+    connection = _connect(pg, conninfo, where)
     try:
         cursor = connection.cursor()
         cursor.execute("SET SESSION CHARACTERISTICS AS TRANSACTION READ ONLY")
@@ -177,6 +153,41 @@ def read_query(
         rows_sha256(frame),
     )
     return frame, provenance
+
+
+def _driver(where: str):
+    """The PostgreSQL ADBC driver (the database extra), or a located error naming the extra."""
+    try:
+        import adbc_driver_postgresql.dbapi as pg
+    except ImportError:  # pragma: no cover - depends on the installation
+        raise InputError(
+            [
+                Problem(
+                    where,
+                    "reading from a database needs the database extra: pip install "
+                    "'fairgauge[database]'.",
+                )
+            ]
+        ) from None
+    return pg
+
+
+def _connect(pg, conninfo: str, where: str):
+    """An autocommit ADBC connection, or a located error that never shows the connection string."""
+    try:
+        return pg.connect(_with_timeout(conninfo), autocommit=True)
+    except Exception as exc:  # the driver raises several types; all mean "could not connect"
+        raise InputError(
+            [
+                Problem(
+                    where,
+                    f"cannot connect to the database: {_clean(str(exc), conninfo)}. Check the "
+                    "connection "
+                    "string, that the server is running, and the password in PGPASSWORD, "
+                    "~/.pgpass or the service file.",
+                )
+            ]
+        ) from None
 
 
 def _to_pandas(table, text_columns: tuple[str, ...]) -> pd.DataFrame:

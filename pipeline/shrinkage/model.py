@@ -315,49 +315,10 @@ def build_model(spec: ShrinkageSpec, cells: Cells, data: dict[str, np.ndarray] |
     arrays = data if data is not None else model_data(spec, cells)[0]
     with pm.Model() as model:
         data = {k: pm.Data(k, v) for k, v in arrays.items()}
-        # rates integrated out: the beta-binomial likelihood of each cell
         if spec.pooling == "beta":
-            # phi = log(alpha / beta), kappa = log(alpha + beta)
-            phi, kappa = pm.Flat("phi"), pm.Flat("kappa")
-            alpha, beta = (
-                pm.Deterministic("alpha", pt.exp(kappa) * pt.sigmoid(phi)),
-                pm.Deterministic("beta", pt.exp(kappa) * pt.sigmoid(-phi)),
-            )
-            # BDA3 eq. 5.10 with the Jacobian
-            pm.Potential("prior", pt.log(alpha) + pt.log(beta) - 2.5 * pt.log(alpha + beta))
-            r, n = data["r"], data["n"]
-            pm.Potential(
-                "loglik",
-                pt.sum(
-                    pt.gammaln(alpha + r)
-                    + pt.gammaln(beta + n - r)
-                    - pt.gammaln(alpha + beta + n)
-                    + pt.gammaln(alpha + beta)
-                    - pt.gammaln(alpha)
-                    - pt.gammaln(beta)
-                ),
-            )
+            _beta_binomial(data)
             return model
-        if spec.pooling == "partial":
-            mu = prior("mu")
-            tau = prior("tau")
-            v = pm.Flat("v", shape=cells.n_units)
-            c = data["centred"]
-            target = (
-                mu + pt.dot(data["w"], prior("beta", shape=spec.predictors))
-                if spec.predictors
-                else mu
-            )
-            pm.Potential(
-                "units",
-                pt.sum(
-                    c * pm.logp(pm.Normal.dist(target, tau), v)
-                    + (1 - c) * pm.logp(pm.Normal.dist(0.0, 1.0), v)
-                ),
-            )
-            a = c * v + (1 - c) * (target + tau * v)
-        else:
-            a = pm.Logistic("a", 0.0, 1.0, shape=cells.n_units)
+        a = _intercepts(spec, prior, data, cells.n_units)
         if "coef" in data:
             from pipeline.shrinkage.curves import curve_loglik
 
@@ -366,6 +327,56 @@ def build_model(spec: ShrinkageSpec, cells: Cells, data: dict[str, np.ndarray] |
             eta = data["offset"] + a[data["unit"]]
             pm.Potential("loglik", pt.sum(_loglik(spec, prior, data, eta)))
     return model
+
+
+def _beta_binomial(data: dict) -> None:
+    """Rates integrated out: the beta-binomial likelihood of each cell (inside a model context)."""
+    import pymc as pm
+    import pytensor.tensor as pt
+
+    # phi = log(alpha / beta), kappa = log(alpha + beta)
+    phi, kappa = pm.Flat("phi"), pm.Flat("kappa")
+    alpha, beta = (
+        pm.Deterministic("alpha", pt.exp(kappa) * pt.sigmoid(phi)),
+        pm.Deterministic("beta", pt.exp(kappa) * pt.sigmoid(-phi)),
+    )
+    # BDA3 eq. 5.10 with the Jacobian
+    pm.Potential("prior", pt.log(alpha) + pt.log(beta) - 2.5 * pt.log(alpha + beta))
+    r, n = data["r"], data["n"]
+    pm.Potential(
+        "loglik",
+        pt.sum(
+            pt.gammaln(alpha + r)
+            + pt.gammaln(beta + n - r)
+            - pt.gammaln(alpha + beta + n)
+            + pt.gammaln(alpha + beta)
+            - pt.gammaln(alpha)
+            - pt.gammaln(beta)
+        ),
+    )
+
+
+def _intercepts(spec: ShrinkageSpec, prior, data: dict, n_units: int):
+    """Each unit's intercept: partially pooled (centred or not, per unit) towards its target, or
+    unpooled (inside a model context)."""
+    import pymc as pm
+    import pytensor.tensor as pt
+
+    if spec.pooling != "partial":
+        return pm.Logistic("a", 0.0, 1.0, shape=n_units)
+    mu = prior("mu")
+    tau = prior("tau")
+    v = pm.Flat("v", shape=n_units)
+    c = data["centred"]
+    target = mu + pt.dot(data["w"], prior("beta", shape=spec.predictors)) if spec.predictors else mu
+    pm.Potential(
+        "units",
+        pt.sum(
+            c * pm.logp(pm.Normal.dist(target, tau), v)
+            + (1 - c) * pm.logp(pm.Normal.dist(0.0, 1.0), v)
+        ),
+    )
+    return c * v + (1 - c) * (target + tau * v)
 
 
 def _loglik(spec: ShrinkageSpec, prior, data: dict, eta):

@@ -87,70 +87,55 @@ class Sampler:
 
     def run(self, cells: Cells, seed: int, settings: SamplerSection | None = None):
         """Sample the posterior for ``cells``; return (posterior draws, diagnostics)."""
-        import arviz as az
-
         s = settings or self.settings
         start = time.perf_counter()
         data, curves = model_data(self.spec, cells)
         with warnings.catch_warnings():
             warnings.simplefilter("ignore")
-            if self.engine == "nutpie":
-                import nutpie
-
-                shape = (cells.n_units, tuple(sorted(data)), self.spec.predictors)
-                if shape not in self._compiled:  # compile once per cycle and kind of data
-                    self._compiled[shape] = nutpie.compile_pymc_model(
-                        build_model(self.spec, cells, data)
-                    )
-                compiled = self._compiled[shape].with_data(**data)
-                idata = nutpie.sample(
-                    compiled,
-                    draws=s.draws,
-                    tune=s.tune,
-                    chains=s.chains,
-                    cores=s.cores,
-                    seed=seed,
-                    target_accept=s.target_accept,
-                    progress_bar=False,
-                    # Low-rank adaptation follows the mu-versus-units correlation; its own cost
-                    # grows with
-                    # the number of units (DEVELOPERS.md, "Sampler").
-                    low_rank_modified_mass_matrix=cells.n_units <= LOW_RANK_MAX_UNITS,
-                )
-            else:
-                import pymc as pm
-
-                with build_model(self.spec, cells, data):
-                    idata = pm.sample(
-                        draws=s.draws,
-                        tune=s.tune,
-                        chains=s.chains,
-                        cores=s.cores,
-                        random_seed=seed,
-                        target_accept=s.target_accept,
-                        progressbar=False,
-                        compute_convergence_checks=False,
-                    )
-            names = self.spec.sampled
-            rhat = az.rhat(idata, var_names=names)
-            ess = az.ess(idata, var_names=names, method="bulk")
-            tail = az.ess(idata, var_names=names, method="tail")
-            bfmi = az.bfmi(idata)
-        diagnostics = Diagnostics(
-            rhat_max=float(max(rhat[v].max() for v in names)),
-            ess_bulk_min=float(min(ess[v].min() for v in names)),
-            divergences=int(idata.sample_stats["diverging"].sum()),
-            chains=s.chains,
-            draws=s.draws,
-            seconds=time.perf_counter() - start,
-            ess_tail_min=float(min(tail[v].min() for v in names)),
-            bfmi_min=float(np.min(bfmi)),
-            retried=settings is not None,
-        )
+            idata = self._sample(cells, data, seed, s)
+            diagnostics = _diagnostics(idata, self.spec.sampled, s, start, settings is not None)
         draws = posterior_draws(
             self.spec, idata.posterior, cells.n_units, data.get("centred"), data.get("w")
         )
         return {**draws, "curves": curves}, diagnostics
+
+    def _sample(self, cells: Cells, data: dict, seed: int, s: SamplerSection):
+        """The posterior of the model with ``data``, from nutpie (compiled once) or PyMC."""
+        if self.engine == "nutpie":
+            import nutpie
+
+            shape = (cells.n_units, tuple(sorted(data)), self.spec.predictors)
+            if shape not in self._compiled:  # compile once per cycle and kind of data
+                self._compiled[shape] = nutpie.compile_pymc_model(
+                    build_model(self.spec, cells, data)
+                )
+            compiled = self._compiled[shape].with_data(**data)
+            return nutpie.sample(
+                compiled,
+                draws=s.draws,
+                tune=s.tune,
+                chains=s.chains,
+                cores=s.cores,
+                seed=seed,
+                target_accept=s.target_accept,
+                progress_bar=False,
+                # Low-rank adaptation follows the mu-versus-units correlation; its own cost grows
+                # with the number of units (DEVELOPERS.md, "Sampler").
+                low_rank_modified_mass_matrix=cells.n_units <= LOW_RANK_MAX_UNITS,
+            )
+        import pymc as pm
+
+        with build_model(self.spec, cells, data):
+            return pm.sample(
+                draws=s.draws,
+                tune=s.tune,
+                chains=s.chains,
+                cores=s.cores,
+                random_seed=seed,
+                target_accept=s.target_accept,
+                progressbar=False,
+                compute_convergence_checks=False,
+            )
 
     def run_checked(self, cells: Cells, seed: int, measure: str, warn=lambda text: None):
         """:meth:`run`; if the checks fail, warn and run once more with :func:`safer` settings; then
@@ -166,6 +151,30 @@ class Sampler:
             if diagnostics.failures():
                 raise fit_failed(measure, diagnostics)
         return draws, diagnostics
+
+
+def _diagnostics(
+    idata, names: list[str], s: SamplerSection, start: float, retried: bool
+) -> Diagnostics:
+    """R-hat, bulk and tail ESS, divergences and E-BFMI of a fit (ArviZ); the time since
+    ``start`` (a ``time.perf_counter()`` reading)."""
+    import arviz as az
+
+    rhat = az.rhat(idata, var_names=names)
+    ess = az.ess(idata, var_names=names, method="bulk")
+    tail = az.ess(idata, var_names=names, method="tail")
+    bfmi = az.bfmi(idata)
+    return Diagnostics(
+        rhat_max=float(max(rhat[v].max() for v in names)),
+        ess_bulk_min=float(min(ess[v].min() for v in names)),
+        divergences=int(idata.sample_stats["diverging"].sum()),
+        chains=s.chains,
+        draws=s.draws,
+        seconds=time.perf_counter() - start,
+        ess_tail_min=float(min(tail[v].min() for v in names)),
+        bfmi_min=float(np.min(bfmi)),
+        retried=retried,
+    )
 
 
 def posterior_draws(

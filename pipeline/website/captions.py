@@ -13,7 +13,7 @@ from dataclasses import dataclass, field
 import numpy as np
 import pandas as pd
 
-from pipeline.results import GROUPS
+from pipeline.results import GROUPS, MeasureResult
 from pipeline.website.markup import attr, md
 
 NAMES_IN_ALT = 5  # list at most this many units by name in a sentence of alt text
@@ -123,22 +123,7 @@ def funnel(
     phi: float,
     widened: bool,
 ) -> FigureView:
-    out95 = points[(points["value"] < points["lower_95"]) | (points["value"] > points["upper_95"])]
-    out998 = points[
-        (points["value"] < points["lower_998"]) | (points["value"] > points["upper_998"])
-    ]
-    alt = (
-        f"Funnel plot of {counts['units']} units: each unit's case-mix-adjusted value from its "
-        "observed and expected counts, against the "
-        "precision of its O/E on a log scale (higher for units with more expected events), "
-        f"with 95% and 99.8% control limits around the benchmark of {benchmark}"
-        f"{', widened for the extra spread between units' if widened else ''}. "
-        f"{len(out95)} {'unit lies' if len(out95) == 1 else 'units lie'} outside the 95% limits"
-        f"{' (' + _names(list(out95['unit_name']), attr) + ')' if len(out95) else ''} and "
-        f"{len(out998)} outside the 99.8% limits"
-        f"{' (' + _names(list(out998['unit_name']), attr) + ')' if len(out998) else ''}. "
-        f"The spread between units is {phi:.1f} times what chance alone would give."
-    )
+    alt = _funnel_alt(points, benchmark, counts, phi, widened)
     rows = [
         [
             md(r.unit_name),
@@ -174,6 +159,28 @@ def funnel(
         ],
         rows,
         kind="funnel",
+    )
+
+
+def _funnel_alt(
+    points: pd.DataFrame, benchmark: str, counts: dict, phi: float, widened: bool
+) -> str:
+    """The funnel plot's alt text: what it shows, and the units outside its limits by name."""
+    out95 = points[(points["value"] < points["lower_95"]) | (points["value"] > points["upper_95"])]
+    out998 = points[
+        (points["value"] < points["lower_998"]) | (points["value"] > points["upper_998"])
+    ]
+    return (
+        f"Funnel plot of {counts['units']} units: each unit's case-mix-adjusted value from its "
+        "observed and expected counts, against the "
+        "precision of its O/E on a log scale (higher for units with more expected events), "
+        f"with 95% and 99.8% control limits around the benchmark of {benchmark}"
+        f"{', widened for the extra spread between units' if widened else ''}. "
+        f"{len(out95)} {'unit lies' if len(out95) == 1 else 'units lie'} outside the 95% limits"
+        f"{' (' + _names(list(out95['unit_name']), attr) + ')' if len(out95) else ''} and "
+        f"{len(out998)} outside the 99.8% limits"
+        f"{' (' + _names(list(out998['unit_name']), attr) + ')' if len(out998) else ''}. "
+        f"The spread between units is {phi:.1f} times what chance alone would give."
     )
 
 
@@ -238,4 +245,92 @@ def trend(src: str, data: pd.DataFrame, unit_name: str) -> FigureView:
         ["Measure", "Cycle", "Adjusted value", "Interval"],
         rows,
         kind="trend",
+    )
+
+
+def roc(m: MeasureResult, path: str) -> FigureView:
+    """The model report's ROC curve: its words, alt text and table of points."""
+    v = m.model_validation
+    grid = [0.0, 0.05, 0.1, 0.2, 0.3, 0.4, 0.5, 0.6, 0.8, 1.0]
+
+    def at(roc):
+        return np.interp(grid, roc["false_positive_rate"], roc["true_positive_rate"])
+
+    inside = at(v.in_sample.roc)
+    cv = at(v.cross_validated.roc) if v.cross_validated is not None else None
+    rows = [
+        [f"{g:.2f}", f"{a:.3f}", f"{cv[i]:.3f}" if cv is not None else ""]
+        for i, (g, a) in enumerate(zip(grid, inside, strict=True))
+    ]
+    return FigureView(
+        path,
+        "",
+        "ROC curve: the further above the dotted diagonal, the better the model tells patients "
+        "apart.",
+        attr(_alt_roc(m)),
+        [
+            "False-positive rate",
+            "True-positive rate, in sample",
+            "True-positive rate, cross-validated",
+        ],
+        rows,
+        kind="roc",
+    )
+
+
+def calibration(m: MeasureResult, path: str, unit: str) -> FigureView:
+    """The model report's calibration plot: its words, alt text and table of risk groups."""
+    v = m.model_validation
+    k = 100.0 if v.binary else 1.0
+    cvg = v.cross_validated.groups if v.cross_validated is not None else None
+    rows = [
+        [
+            f"{int(g['group'])}",
+            f"{g['expected_mean'] * k:.2f}",
+            f"{g['observed_mean'] * k:.2f}",
+            f"{cvg['expected_mean'].iloc[i] * k:.2f}" if cvg is not None and i < len(cvg) else "",
+            f"{cvg['observed_mean'].iloc[i] * k:.2f}" if cvg is not None and i < len(cvg) else "",
+        ]
+        for i, g in v.in_sample.groups.iterrows()
+    ]
+    return FigureView(
+        path,
+        "",
+        "Calibration: observed against expected by risk group; points on the dotted diagonal "
+        "are perfectly calibrated.",
+        attr(_alt_calibration(m, unit)),
+        [
+            "Risk group",
+            f"Expected ({unit})",
+            f"Observed ({unit})",
+            "Expected, cross-validated",
+            "Observed, cross-validated",
+        ],
+        rows,
+        kind="calibration",
+    )
+
+
+def _alt_roc(m: MeasureResult) -> str:
+    v = m.model_validation
+    text = (
+        f"ROC curve of the case-mix model for {m.measure.name}: the in-sample curve has "
+        f"area {v.in_sample.values['c_statistic']:.3f}"
+    )
+    if v.cross_validated is not None:
+        text += f", the cross-validated curve {v.cross_validated.values['c_statistic']:.3f}"
+    return text + ". Both rise above the dotted diagonal of a coin toss"
+
+
+def _alt_calibration(m: MeasureResult, unit: str) -> str:
+    g = m.model_validation.in_sample.groups
+    k = 100.0 if m.model_validation.binary else 1.0
+    return (
+        f"Calibration of the case-mix model for {m.measure.name}: observed against expected in "
+        f"{len(g)} risk groups, from "
+        f"{g['expected_mean'].iloc[0] * k:.1f} to {g['expected_mean'].iloc[-1] * k:.1f} {unit} "
+        "expected and "
+        f"{g['observed_mean'].iloc[0] * k:.1f} to {g['observed_mean'].iloc[-1] * k:.1f} {unit} "
+        "observed; points on the dotted diagonal "
+        "would be perfectly calibrated"
     )

@@ -178,54 +178,7 @@ def figure_jobs(
 ) -> list[Job]:
     """Every figure of the site as a drawing job (measure charts with PNG beside, unit strips, model
     plots)."""
-    jobs: list[Job] = []
-    for r in results:
-        scale, label = axis(r)
-        key_ = r.measure.key
-        data = measure_figure_data(r)
-        if len(data):
-            # PNG copies for slides and documents; above PNG_MAX_UNITS rows the tall PNG costs more
-            # than it helps
-            jobs.append(
-                Job(
-                    measure_figure_path(key_, "intervals"),
-                    "draw_intervals",
-                    data,
-                    (r.benchmark * scale, label),
-                    png=len(data) <= PNG_MAX_UNITS,
-                )
-            )
-            jobs.append(
-                Job(
-                    measure_figure_path(key_, "movement"),
-                    "draw_movement",
-                    movement_figure_data(r),
-                    (r.benchmark * scale, label),
-                )
-            )
-        f = funnels.get(key_)
-        if f is not None:
-            points, curves = f.scaled(scale)
-            jobs.append(
-                Job(
-                    measure_figure_path(key_, "funnel"),
-                    "draw_funnel",
-                    points,
-                    (curves, f.benchmark * scale, label),
-                    png=True,
-                )
-            )
-        if r.validation is not None:
-            jobs.append(
-                Job(
-                    model_figure_path(key_, "calibration"),
-                    "draw_calibration",
-                    calibration_figure_data(r),
-                    ("%" if r.validation.binary else r.measure.unit_label,),
-                )
-            )
-            if r.validation.binary:
-                jobs.append(Job(model_figure_path(key_, "roc"), "draw_roc", roc_figure_data(r)))
+    jobs = [job for r in results for job in _measure_jobs(r, funnels.get(r.measure.key))]
     frame = position_frame(results)
     frame_text = frame.to_csv()  # shared by every strip: turned into text once
     for uid in unit_ids:
@@ -244,6 +197,58 @@ def figure_jobs(
             trend = trend_data(uid, results, past, period)
             if trend is not None:
                 jobs.append(Job(unit_figure_path(slugs[uid], "trend"), "draw_trend", trend))
+    return jobs
+
+
+def _measure_jobs(r: MeasureResult, funnel) -> list[Job]:
+    """A measure's charts (intervals and funnel with PNG copies, movement) and model plots."""
+    jobs: list[Job] = []
+    scale, label = axis(r)
+    key_ = r.measure.key
+    data = measure_figure_data(r)
+    if len(data):
+        # PNG copies for slides and documents; above PNG_MAX_UNITS rows the tall PNG costs more
+        # than it helps
+        jobs.append(
+            Job(
+                measure_figure_path(key_, "intervals"),
+                "draw_intervals",
+                data,
+                (r.benchmark * scale, label),
+                png=len(data) <= PNG_MAX_UNITS,
+            )
+        )
+        jobs.append(
+            Job(
+                measure_figure_path(key_, "movement"),
+                "draw_movement",
+                movement_figure_data(r),
+                (r.benchmark * scale, label),
+            )
+        )
+    f = funnel
+    if f is not None:
+        points, curves = f.scaled(scale)
+        jobs.append(
+            Job(
+                measure_figure_path(key_, "funnel"),
+                "draw_funnel",
+                points,
+                (curves, f.benchmark * scale, label),
+                png=True,
+            )
+        )
+    if r.validation is not None:
+        jobs.append(
+            Job(
+                model_figure_path(key_, "calibration"),
+                "draw_calibration",
+                calibration_figure_data(r),
+                ("%" if r.validation.binary else r.measure.unit_label,),
+            )
+        )
+        if r.validation.binary:
+            jobs.append(Job(model_figure_path(key_, "roc"), "draw_roc", roc_figure_data(r)))
     return jobs
 
 

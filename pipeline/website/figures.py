@@ -205,16 +205,47 @@ def draw_positions(frame: pd.DataFrame, items: list[tuple[str, pd.DataFrame]]) -
     One row per measure on a single panel (fewer artists than facets, so each file is quick to
     write).
     """
-    from matplotlib.lines import Line2D
-    from matplotlib.transforms import blended_transform_factory
-
     measures = list(frame["measure"])
     rows = np.arange(len(measures))[::-1].astype(float)  # first measure on top
+    lo, hi = _x_limits(frame)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        fig = _strip_frame(frame, measures, rows, lo, hi).draw()
+    # Let plotnine's layout engine place everything once, then drop the engine: with an engine,
+    # matplotlib draws the whole figure twice per save. (set_layout_engine(None) refuses to drop an
+    # engine whose colour-bar settings differ, hence the attribute.)
+    fig.canvas.draw()
+    fig.savefig(io.BytesIO(), format="svg")
+    fig._layout_engine = None  # type: ignore[attr-defined]
+    marks = _unit_marks(fig.axes[0], rows)
+    for path, data in items:
+        for (line, point, text, y), (_, r) in zip(marks, data.iterrows(), strict=True):
+            if pd.isna(r["ratio"]):
+                line.set_data([], [])
+                point.set_data([], [])
+                text.set_text("not reported")
+                continue
+            colour, marker = GROUP_MARKS[r["group"]]
+            # plotnine draws a log10 scale in transformed units: place the marks the same way
+            line.set_data(np.log10([max(r["lo"], lo), min(r["hi"], hi)]), [y, y])
+            line.set_color(colour)
+            point.set_data([np.log10(r["ratio"])], [y])
+            point.set_marker(marker)
+            point.set_markeredgecolor(colour)
+            text.set_text(GROUPS[r["group"]])
+        Path(path).parent.mkdir(parents=True, exist_ok=True)
+        fig.savefig(path, metadata={"Date": None})
+    matplotlib.pyplot.close(fig)
+
+
+def _strip_frame(
+    frame: pd.DataFrame, measures: list, rows: np.ndarray, lo: float, hi: float
+) -> p9.ggplot:
+    """What every unit strip shares: bands where most units sit, benchmark lines, scales."""
     f = frame.assign(
         row=rows, bottom=rows - 0.36, top=rows + 0.36, b_lo=rows - 0.45, b_hi=rows + 0.45
     )
-    lo, hi = _x_limits(frame)
-    plot = (
+    return (
         p9.ggplot(f)
         + p9.geom_rect(
             p9.aes(xmin="band_lo", xmax="band_hi", ymin="bottom", ymax="top"),
@@ -238,16 +269,13 @@ def draw_positions(frame: pd.DataFrame, items: list[tuple[str, pd.DataFrame]]) -
             panel_grid_major_y=p9.element_blank(),
         )
     )
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore")
-        fig = plot.draw()
-    # Let plotnine's layout engine place everything once, then drop the engine: with an engine,
-    # matplotlib draws the whole figure twice per save. (set_layout_engine(None) refuses to drop an
-    # engine whose colour-bar settings differ, hence the attribute.)
-    fig.canvas.draw()
-    fig.savefig(io.BytesIO(), format="svg")
-    fig._layout_engine = None  # type: ignore[attr-defined]
-    ax = fig.axes[0]
+
+
+def _unit_marks(ax, rows: np.ndarray) -> list[tuple]:
+    """Per measure row: an empty interval line, marker and label, moved for each unit."""
+    from matplotlib.lines import Line2D
+    from matplotlib.transforms import blended_transform_factory
+
     at_right = blended_transform_factory(ax.transAxes, ax.transData)
     marks = []
     for row in rows:
@@ -257,41 +285,18 @@ def draw_positions(frame: pd.DataFrame, items: list[tuple[str, pd.DataFrame]]) -
         )
         ax.add_line(line)
         ax.add_line(point)
-        marks.append(
-            (
-                line,
-                point,
-                ax.text(
-                    0.99,
-                    row,
-                    "",
-                    transform=at_right,
-                    ha="right",
-                    va="center",
-                    fontsize=8.5,
-                    color=BENCHMARK_INK,
-                ),
-                row,
-            )
+        text = ax.text(
+            0.99,
+            row,
+            "",
+            transform=at_right,
+            ha="right",
+            va="center",
+            fontsize=8.5,
+            color=BENCHMARK_INK,
         )
-    for path, data in items:
-        for (line, point, text, y), (_, r) in zip(marks, data.iterrows(), strict=True):
-            if pd.isna(r["ratio"]):
-                line.set_data([], [])
-                point.set_data([], [])
-                text.set_text("not reported")
-                continue
-            colour, marker = GROUP_MARKS[r["group"]]
-            # plotnine draws a log10 scale in transformed units: place the marks the same way
-            line.set_data(np.log10([max(r["lo"], lo), min(r["hi"], hi)]), [y, y])
-            line.set_color(colour)
-            point.set_data([np.log10(r["ratio"])], [y])
-            point.set_marker(marker)
-            point.set_markeredgecolor(colour)
-            text.set_text(GROUPS[r["group"]])
-        Path(path).parent.mkdir(parents=True, exist_ok=True)
-        fig.savefig(path, metadata={"Date": None})
-    matplotlib.pyplot.close(fig)
+        marks.append((line, point, text, row))
+    return marks
 
 
 def draw_trend(data: pd.DataFrame, path: Path, png: bool) -> None:

@@ -161,17 +161,7 @@ def funnel(table: pd.DataFrame, null: str, benchmark: float, widen: bool = False
     oe = t["observed"].to_numpy(float) / expected  # the published O/E
     phi, tau2 = overdispersion(oe, 1.0, 1.0 / np.sqrt(rho))
     used_tau2 = tau2 if widen else 0.0
-    # whole numbers of effective cases, so the drawn curve is the points' own limits
-    if null == "binomial":
-        per_case = mean_risk / (1 - mean_risk)
-        n = np.unique(
-            np.round(
-                np.geomspace(max(1.0, rho.min() / per_case * 0.8), rho.max() / per_case * 1.1, 400)
-            )
-        )
-        grid = n * per_case
-    else:
-        grid = np.geomspace(rho.min() * 0.8, rho.max() * 1.1, 300)
+    grid = _curve_grid(null, rho, mean_risk)
     points = pd.DataFrame(
         {
             "unit_name": t["unit_name"].to_numpy(),
@@ -200,6 +190,20 @@ def funnel(table: pd.DataFrame, null: str, benchmark: float, widen: bool = False
         widened=widen,
         method=method,
     )
+
+
+def _curve_grid(null: str, rho: np.ndarray, mean_risk: float) -> np.ndarray:
+    """Precisions at which the funnel lines are drawn, a little beyond the units' own."""
+    if null != "binomial":
+        return np.geomspace(rho.min() * 0.8, rho.max() * 1.1, 300)
+    # whole numbers of effective cases, so the drawn curve is the points' own limits
+    per_case = mean_risk / (1 - mean_risk)
+    n = np.unique(
+        np.round(
+            np.geomspace(max(1.0, rho.min() / per_case * 0.8), rho.max() / per_case * 1.1, 400)
+        )
+    )
+    return n * per_case
 
 
 def outside(f: Funnel) -> dict[str, int]:

@@ -11,10 +11,11 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from pipeline.results import FIT_SETTINGS, POSITION, MeasureResult
+from pipeline.results import FIT_SETTINGS, POSITION, MeasureResult, Validation
+from pipeline.website import captions
 from pipeline.website.captions import FigureView
 from pipeline.website.figure_data import model_figure_path
-from pipeline.website.markup import attr, code, md
+from pipeline.website.markup import code, md
 
 BINARY_ROWS = [
     "c_statistic",
@@ -77,6 +78,7 @@ def _in_ten(c: float) -> str:
 
 
 def _summary(m: MeasureResult) -> list[str]:
+    """How good the case-mix model is, in plain sentences."""
     v = m.validation
     if v is None:
         return [
@@ -85,154 +87,68 @@ def _summary(m: MeasureResult) -> list[str]:
             "model and cannot check one. How good the adjustment is depends on the model that "
             "produced those numbers."
         ]
+    return _binary_summary(v) if v.binary else [_continuous_summary(v)]
+
+
+def _binary_summary(v: Validation) -> list[str]:
     cv = v.cross_validated
-    out = []
-    if v.binary:
-        c_in = v.in_sample.values["c_statistic"]
-        text = (
-            f"The model ranks a patient who had the outcome above one who did not {_in_ten(c_in)} "
-            f"(C-statistic {c_in:.3f}; 0.5 would be a coin toss"
-        )
-        if cv is not None:
-            c_cv = cv.values["c_statistic"]
-            text += f", and {c_cv:.3f} on patients the model was not fitted to"
-        out.append(text + ").")
-        slope = (cv or v.in_sample).values["calibration_slope"]
-        if cv is not None:
-            if slope < 0.9:
-                out.append(
-                    "Checked on patients it was not fitted to, the calibration slope is "
-                    f"{slope:.2f}: the model's risks are too spread out, a sign of "
-                    "overfitting. Consider fewer risk factors."
-                )
-            elif slope > 1.1:
-                out.append(
-                    "Checked on patients it was not fitted to, the calibration slope is "
-                    f"{slope:.2f}: the model's risks are too bunched together."
-                )
-            else:
-                out.append(
-                    "Checked on patients it was not fitted to, the calibration slope is "
-                    f"{slope:.2f}, close to the ideal of 1: there is no sign of overfitting."
-                )
-        groups = v.in_sample.groups
-        worst = (
-            float(
-                np.nanmax(
-                    np.abs(
-                        groups["expected"] / groups["observed"].where(groups["observed"] > 0) - 1
-                    )
-                )
+    c_in = v.in_sample.values["c_statistic"]
+    text = (
+        f"The model ranks a patient who had the outcome above one who did not {_in_ten(c_in)} "
+        f"(C-statistic {c_in:.3f}; 0.5 would be a coin toss"
+    )
+    if cv is not None:
+        c_cv = cv.values["c_statistic"]
+        text += f", and {c_cv:.3f} on patients the model was not fitted to"
+    out = [text + ")."]
+    if cv is not None:
+        out.append(_slope_words(cv.values["calibration_slope"]))
+    groups = v.in_sample.groups
+    worst = (
+        float(
+            np.nanmax(
+                np.abs(groups["expected"] / groups["observed"].where(groups["observed"] > 0) - 1)
             )
-            if len(groups)
-            else float("nan")
         )
-        if not np.isnan(worst):
-            out.append(
-                f"Across the {len(groups)} risk groups, expected and observed counts differ by "
-                f"at most {worst * 100:.0f}%."
-            )
-    else:
-        r2, mae = v.in_sample.values["r_squared"], v.in_sample.values["mae_percent"]
-        text = (
-            f"The model explains {max(r2, 0) * 100:.0f}% of the variation between "
-            f"patients; its predictions are off by {mae:.0f}% of the average, on average"
-        )
-        if cv is not None:
-            text += (
-                f" ({max(cv.values['r_squared'], 0) * 100:.0f}% and "
-                f"{cv.values['mae_percent']:.0f}% on patients it was not fitted to)"
-            )
+        if len(groups)
+        else float("nan")
+    )
+    if not np.isnan(worst):
         out.append(
-            text + ". Individual stays vary a lot; the model is meant to make unit averages "
-            "comparable, not to predict one patient."
+            f"Across the {len(groups)} risk groups, expected and observed counts differ by "
+            f"at most {worst * 100:.0f}%."
         )
     return out
 
 
-def _roc_figure(m: MeasureResult, path: str) -> FigureView:
-    v = m.model_validation
-    grid = [0.0, 0.05, 0.1, 0.2, 0.3, 0.4, 0.5, 0.6, 0.8, 1.0]
-
-    def at(roc):
-        return np.interp(grid, roc["false_positive_rate"], roc["true_positive_rate"])
-
-    inside = at(v.in_sample.roc)
-    cv = at(v.cross_validated.roc) if v.cross_validated is not None else None
-    rows = [
-        [f"{g:.2f}", f"{a:.3f}", f"{cv[i]:.3f}" if cv is not None else ""]
-        for i, (g, a) in enumerate(zip(grid, inside, strict=True))
-    ]
-    return FigureView(
-        path,
-        "",
-        "ROC curve: the further above the dotted diagonal, the better the model tells patients "
-        "apart.",
-        attr(_alt_roc(m)),
-        [
-            "False-positive rate",
-            "True-positive rate, in sample",
-            "True-positive rate, cross-validated",
-        ],
-        rows,
-        kind="roc",
-    )
+def _slope_words(slope: float) -> str:
+    """The cross-validated calibration slope in words (1 is ideal)."""
+    text = f"Checked on patients it was not fitted to, the calibration slope is {slope:.2f}"
+    if slope < 0.9:
+        return (
+            text + ": the model's risks are too spread out, a sign of overfitting. Consider "
+            "fewer risk factors."
+        )
+    if slope > 1.1:
+        return text + ": the model's risks are too bunched together."
+    return text + ", close to the ideal of 1: there is no sign of overfitting."
 
 
-def _calibration_figure(m: MeasureResult, path: str, unit: str) -> FigureView:
-    v = m.model_validation
-    k = 100.0 if v.binary else 1.0
-    cvg = v.cross_validated.groups if v.cross_validated is not None else None
-    rows = [
-        [
-            f"{int(g['group'])}",
-            f"{g['expected_mean'] * k:.2f}",
-            f"{g['observed_mean'] * k:.2f}",
-            f"{cvg['expected_mean'].iloc[i] * k:.2f}" if cvg is not None and i < len(cvg) else "",
-            f"{cvg['observed_mean'].iloc[i] * k:.2f}" if cvg is not None and i < len(cvg) else "",
-        ]
-        for i, g in v.in_sample.groups.iterrows()
-    ]
-    return FigureView(
-        path,
-        "",
-        "Calibration: observed against expected by risk group; points on the dotted diagonal "
-        "are perfectly calibrated.",
-        attr(_alt_calibration(m, unit)),
-        [
-            "Risk group",
-            f"Expected ({unit})",
-            f"Observed ({unit})",
-            "Expected, cross-validated",
-            "Observed, cross-validated",
-        ],
-        rows,
-        kind="calibration",
-    )
-
-
-def _alt_roc(m: MeasureResult) -> str:
-    v = m.model_validation
+def _continuous_summary(v: Validation) -> str:
+    cv = v.cross_validated
+    r2, mae = v.in_sample.values["r_squared"], v.in_sample.values["mae_percent"]
     text = (
-        f"ROC curve of the case-mix model for {m.measure.name}: the in-sample curve has "
-        f"area {v.in_sample.values['c_statistic']:.3f}"
+        f"The model explains {max(r2, 0) * 100:.0f}% of the variation between "
+        f"patients; its predictions are off by {mae:.0f}% of the average, on average"
     )
-    if v.cross_validated is not None:
-        text += f", the cross-validated curve {v.cross_validated.values['c_statistic']:.3f}"
-    return text + ". Both rise above the dotted diagonal of a coin toss"
-
-
-def _alt_calibration(m: MeasureResult, unit: str) -> str:
-    g = m.model_validation.in_sample.groups
-    k = 100.0 if m.model_validation.binary else 1.0
+    if cv is not None:
+        text += (
+            f" ({max(cv.values['r_squared'], 0) * 100:.0f}% and "
+            f"{cv.values['mae_percent']:.0f}% on patients it was not fitted to)"
+        )
     return (
-        f"Calibration of the case-mix model for {m.measure.name}: observed against expected in "
-        f"{len(g)} risk groups, from "
-        f"{g['expected_mean'].iloc[0] * k:.1f} to {g['expected_mean'].iloc[-1] * k:.1f} {unit} "
-        "expected and "
-        f"{g['observed_mean'].iloc[0] * k:.1f} to {g['observed_mean'].iloc[-1] * k:.1f} {unit} "
-        "observed; points on the dotted diagonal "
-        "would be perfectly calibrated"
+        text + ". Individual stays vary a lot; the model is meant to make unit averages "
+        "comparable, not to predict one patient."
     )
 
 
@@ -255,18 +171,61 @@ def model_view(m: MeasureResult, drawn: dict) -> ModelView:
     family, ratio_word = FIT_SETTINGS.families.get(
         fit.family, ("none: expected values were supplied", "ratio")
     )
-    extra = []
-    if fit.family == "lognormal":
-        extra.append(
-            f"Duan's smearing factor is {fit.smearing:.3f}: the back-transformed means are "
-            f"multiplied by it; the residual variance on the log scale is {fit.dispersion:.3f}."
-        )
-    if fit.family == "gamma":
-        extra.append(
-            f"The Pearson dispersion of the Gamma fit is {fit.dispersion:.3f} (a Gamma shape "
-            f"of about {1 / fit.dispersion:.2f})."
-        )
-    ex = fit.exclusions or {}
+    coefficients = [
+        {
+            "term": md(t),
+            "ratio": f"{r['ratio']:.3f}",
+            "interval": f"{r['lower']:.3f} to {r['upper']:.3f}",
+        }
+        for t, r in fit.coefficients.iterrows()
+    ]
+    equity, equity_summary = _equity_rows(m)
+    roc_path = model_figure_path(m.measure.key, "roc")
+    cal_path = model_figure_path(m.measure.key, "calibration")
+    return ModelView(
+        key=m.measure.key,
+        name=md(m.measure.name),
+        measure_href=f"measures/{m.measure.key}.qmd",
+        source=source,
+        family=family,
+        ratio_word=ratio_word.capitalize(),
+        formula=code(fit.formula),
+        patients=f"{fit.patients:,}",
+        units_in_fit=fit.units_in_fit,
+        solver=fit.solver,
+        extra=_family_notes(fit.family, fit.smearing, fit.dispersion),
+        exclusions=_exclusion_notes(m, source),
+        coefficients=coefficients,
+        validation=_validation_rows(v, unit) if v is not None else [],
+        folds=v.folds if v is not None else 0,
+        groups=_risk_group_rows(v) if v is not None else [],
+        summary=_summary(m),
+        roc=captions.roc(m, roc_path) if roc_path in drawn else None,
+        calibration=captions.calibration(m, cal_path, unit) if cal_path in drawn else None,
+        equity=equity,
+        equity_summary=equity_summary,
+        social_risk=", ".join(md(s) for s in m.measure.social_risk),
+    )
+
+
+def _family_notes(family: str, smearing: float, dispersion: float) -> list[str]:
+    """Sentences about the smearing factor or the dispersion of a continuous model."""
+    if family == "lognormal":
+        return [
+            f"Duan's smearing factor is {smearing:.3f}: the back-transformed means are "
+            f"multiplied by it; the residual variance on the log scale is {dispersion:.3f}."
+        ]
+    if family == "gamma":
+        return [
+            f"The Pearson dispersion of the Gamma fit is {dispersion:.3f} (a Gamma shape "
+            f"of about {1 / dispersion:.2f})."
+        ]
+    return []
+
+
+def _exclusion_notes(m: MeasureResult, source: str) -> list[str]:
+    """Patients left out, or with a value filled in, because a risk factor was missing."""
+    ex = m.casemix.exclusions or {}
     exclusions = []
     if ex.get("dropped_rows"):
         per_var = ", ".join(f"{md(k)} {n:,}" for k, n in ex["dropped"].items())
@@ -288,108 +247,86 @@ def model_view(m: MeasureResult, drawn: dict) -> ModelView:
             "No patient was left out or had a value filled in: every risk factor was recorded "
             "for every patient."
         )
-    coefficients = [
+    return exclusions
+
+
+def _validation_rows(v: Validation, unit: str) -> list[dict[str, str]]:
+    """One row per validation metric: in sample and cross-validated."""
+    rows = []
+    cross = v.cross_validated
+    for key in BINARY_ROWS if v.binary else CONTINUOUS_ROWS:
+        inside = v.in_sample.values[key]
+        cv = cross.values[key] if cross is not None else float("nan")
+        if key == "c_statistic":
+            lo, hi = v.in_sample.values["c_lower"], v.in_sample.values["c_upper"]
+            shown = f"{inside:.3f} ({lo:.3f} to {hi:.3f})"
+            shown_cv = (
+                f"{cv:.3f} ({cross.values['c_lower']:.3f} to {cross.values['c_upper']:.3f})"
+                if cross is not None
+                else "not applicable"
+            )
+        elif key == "hl_statistic":
+            shown = f"{inside:.2f} on {v.in_sample.values['hl_df']:.0f} df"
+            shown_cv = (
+                f"{cv:.2f} on {cross.values['hl_df']:.0f} df"
+                if cross is not None
+                else "not applicable"
+            )
+        else:
+            shown = _fmt(key, inside, unit)
+            shown_cv = _fmt(key, cv, unit) if cross is not None else "not applicable"
+        label = FIT_SETTINGS.metric_labels[key] + (
+            " (95% interval, DeLong)" if key == "c_statistic" else ""
+        )
+        if key in ("sensitivity", "specificity", "ppv"):
+            label += f" ({v.threshold * 100:.1f}%)"
+        rows.append({"label": label, "in_sample": shown, "cross_validated": shown_cv})
+    return rows
+
+
+def _risk_group_rows(v: Validation) -> list[dict[str, str]]:
+    """Expected against observed per risk group, in sample and cross-validated."""
+    k = 100.0 if v.binary else 1.0
+    cvg = v.cross_validated.groups if v.cross_validated is not None else None
+    groups = []
+    for i, g in v.in_sample.groups.iterrows():
+        cv_expected = cv_observed = ""
+        if cvg is not None and i < len(cvg):
+            cv_expected = f"{cvg['expected_mean'].iloc[i] * k:.2f}"
+            cv_observed = f"{cvg['observed_mean'].iloc[i] * k:.2f}"
+        groups.append(
+            {
+                "group": f"{int(g['group'])}",
+                "patients": f"{int(g['patients']):,}",
+                "expected": f"{g['expected_mean'] * k:.2f}",
+                "observed": f"{g['observed_mean'] * k:.2f}",
+                "ratio": f"{g['predictive_ratio']:.2f}" if g["observed"] > 0 else "not defined",
+                "cv_expected": cv_expected,
+                "cv_observed": cv_observed,
+            }
+        )
+    return groups
+
+
+def _equity_rows(m: MeasureResult) -> tuple[list[dict[str, str]], str]:
+    """Each reported unit's position with and without the social-risk factors, and a summary."""
+    if m.equity is None:
+        return [], ""
+    equity = [
         {
-            "term": md(t),
-            "ratio": f"{r['ratio']:.3f}",
-            "interval": f"{r['lower']:.3f} to {r['upper']:.3f}",
+            "name": md(e["unit_name"]),
+            "with": POSITION.get(e["position_with"], ""),
+            "without": POSITION.get(e["position_without"], ""),
+            "changed": "changes" if e["changed"] else "same",
         }
-        for t, r in fit.coefficients.iterrows()
-    ]
-    rows, groups = [], []
-    if v is not None:
-        for key in BINARY_ROWS if v.binary else CONTINUOUS_ROWS:
-            inside = v.in_sample.values[key]
-            cv = v.cross_validated.values[key] if v.cross_validated is not None else float("nan")
-            if key == "c_statistic":
-                lo, hi = v.in_sample.values["c_lower"], v.in_sample.values["c_upper"]
-                shown = f"{inside:.3f} ({lo:.3f} to {hi:.3f})"
-                shown_cv = (
-                    f"{cv:.3f} ({v.cross_validated.values['c_lower']:.3f} to "
-                    f"{v.cross_validated.values['c_upper']:.3f})"
-                    if v.cross_validated is not None
-                    else "not applicable"
-                )
-            elif key == "hl_statistic":
-                shown = f"{inside:.2f} on {v.in_sample.values['hl_df']:.0f} df"
-                shown_cv = (
-                    f"{cv:.2f} on {v.cross_validated.values['hl_df']:.0f} df"
-                    if v.cross_validated is not None
-                    else "not applicable"
-                )
-            else:
-                shown, shown_cv = (
-                    _fmt(key, inside, unit),
-                    (_fmt(key, cv, unit) if v.cross_validated is not None else "not applicable"),
-                )
-            label = FIT_SETTINGS.metric_labels[key] + (
-                " (95% interval, DeLong)" if key == "c_statistic" else ""
-            )
-            if key in ("sensitivity", "specificity", "ppv"):
-                label += f" ({v.threshold * 100:.1f}%)"
-            rows.append({"label": label, "in_sample": shown, "cross_validated": shown_cv})
-        k = 100.0 if v.binary else 1.0
-        cvg = v.cross_validated.groups if v.cross_validated is not None else None
-        for i, g in v.in_sample.groups.iterrows():
-            groups.append(
-                {
-                    "group": f"{int(g['group'])}",
-                    "patients": f"{int(g['patients']):,}",
-                    "expected": f"{g['expected_mean'] * k:.2f}",
-                    "observed": f"{g['observed_mean'] * k:.2f}",
-                    "ratio": f"{g['predictive_ratio']:.2f}" if g["observed"] > 0 else "not defined",
-                    "cv_expected": f"{cvg['expected_mean'].iloc[i] * k:.2f}"
-                    if cvg is not None and i < len(cvg)
-                    else "",
-                    "cv_observed": f"{cvg['observed_mean'].iloc[i] * k:.2f}"
-                    if cvg is not None and i < len(cvg)
-                    else "",
-                }
-            )
-    equity, equity_summary = [], ""
-    if m.equity is not None:
         for _, e in m.equity.sort_values(
             ["changed", "unit_name"], ascending=[False, True]
-        ).iterrows():
-            equity.append(
-                {
-                    "name": md(e["unit_name"]),
-                    "with": POSITION.get(e["position_with"], ""),
-                    "without": POSITION.get(e["position_without"], ""),
-                    "changed": "changes" if e["changed"] else "same",
-                }
-            )
-        n_changed = int(m.equity["changed"].sum())
-        equity_summary = (
-            f"{n_changed} of {len(m.equity)} reported units "
-            f"{'changes' if n_changed == 1 else 'change'} position when the "
-            "social-risk factors are left out of the case-mix model."
-        )
-    roc_path, cal_path = (
-        model_figure_path(m.measure.key, "roc"),
-        model_figure_path(m.measure.key, "calibration"),
+        ).iterrows()
+    ]
+    n_changed = int(m.equity["changed"].sum())
+    summary = (
+        f"{n_changed} of {len(m.equity)} reported units "
+        f"{'changes' if n_changed == 1 else 'change'} position when the "
+        "social-risk factors are left out of the case-mix model."
     )
-    return ModelView(
-        key=m.measure.key,
-        name=md(m.measure.name),
-        measure_href=f"measures/{m.measure.key}.qmd",
-        source=source,
-        family=family,
-        ratio_word=ratio_word.capitalize(),
-        formula=code(fit.formula),
-        patients=f"{fit.patients:,}",
-        units_in_fit=fit.units_in_fit,
-        solver=fit.solver,
-        extra=extra,
-        exclusions=exclusions,
-        coefficients=coefficients,
-        validation=rows,
-        folds=v.folds if v is not None else 0,
-        groups=groups,
-        summary=_summary(m),
-        roc=_roc_figure(m, roc_path) if roc_path in drawn else None,
-        calibration=_calibration_figure(m, cal_path, unit) if cal_path in drawn else None,
-        equity=equity,
-        equity_summary=equity_summary,
-        social_risk=", ".join(md(s) for s in m.measure.social_risk),
-    )
+    return equity, summary

@@ -23,7 +23,7 @@ from pipeline.website.history_views import change_views, trends
 from pipeline.website.markup import attr, code, md
 from pipeline.website.model_page import model_view
 from pipeline.website.sentences import GROUP_SYMBOLS, SYMBOLS
-from pipeline.website.views import views
+from pipeline.website.views import MeasureView, UnitView, build_views
 
 
 def environment() -> jinja2.Environment:
@@ -53,21 +53,11 @@ def _up(path: str) -> str:
     return "../" * (len(PurePosixPath(path).parts) - 1)
 
 
-def render_pages(
-    config: CycleConfig,
-    results: list[MeasureResult],
-    units: pd.DataFrame,
-    slugs: dict[str, str],
-    drawn: dict,
-    past: list[PastCycle],
-    site: dict,
-    funnels: dict[str, Funnel | None] | None = None,
-) -> list[Page]:
-    """All pages of the site plus ``_quarto.yml``, as text."""
-    env = environment()
-    measures, unit_views = views(config, results, units, slugs, drawn, funnels)
-    unit_trends = trends(config, results, past, slugs)
-    common = {
+def _common_context(
+    config: CycleConfig, site: dict, measures: list[MeasureView], unit_views: list[UnitView]
+) -> dict:
+    """What every page template is given: the cycle, the site, every measure and unit."""
+    return {
         "cycle": config.cycle,
         "site": site,
         "measures": measures,
@@ -84,6 +74,23 @@ def render_pages(
         "group_symbols": GROUP_SYMBOLS,
         "k_hat_max": FIT_SETTINGS.k_hat_max,
     }
+
+
+def render_pages(
+    config: CycleConfig,
+    results: list[MeasureResult],
+    units: pd.DataFrame,
+    slugs: dict[str, str],
+    drawn: dict,
+    past: list[PastCycle],
+    site: dict,
+    funnels: dict[str, Funnel | None] | None = None,
+) -> list[Page]:
+    """All pages of the site plus ``_quarto.yml``, as text."""
+    env = environment()
+    measures, unit_views = build_views(config, results, units, slugs, drawn, funnels)
+    unit_trends = trends(config, results, past, slugs)
+    common = _common_context(config, site, measures, unit_views)
     pages: list[tuple[str, str, dict]] = [
         ("index.qmd", "index.qmd.j2", {}),
         ("units.qmd", "units.qmd.j2", {}),

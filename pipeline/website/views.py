@@ -9,10 +9,9 @@ import pandas as pd
 
 from pipeline.config import CycleConfig
 from pipeline.results import GROUPS, POSITION, STATUS, MeasureResult
-from pipeline.website import captions
 from pipeline.website.captions import FigureView
-from pipeline.website.figure_data import axis, measure_figure_path, png_of, unit_figure_path
-from pipeline.website.funnel import Funnel, outside
+from pipeline.website.figure_views import measure_figures, unit_figures
+from pipeline.website.funnel import Funnel
 from pipeline.website.markup import chance, code, md, num, value, value_span
 from pipeline.website.sentences import (
     GROUP_SYMBOLS,
@@ -142,87 +141,6 @@ def _cell(m: MeasureResult, row: pd.Series, level: str, min_cases: int) -> Cell:
     )
 
 
-def _if_drawn(path: str, drawn: dict) -> str:
-    return path if path in drawn else ""
-
-
-def _measure_figures(
-    m: MeasureResult, drawn: dict, f: Funnel | None, level: str
-) -> tuple[list[FigureView], str]:
-    """The measure's pictures (intervals, funnel, movement) with their words and tables; and the
-    funnel in a sentence."""
-    k = axis(m)[0]
-    unit = md(m.measure.unit_label) if m.measure.type == "continuous" else "%"
-    fmt = (
-        (lambda x: f"{x:,.1f} {unit}")
-        if m.measure.type == "continuous"
-        else (lambda x: f"{x:.1f}%")
-    )
-    bench = fmt(m.benchmark * k)
-    out = []
-    path = measure_figure_path(m.measure.key, "intervals")
-    if path in drawn:
-        out.append(
-            captions.intervals(
-                path,
-                _if_drawn(png_of(path), drawn),
-                drawn[path],
-                fmt,
-                lambda lo, hi: f"{fmt(lo)} to {fmt(hi)}",
-                bench,
-                level,
-            )
-        )
-    words = ""
-    path = measure_figure_path(m.measure.key, "funnel")
-    if f is not None:
-        counts = outside(f)
-        if path in drawn:
-            out.append(
-                captions.funnel(
-                    path,
-                    _if_drawn(png_of(path), drawn),
-                    drawn[path],
-                    fmt,
-                    bench,
-                    counts,
-                    f.phi,
-                    f.widened,
-                )
-            )
-        spread = (
-            "about what chance alone would give"
-            if f.phi < 1.5
-            else f"{f.phi:.1f} times what chance alone would give"
-        )
-        words = (
-            f"In the funnel plot, {counts['998']} of {counts['units']} units are outside the "
-            f"outer (99.8%) limits and {counts['95']} are outside the inner (95%) limits. "
-            f"The spread between units is {spread}. "
-            + (
-                "The limits were widened to allow for it."
-                if f.widened
-                else "The limits were not widened for it."
-            )
-        )
-    path = measure_figure_path(m.measure.key, "movement")
-    if path in drawn:
-        points_word = "percentage points" if m.measure.type == "binary" else unit
-        out.append(captions.movement(path, "", drawn[path], fmt, bench, points_word))
-    return out, words
-
-
-def _unit_figures(name: str, slug_: str, drawn: dict) -> list[FigureView]:
-    out = []
-    path = unit_figure_path(slug_, "position")
-    if path in drawn:
-        out.append(captions.position(path, drawn[path], name))
-    path = unit_figure_path(slug_, "trend")
-    if path in drawn:
-        out.append(captions.trend(path, drawn[path], name))
-    return out
-
-
 def unit_summary(cells: list[tuple[MeasureView, Cell]]) -> str:
     """One sentence over all measures: how many reported and in which groups."""
     reported = [(m, c) for m, c in cells if c.status == "reported"]
@@ -244,7 +162,7 @@ def unit_summary(cells: list[tuple[MeasureView, Cell]]) -> str:
     return text
 
 
-def views(
+def build_views(
     config: CycleConfig,
     results: list[MeasureResult],
     units: pd.DataFrame,
@@ -257,77 +175,8 @@ def views(
     measures: list[MeasureView] = []
     cells: dict[str, list[tuple[MeasureView, Cell]]] = {uid: [] for uid in units.index}
     for m in results:
-        d = m.diagnostics
-        coefs = [
-            {
-                "term": md(term),
-                "ratio": num(r["ratio"]),
-                "interval": f"{num(r['lower'])} to {num(r['upper'])}",
-            }
-            for term, r in m.casemix.coefficients.iterrows()
-        ]
-        continuous = m.measure.type == "continuous"
-        figures, funnel_words = _measure_figures(
-            m, drawn, (funnels or {}).get(m.measure.key), level
-        )
-        view = MeasureView(
-            key=m.measure.key,
-            name=md(m.measure.name),
-            definition=md(m.measure.definition),
-            better=m.measure.better,
-            href=f"measures/{m.measure.key}.qmd",
-            model_href=f"models/{m.measure.key}.qmd",
-            kind=m.measure.type,
-            words=WORDS["continuous" if continuous else "binary"],
-            figures=figures,
-            funnel_words=funnel_words,
-            patients=f"{m.casemix.patients:,}",
-            events=f"{m.casemix.events:,.0f}"
-            + (f" {md(m.measure.unit_label)}" if continuous else ""),
-            network_rate=value(m.measure, m.network_rate),
-            benchmark=value(m.measure, m.benchmark),
-            benchmark_is_network=config.reporting.benchmark == "network" or continuous,
-            typical=""
-            if m.typical != m.typical
-            or value(m.measure, m.typical) == value(m.measure, m.benchmark)
-            else value(m.measure, m.typical),
-            c_statistic=num(m.casemix.c_statistic, 3)
-            if not continuous
-            and m.casemix.patients
-            and m.casemix.c_statistic == m.casemix.c_statistic
-            else "not applicable",
-            units_in_fit=m.casemix.units_in_fit,
-            formula=code(m.casemix.formula),
-            tau=f"{num(m.tau[0])} ({num(m.tau[1])} to {num(m.tau[2])})",
-            rhat=num(d.rhat_max, 3),
-            ess=f"{d.ess_bulk_min:,.0f}",
-            divergences=d.divergences,
-            coefficients=coefs,
-            sensitivity=[
-                {
-                    "prior": f"HalfNormal({alt['scale']:g})",
-                    "method": f"{alt['method']} (k-hat {alt['k_hat']:.2f})",
-                    "changed": "; ".join(
-                        f"{md(name)}: {GROUPS[a].lower()} → {GROUPS[b].lower()}"
-                        for name, a, b in alt["changed"]
-                    )
-                    or "none",
-                    "count": str(len(alt["changed"])),
-                }
-                for alt in m.sensitivity
-            ],
-            targets=targets_view(m),
-            count_note=count_note(m.table, config.reporting.hide_counts_below),
-        )
-        ordered = m.table.sort_values(
-            ["status", "rsr_median"],
-            key=lambda s: (
-                s.map({"reported": 0, "too_few": 1, "withheld": 2, "no_cases": 3})
-                if s.name == "status"
-                else s
-            ),
-        )
-        for _, row in ordered.iterrows():
+        view = _measure_view(config, m, drawn, (funnels or {}).get(m.measure.key), level)
+        for row in _ordered(m.table):
             cell = _cell(m, row, level, config.reporting.minimum_cases)
             view.rows.append(
                 {
@@ -344,13 +193,94 @@ def views(
             name=md(u["name"]),
             kind=md(u["kind"]),
             href=f"units/{slugs[uid]}.qmd",
-            figures=_unit_figures(u["name"], slugs[uid], drawn),
+            figures=unit_figures(u["name"], slugs[uid], drawn),
             cells=cells[uid],
             summary=unit_summary(cells[uid]),
         )
         for uid, u in units.iterrows()
     ]
     return measures, unit_views
+
+
+def _ordered(table: pd.DataFrame) -> list[pd.Series]:
+    """A measure's rows in the order its page lists them: reported units by adjusted value,
+    then too few cases, withheld, no cases."""
+    ordered = table.sort_values(
+        ["status", "rsr_median"],
+        key=lambda s: (
+            s.map({"reported": 0, "too_few": 1, "withheld": 2, "no_cases": 3})
+            if s.name == "status"
+            else s
+        ),
+    )
+    return [row for _, row in ordered.iterrows()]
+
+
+def _measure_view(
+    config: CycleConfig, m: MeasureResult, drawn: dict, funnel: Funnel | None, level: str
+) -> MeasureView:
+    """One measure's page view, without its rows of units."""
+    d = m.diagnostics
+    coefs = [
+        {
+            "term": md(term),
+            "ratio": num(r["ratio"]),
+            "interval": f"{num(r['lower'])} to {num(r['upper'])}",
+        }
+        for term, r in m.casemix.coefficients.iterrows()
+    ]
+    continuous = m.measure.type == "continuous"
+    figures, funnel_words = measure_figures(m, drawn, funnel, level)
+    return MeasureView(
+        key=m.measure.key,
+        name=md(m.measure.name),
+        definition=md(m.measure.definition),
+        better=m.measure.better,
+        href=f"measures/{m.measure.key}.qmd",
+        model_href=f"models/{m.measure.key}.qmd",
+        kind=m.measure.type,
+        words=WORDS["continuous" if continuous else "binary"],
+        figures=figures,
+        funnel_words=funnel_words,
+        patients=f"{m.casemix.patients:,}",
+        events=f"{m.casemix.events:,.0f}" + (f" {md(m.measure.unit_label)}" if continuous else ""),
+        network_rate=value(m.measure, m.network_rate),
+        benchmark=value(m.measure, m.benchmark),
+        benchmark_is_network=config.reporting.benchmark == "network" or continuous,
+        typical=""
+        if m.typical != m.typical or value(m.measure, m.typical) == value(m.measure, m.benchmark)
+        else value(m.measure, m.typical),
+        c_statistic=num(m.casemix.c_statistic, 3)
+        if not continuous and m.casemix.patients and m.casemix.c_statistic == m.casemix.c_statistic
+        else "not applicable",
+        units_in_fit=m.casemix.units_in_fit,
+        formula=code(m.casemix.formula),
+        tau=f"{num(m.tau[0])} ({num(m.tau[1])} to {num(m.tau[2])})",
+        rhat=num(d.rhat_max, 3),
+        ess=f"{d.ess_bulk_min:,.0f}",
+        divergences=d.divergences,
+        coefficients=coefs,
+        sensitivity=_sensitivity_rows(m),
+        targets=targets_view(m),
+        count_note=count_note(m.table, config.reporting.hide_counts_below),
+    )
+
+
+def _sensitivity_rows(m: MeasureResult) -> list[dict[str, str]]:
+    """Per alternative prior for tau: how it was computed and the units whose group it changes."""
+    return [
+        {
+            "prior": f"HalfNormal({alt['scale']:g})",
+            "method": f"{alt['method']} (k-hat {alt['k_hat']:.2f})",
+            "changed": "; ".join(
+                f"{md(name)}: {GROUPS[a].lower()} → {GROUPS[b].lower()}"
+                for name, a, b in alt["changed"]
+            )
+            or "none",
+            "count": str(len(alt["changed"])),
+        }
+        for alt in m.sensitivity
+    ]
 
 
 def targets_view(m: MeasureResult) -> dict | None:
