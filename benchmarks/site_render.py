@@ -25,7 +25,7 @@ from pathlib import Path
 
 from pipeline.cache import Cache
 from pipeline.config import load_config
-from pipeline.cycle import about, build_site
+from pipeline.cycle import build_manifest, build_site
 from pipeline.demo import write_demo
 from pipeline.downloads import public_table
 from pipeline.fitting import fit_measures
@@ -77,7 +77,7 @@ def main() -> None:
     results = fit_measures(config, cohort, Cache(OUT / "fit-cache"), SilentReporter())
     print(f"fits (not timed as part of the target): {time.perf_counter() - t:.1f} s")
     renderer = Renderer("builtin", "benchmark", "asked for")
-    manifest, table = about(config, cohort, renderer, results), public_table(results)
+    manifest, table = build_manifest(config, cohort, renderer, results), public_table(results)
     past = past_cycles(config.cycle.history, config.cycle.period)
     timings = {}
     figure_cache = Cache(OUT / "figure-cache")

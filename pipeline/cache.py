@@ -75,7 +75,7 @@ def library_versions() -> dict[str, str]:
     return dict(_versions())
 
 
-def key(*parts: Any) -> str:
+def cache_key(*parts: Any) -> str:
     """A stable hash of JSON-able parts plus the library versions."""
 
     def plain(x: Any) -> Any:

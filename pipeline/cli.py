@@ -96,7 +96,7 @@ def hidden_values(config, cohort) -> list[str]:
 
     lines = []
     for m in config.measures:
-        summary = (cohort.summaries or {}).get(m.key)
+        summary = (cohort.unit_tables or {}).get(m.key)
         if summary is not None:
             cases, observed = summary["cases"], summary["observed"]
         else:
@@ -133,7 +133,7 @@ def main(argv: list[str] | None = None) -> int:
             for w in cohort.warnings:
                 reporter.warn(w)
             with_cases = set(cohort.rows[cohort.unit_column]) | {
-                u for t in (cohort.summaries or {}).values() if t is not None for u in t.index
+                u for t in (cohort.unit_tables or {}).values() if t is not None for u in t.index
             }
             print(
                 f"fairgauge: check passed: {len(cohort.rows):,} patient rows, "

@@ -30,10 +30,10 @@ from pipeline.history import PastCycle, kept_addresses, past_cycles, record_cycl
 from pipeline.inputs.data import Cohort, load_cohort
 from pipeline.progress import SILENT, Reporter
 from pipeline.results import MeasureResult
-from pipeline.website.addresses import unit_slugs
+from pipeline.website.addresses import unit_addresses
 from pipeline.website.drawing import draw_all, figure_jobs
 from pipeline.website.figures import MAX_FIGURE_UNITS
-from pipeline.website.funnel import for_measure
+from pipeline.website.funnel import measure_funnel
 from pipeline.website.pages import render_pages
 from pipeline.website.render import Renderer, choose_renderer, render_site
 
@@ -42,7 +42,7 @@ MARKER = "fairgauge-manifest.json"
 
 
 @dataclass
-class CycleSummary:
+class CycleRun:
     site: Path
     units: int
     measures: list[str]
@@ -59,7 +59,7 @@ def run_cycle(
     strict: bool = False,
     renderer: str | None = None,
     no_cache: bool = False,
-) -> CycleSummary:
+) -> CycleRun:
     """Run one reporting cycle described by ``config`` and publish its site."""
     start = time.perf_counter()
     chosen = choose_renderer(renderer or config.cycle.renderer)
@@ -83,16 +83,16 @@ def run_cycle(
     cache = Cache(None if no_cache else config.cycle.cache)
     results = fit_measures(config, cohort, cache, reporter)
     past = past_cycles(config.cycle.history, config.cycle.period)
-    manifest = about(config, cohort, chosen, results)
+    manifest = build_manifest(config, cohort, chosen, results)
     table = public_table(results)
-    slugs = unit_slugs(cohort.units.index, kept_addresses(past))
+    addresses = unit_addresses(cohort.units.index, kept_addresses(past))
     build = build_site(
-        config, cohort, results, table, manifest, past, chosen, cache, reporter, figures, slugs
+        config, cohort, results, table, manifest, past, chosen, cache, reporter, figures, addresses
     )
     publish(build, config.cycle.output)
     reporter.stage(f"recording this cycle in {config.cycle.history}")
-    record_cycle(config.cycle.history, config.cycle.period, table, results, manifest, slugs)
-    return CycleSummary(
+    record_cycle(config.cycle.history, config.cycle.period, table, results, manifest, addresses)
+    return CycleRun(
         site=config.cycle.output,
         units=len(cohort.units),
         measures=[m.key for m in config.measures],
@@ -104,7 +104,7 @@ def run_cycle(
     )
 
 
-def about(
+def build_manifest(
     config: CycleConfig, cohort: Cohort, renderer: Renderer, results: list[MeasureResult]
 ) -> dict:
     """The manifest: what this build is and how it was made (site root, results.json, methods
@@ -150,7 +150,7 @@ def build_site(
     cache: Cache,
     reporter: Reporter,
     figures: bool = True,
-    slugs: dict[str, str] | None = None,
+    addresses: dict[str, str] | None = None,
 ) -> Path:
     """Write figures, downloads and pages into a new folder beside the output; render it there."""
     build = _new_build_folder(config.cycle.output)
@@ -158,13 +158,12 @@ def build_site(
     try:
         project = build / "_source"
         project.mkdir()
-        slugs = slugs or unit_slugs(cohort.units.index, kept_addresses(past))
-        funnels = {
-            r.measure.key: for_measure(r, config.reporting.funnel_overdispersion) for r in results
-        }
+        addresses = addresses or unit_addresses(cohort.units.index, kept_addresses(past))
+        widen = config.reporting.funnel_overdispersion
+        funnels = {r.measure.key: measure_funnel(r, widen) for r in results}
         if figures:
             jobs = figure_jobs(
-                results, cohort.units.index, slugs, past, funnels, config.cycle.period
+                results, cohort.units.index, addresses, past, funnels, config.cycle.period
             )
             reporter.stage(
                 f"drawing {len(jobs)} figures ({len(results)} measures, {len(cohort.units)} units)"
@@ -176,7 +175,7 @@ def build_site(
         reporter.stage("writing results and pages")
         _write_downloads(project, table, results, manifest)
         site = {**manifest, "dictionary": DICTIONARY}
-        pages = render_pages(config, results, cohort.units, slugs, drawn, past, site, funnels)
+        pages = render_pages(config, results, cohort.units, addresses, drawn, past, site, funnels)
         for page in pages:
             target = project / page.path
             target.parent.mkdir(parents=True, exist_ok=True)

@@ -86,7 +86,7 @@ def _clean(value):
     return value
 
 
-def results_json(table: pd.DataFrame, results: list[MeasureResult], about: dict) -> str:
+def results_json(table: pd.DataFrame, results: list[MeasureResult], manifest: dict) -> str:
     """The downloadable JSON: cycle description, per-measure summaries and the public rows."""
     measures = [
         {
@@ -125,7 +125,7 @@ def results_json(table: pd.DataFrame, results: list[MeasureResult], about: dict)
     ]
     rows = [{k: _clean(v) for k, v in row.items()} for row in table.to_dict(orient="records")]
     return json.dumps(
-        _plain({"about": about, "measures": measures, "results": rows}),
+        _plain({"about": manifest, "measures": measures, "results": rows}),
         indent=2,
         ensure_ascii=False,
         allow_nan=False,

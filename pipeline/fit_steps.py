@@ -38,7 +38,7 @@ class FittedUnits:
     def of(cls, cohort: Cohort) -> FittedUnits:
         rows = cohort.rows
         present = set(rows[cohort.unit_column]) | {
-            u for t in (cohort.summaries or {}).values() if t is not None for u in t.index
+            u for t in (cohort.unit_tables or {}).values() if t is not None for u in t.index
         }
         ids = [u for u in cohort.units.index if u in present]
         codes = pd.Categorical(rows[cohort.unit_column], categories=ids).codes.astype(np.int64)

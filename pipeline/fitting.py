@@ -10,7 +10,7 @@ without its social-risk factors, one common target instead of unit-level predict
 
 from __future__ import annotations
 
-from pipeline.cache import Cache, code_version, key
+from pipeline.cache import Cache, cache_key, code_version
 from pipeline.config import CycleConfig, MeasureSection, family_of
 from pipeline.fit_steps import (
     Expected,
@@ -25,7 +25,7 @@ from pipeline.formulas import without_terms
 from pipeline.inputs.data import Cohort
 from pipeline.progress import Reporter
 from pipeline.results import MeasureFits, MeasureResult, PriorAlternative, summarise_measure
-from pipeline.shrinkage.draws import thin, unit_draws
+from pipeline.shrinkage.draws import evenly_thinned, unit_draws
 from pipeline.shrinkage.model import PREDICTOR_PRIOR, Cells, ShrinkageSpec
 from pipeline.shrinkage.sampling import (
     K_HAT_MAX,
@@ -46,7 +46,7 @@ def fit_measures(
     code = code_version()
     for i, measure in enumerate(config.measures):
         seed = config.sampler.seed + i
-        fit_key = key(
+        fit_key = cache_key(
             "fit",
             code,
             cohort.sha256,
@@ -206,7 +206,7 @@ def prior_sensitivity(
     weights are unreliable."""
     out = []
     likelihood = sampler.spec.likelihood
-    tau = draws["tau"][thin(len(draws["tau"]), 4000)]  # the draws unit_draws keeps
+    tau = draws["tau"][evenly_thinned(len(draws["tau"]), 4000)]  # the draws unit_draws keeps
     base = sampler.spec.priors["tau"][1]["sigma"]
     for scale in SENSITIVITY_SCALES:
         log_weights, k_hat = reweight_tau(tau, scale * base, base)

@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from pipeline.shrinkage.draws import thin
+from pipeline.shrinkage.draws import evenly_thinned
 
 RANK_DRAWS = 1000  # draws used for ranks
 
@@ -67,7 +67,7 @@ def rank_summary(rsr: np.ndarray, better: str, lo_q: float, hi_q: float) -> np.n
     """
     if rsr.shape[1] == 0:
         return np.zeros((0, 3))
-    rsr = rsr[thin(len(rsr), RANK_DRAWS)]
+    rsr = rsr[evenly_thinned(len(rsr), RANK_DRAWS)]
     ranks = np.argsort(np.argsort(rsr if better == "lower" else -rsr, axis=1), axis=1) + 1
     return np.column_stack(
         [

@@ -41,7 +41,7 @@ class PastCycle:
     period: str
     table: pd.DataFrame  # the public results table as published
     draws: dict[str, pd.DataFrame]  # measure key -> draws x unit ids (risk-standardised rate)
-    # unit id -> page slug as published
+    # unit id -> page address as published
     addresses: dict[str, str] = dataclasses.field(default_factory=dict)
 
 

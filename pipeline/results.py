@@ -18,9 +18,9 @@ from pipeline.config import CycleConfig, MeasureSection
 from pipeline.disclosure import hide_small_counts, protect_units
 from pipeline.grouping import group_units, rank_summary
 from pipeline.inputs.targets import TargetDesign
-from pipeline.shrinkage.draws import UnitDraws, thin
+from pipeline.shrinkage.draws import UnitDraws, evenly_thinned
 from pipeline.shrinkage.model import ShrinkageSpec
-from pipeline.shrinkage.sampling import K_HAT_MAX, LIMITS, Diagnostics
+from pipeline.shrinkage.sampling import CONVERGENCE_LIMITS, K_HAT_MAX, Diagnostics
 
 # Unit states, in our own words (the key is stored; the words are shown).
 STATUS = {
@@ -58,7 +58,9 @@ class FitSettings:
     metric_labels: dict  # validation metric -> its label
 
 
-FIT_SETTINGS = FitSettings(LIMITS, ShrinkageSpec().describe(), K_HAT_MAX, FAMILIES, LABELS)
+FIT_SETTINGS = FitSettings(
+    CONVERGENCE_LIMITS, ShrinkageSpec().describe(), K_HAT_MAX, FAMILIES, LABELS
+)
 
 
 @dataclass(frozen=True)
@@ -268,7 +270,7 @@ def _summarise(
         else float("nan"),
         tau=(float(np.median(tau)), float(np.quantile(tau, lo_q)), float(np.quantile(tau, hi_q))),
         table=table,
-        rsr_draws=pd.DataFrame(rsr[thin(len(rsr), HISTORY_DRAWS)], columns=unit_ids),
+        rsr_draws=pd.DataFrame(rsr[evenly_thinned(len(rsr), HISTORY_DRAWS)], columns=unit_ids),
         validation=fits.validation,
         sensitivity=tuple(changes),
     )

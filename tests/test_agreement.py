@@ -117,16 +117,16 @@ def assert_count_hidden(shown: dict[str, str], r, where) -> None:
 def published(demo_cycle):
     _, _, site = demo_cycle
     csv = pd.read_csv(site / "downloads" / "results.csv")
-    about = {
+    measures_about = {
         m["key"]: m
         for m in json.loads((site / "downloads" / "results.json").read_text())["measures"]
     }
-    return site, csv, about
+    return site, csv, measures_about
 
 
 def test_measure_pages_agree_with_the_downloads(published):
-    site, csv, about = published
-    for key, m in about.items():
+    site, csv, measures_about = published
+    for key, m in measures_about.items():
         page = (site / "measures" / f"{key}.html").read_text()
         k = scale(m["type"])
         rows = csv[(csv["measure"] == key) & (csv["status"] == "reported")].set_index("unit_name")
@@ -258,8 +258,8 @@ def test_measure_pages_agree_with_the_downloads(published):
 
 
 def test_binary_expected_counts_add_up_to_the_benchmark(published):
-    _, csv, about = published
-    for key, m in about.items():
+    _, csv, measures_about = published
+    for key, m in measures_about.items():
         rows = csv[csv["measure"] == key]
         if m["type"] != "binary" or rows["status"].ne("reported").any():
             continue  # withheld units' counts are not published, so the total cannot be rebuilt
@@ -273,9 +273,9 @@ def test_hidden_counts_add_up_with_the_shown_ones_to_the_network_total(demo_cycl
     """Counts shown plus the true hidden counts are the network's published total; each true count
     is in its range."""
     files, _, _ = demo_cycle
-    _, csv, about = published
+    _, csv, measures_about = published
     counts = demo_counts(files.config.parent).set_index(["measure", "unit_id"])["observed"]
-    for key, m in about.items():
+    for key, m in measures_about.items():
         if m["type"] != "binary":
             continue
         rows = csv[csv["measure"] == key].set_index("unit_id")
@@ -299,7 +299,7 @@ def test_hidden_counts_add_up_with_the_shown_ones_to_the_network_total(demo_cycl
 
 
 def test_unit_pages_agree_with_the_downloads(published):
-    site, csv, about = published
+    site, csv, measures_about = published
     for unit_id, rows in csv[csv["status"] == "reported"].groupby("unit_id"):
         page = (site / "units" / f"{unit_id}.html").read_text()
         text = " ".join(readability.prose(page))
@@ -307,9 +307,11 @@ def test_unit_pages_agree_with_the_downloads(published):
             r["Measure"]: r for r in table_with(page, "Measure", "Cases", "Observed", "Own data")
         }
         strip = {r["Measure"]: r for r in table_with(page, "Measure", "Interval", "Group")}
-        starts = sorted(text.index(about[k]["name"] + ". Allowing") for k in rows["measure"])
+        starts = sorted(
+            text.index(measures_about[k]["name"] + ". Allowing") for k in rows["measure"]
+        )
         for _, r in rows.iterrows():
-            m = about[r["measure"]]
+            m = measures_about[r["measure"]]
             k = scale(m["type"])
             name = m["name"]
             row = numbers_table[name]
@@ -366,9 +368,9 @@ def test_unit_pages_agree_with_the_downloads(published):
 
 
 def test_methods_page_predictors_and_sensitivity_agree_with_the_downloads(published):
-    site, csv, about = published
+    site, csv, measures_about = published
     page = (site / "methods.html").read_text()
-    targeted = {k: m for k, m in about.items() if m["pulled_towards"]["predictors"]}
+    targeted = {k: m for k, m in measures_about.items() if m["pulled_towards"]["predictors"]}
     if not targeted:
         assert "What small units are pulled towards</strong> (unit-level predictors" not in page
         return

@@ -111,7 +111,7 @@ def _invent(
             rows[outcome] = (
                 np.exp(1.0 + 0.3 * sev + effect + rng.normal(0, 0.6, len(unit))).round(3) + 0.01
             )
-    summaries = {}
+    unit_tables = {}
     for key, sign in SUMMARIES.items():
         cases = units["size"].to_numpy()
         # supplied from elsewhere, 10% too high overall
@@ -123,7 +123,7 @@ def _invent(
         rest, total = observed[1:].sum(), expected.sum()
         # the anchor: O equals its scaled E
         observed[0] = round(expected[0] * rest / (total - expected[0]))
-        summaries[key] = pd.DataFrame(
+        unit_tables[key] = pd.DataFrame(
             {
                 "unit_id": units["id"],
                 "cases": cases,
@@ -131,7 +131,7 @@ def _invent(
                 "expected": expected.round(4),
             }
         )
-    return rows, summaries
+    return rows, unit_tables
 
 
 def _balance_anchor(config, rows: pd.DataFrame, units: pd.DataFrame) -> None:
@@ -168,10 +168,10 @@ def _balance_anchor(config, rows: pd.DataFrame, units: pd.DataFrame) -> None:
 def skewed(tmp_path_factory):
     folder = tmp_path_factory.mktemp("skewed")
     units = _units()
-    rows, summaries = _invent(np.random.default_rng(20261202), units)
+    rows, unit_tables = _invent(np.random.default_rng(20261202), units)
     text = CONFIG + "".join(_measure_toml(k, *v[:4]) for k, v in MEASURES.items())
     for key in SUMMARIES:
-        summaries[key].to_csv(folder / f"{key}.csv", index=False)
+        unit_tables[key].to_csv(folder / f"{key}.csv", index=False)
         text += (
             f'\n[[measures]]\nkey = "{key}"\nname = "{key}"\ndefinition = '
             f'"Invented."\noutcome = "events"\nsummary = "{key}.csv"\ncasemix = "1"\n'

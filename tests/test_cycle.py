@@ -18,7 +18,7 @@ from pipeline.config import load_config
 from pipeline.cycle import MARKER, run_cycle
 from pipeline.errors import FitError, RenderError
 from pipeline.shrinkage.sampling import Diagnostics, Sampler
-from pipeline.website.addresses import unit_slugs
+from pipeline.website.addresses import unit_addresses
 
 from .conftest import demo_counts
 
@@ -114,7 +114,7 @@ def test_downloads_hold_one_row_per_unit_and_measure_and_suppress_small_units(de
     assert (
         "too few for a fair estimate"
         in (
-            site / "units" / f"{unit_slugs(table['unit_id'].unique())[unit['unit_id']]}.html"
+            site / "units" / f"{unit_addresses(table['unit_id'].unique())[unit['unit_id']]}.html"
         ).read_text()
     )
 

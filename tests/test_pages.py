@@ -12,8 +12,8 @@ from markdown_it import MarkdownIt
 
 from pipeline.errors import ToolError
 from pipeline.external import run_tool
-from pipeline.website.addresses import slug, unit_slugs
-from pipeline.website.markup import chance, code, md, natural_frequency
+from pipeline.website.addresses import address_for, unit_addresses
+from pipeline.website.markup import chance, code_span, markdown_literal, natural_frequency
 from pipeline.website.pages import environment
 from pipeline.website.render import BuiltinRenderer
 
@@ -29,7 +29,7 @@ from pipeline.website.render import BuiltinRenderer
     ],
 )
 def test_data_text_is_shown_literally(text):
-    html = MarkdownIt("commonmark").enable("table").renderInline(md(text))
+    html = MarkdownIt("commonmark").enable("table").renderInline(markdown_literal(text))
     assert (
         "<script" not in html
         and "<a " not in html
@@ -47,17 +47,17 @@ def test_data_text_is_shown_literally(text):
     "text", ["y ~ C(age_band) + a:b", "odd `tick` and ``two``", "<b>x</b> & *y*"]
 )
 def test_code_spans_show_formulas_without_escapes(text):
-    html = MarkdownIt("commonmark").enable("table").renderInline(code(text))
+    html = MarkdownIt("commonmark").enable("table").renderInline(code_span(text))
     assert html.startswith("<code>") and html.endswith("</code>")
     assert html[6:-7].replace("&lt;", "<").replace("&gt;", ">").replace("&amp;", "&") == text
 
 
 def test_slugs_are_safe_stable_and_unique():
     taken: set[str] = set()
-    assert slug("MV-01", taken) == "mv-01"
-    assert slug("../../etc/passwd", taken) == "etc-passwd"
-    assert slug("mv 01", taken) == "mv-01-2"
-    assert slug("!!!", taken) == "unit"
+    assert address_for("MV-01", taken) == "mv-01"
+    assert address_for("../../etc/passwd", taken) == "etc-passwd"
+    assert address_for("mv 01", taken) == "mv-01-2"
+    assert address_for("!!!", taken) == "unit"
 
 
 def test_natural_frequencies_and_chances_in_words():
@@ -154,17 +154,17 @@ def test_external_tool_output_is_returned_and_replayed_on_failure():
 
 def test_unit_addresses_do_not_depend_on_the_other_units_and_are_kept_across_cycles():
     ids = ["MV-01", "mv02", "North Wing/3", "x"]
-    base = unit_slugs(ids)
+    base = unit_addresses(ids)
     assert base == {"MV-01": "mv-01", "mv02": "mv02", "North Wing/3": "north-wing-3", "x": "x"}
-    assert unit_slugs(list(reversed(ids))) == base
-    assert unit_slugs(ids[:2]) == {k: base[k] for k in ids[:2]}
-    # A new unit whose id makes the same slug: the id that already is its slug wins, the other
+    assert unit_addresses(list(reversed(ids))) == base
+    assert unit_addresses(ids[:2]) == {k: base[k] for k in ids[:2]}
+    # A new unit whose id makes the same address: the id that already is its address wins, the other
     # gets a suffix from a hash of its own id (the same in every cycle) ...
-    both = unit_slugs(["MV-01", "mv-01"])
+    both = unit_addresses(["MV-01", "mv-01"])
     assert both["mv-01"] == "mv-01" and re.fullmatch(r"mv-01-[0-9a-f]{6}", both["MV-01"])
     # ... unless an earlier cycle published an address for it, which it keeps.
-    assert unit_slugs(["MV-01", "mv-01"], kept=base)["MV-01"] == "mv-01"
-    assert unit_slugs(["MV-01", "mv-01"], kept=base)["mv-01"] != "mv-01"
+    assert unit_addresses(["MV-01", "mv-01"], kept=base)["MV-01"] == "mv-01"
+    assert unit_addresses(["MV-01", "mv-01"], kept=base)["mv-01"] != "mv-01"
 
 
 def test_history_keeps_each_units_address(tmp_path):

@@ -253,7 +253,7 @@ def test_pages_name_the_predictors_and_the_units_whose_group_depends_on_them():
     )
     assert view["changed"] == [
         {
-            "name": markup.md("Unit *One*"),
+            "name": markup.markdown_literal("Unit *One*"),
             "with": "stands out as worse",
             "without": "in line with the benchmark",
         }

@@ -302,7 +302,9 @@ def test_unit_totals_alone_from_the_database_need_no_cohort(server, reader, tmp_
     )
     (tmp_path / "cycle.toml").write_text(text, encoding="utf-8")
     read = load_cohort(load_config(tmp_path / "cycle.toml"))
-    assert read.rows.empty and list(read.summaries["readmit"]["observed"]) == list(totals["falls"])
+    assert read.rows.empty and list(read.unit_tables["readmit"]["observed"]) == list(
+        totals["falls"]
+    )
     assert (
         set(read.provenance) == {"units", "summary readmit"}
         and "database summary readmit" in read.sha256

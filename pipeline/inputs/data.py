@@ -39,7 +39,7 @@ class Cohort:
     sha256: dict[str, str]  # file name -> SHA-256 of its bytes, for provenance
     warnings: tuple[str, ...]
     # measure key -> unit-level input (index unit id; cases, observed, expected)
-    summaries: dict[str, pd.DataFrame | None] | None = None
+    unit_tables: dict[str, pd.DataFrame | None] | None = None
     # the unit table's other columns (index unit id), for pull_towards (targets.py)
     attributes: pd.DataFrame | None = None
     # "cohort"/"units" -> where rows read from a database came from (warehouse.Provenance)
@@ -47,7 +47,7 @@ class Cohort:
 
     def unit_totals(self, measure_key: str) -> pd.DataFrame:
         """The unit-level input of a measure, read from its ``summary`` file or query."""
-        table = (self.summaries or {}).get(measure_key)
+        table = (self.unit_tables or {}).get(measure_key)
         if table is None:
             raise ValueError(f"{measure_key}: no unit-level input was read")
         return table
@@ -82,12 +82,12 @@ def load_cohort(config: CycleConfig) -> Cohort:
         ),
     ]
     hashes = _hashes(inputs, provenance)
-    summaries = read_unit_totals(config, units.index, provenance, hashes, problems)
+    unit_tables = read_unit_totals(config, units.index, provenance, hashes, problems)
     attributes = units.drop(columns=list(UNIT_TABLE_COLUMNS[1:]))
-    _check_targets(config, rows, units, summaries, attributes, u_where, problems)
+    _check_targets(config, rows, units, unit_tables, attributes, u_where, problems)
     if problems:
         raise InputError(problems)
-    warnings += _idle_units(rows[unit_col], units.index, summaries, u_where)
+    warnings += _idle_units(rows[unit_col], units.index, unit_tables, u_where)
     return Cohort(
         rows=rows[keep].reset_index(drop=True),
         units=units[["name", "kind"]].astype("string"),
@@ -95,7 +95,7 @@ def load_cohort(config: CycleConfig) -> Cohort:
         unit_column=unit_col,
         sha256=hashes,
         warnings=tuple(warnings),
-        summaries=summaries,
+        unit_tables=unit_tables,
         provenance=provenance,
     )
 
@@ -243,7 +243,7 @@ def _check_targets(
     config: CycleConfig,
     rows: pd.DataFrame,
     units: pd.DataFrame,
-    summaries: dict[str, pd.DataFrame | None],
+    unit_tables: dict[str, pd.DataFrame | None],
     attributes: pd.DataFrame,
     u_where: str,
     problems: list[Problem],
@@ -254,7 +254,7 @@ def _check_targets(
         if not m.pull_towards:
             continue
         if m.summary:
-            summary = summaries.get(m.key)
+            summary = unit_tables.get(m.key)
             cases = summary["cases"] if summary is not None else None
             present = cases.index if cases is not None else units.index[:0]
         else:
@@ -276,11 +276,13 @@ def _check_targets(
 def _idle_units(
     row_units: pd.Series,
     unit_ids: pd.Index,
-    summaries: dict[str, pd.DataFrame | None],
+    unit_tables: dict[str, pd.DataFrame | None],
     u_where: str,
 ) -> list[str]:
     """A warning naming the units with no cases on any measure (listed without results)."""
-    with_cases = set(row_units) | {u for t in summaries.values() if t is not None for u in t.index}
+    with_cases = set(row_units) | {
+        u for t in unit_tables.values() if t is not None for u in t.index
+    }
     idle = unit_ids[~unit_ids.isin(with_cases)]
     if not len(idle):
         return []

@@ -14,7 +14,7 @@ from pipeline.inputs.tables import TOO_LARGE, file_sha256, read_table, row_list
 from pipeline.inputs.warehouse import read_query
 
 
-def summary_from_database(inputs, summary: str) -> bool:
+def totals_from_database(inputs, summary: str) -> bool:
     """A measure's ``summary`` is a database query or table when a database is configured and it is
     not a data file."""
     return bool(inputs.database) and not summary.strip().lower().endswith(
@@ -22,7 +22,7 @@ def summary_from_database(inputs, summary: str) -> bool:
     )
 
 
-def load_summary(
+def load_unit_totals(
     path: Path,
     observed: str,
     unit_col: str,
@@ -139,9 +139,9 @@ def read_unit_totals(
     could not be read. Records where each came from in ``provenance`` and ``hashes``."""
     inputs = config.inputs
     unit_col = inputs.unit_column
-    summaries: dict[str, pd.DataFrame | None] = {}
+    unit_tables: dict[str, pd.DataFrame | None] = {}
     for i, m in enumerate(config.measures):
-        if m.summary and summary_from_database(inputs, m.summary):
+        if m.summary and totals_from_database(inputs, m.summary):
             where = f"database unit totals of measure '{m.key}' (measures[{i}].summary)"
             query = m.summary
             if query.strip().lower().endswith(".sql"):
@@ -167,12 +167,12 @@ def read_unit_totals(
                 problems.extend(exc.problems)
                 continue
             provenance[f"summary {m.key}"] = origin.as_dict()
-            summaries[m.key] = load_summary(
+            unit_tables[m.key] = load_unit_totals(
                 Path(where), m.outcome, unit_col, unit_ids, problems, frame=frame
             )
             hashes[f"database summary {m.key}"] = origin.rows_sha256
         elif m.summary:
             path = (config.source.parent / m.summary).resolve()
-            summaries[m.key] = load_summary(path, m.outcome, unit_col, unit_ids, problems)
+            unit_tables[m.key] = load_unit_totals(path, m.outcome, unit_col, unit_ids, problems)
             hashes[path.name] = file_sha256(path) if path.is_file() else ""
-    return summaries
+    return unit_tables

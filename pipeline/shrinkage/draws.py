@@ -26,7 +26,7 @@ class UnitDraws:
     typical: np.ndarray | None = None
 
 
-def thin(n: int, keep: int) -> np.ndarray:
+def evenly_thinned(n: int, keep: int) -> np.ndarray:
     """Indexes of at most ``keep`` draws spread evenly over ``n``."""
     return np.linspace(0, n - 1, min(n, keep)).round().astype(int)
 
@@ -47,7 +47,7 @@ def unit_draws(
     summed over the whole network.
     """
     mu, u = draws["mu"], draws["u"]
-    keep = thin(len(mu), max_draws)  # evenly thinned: the summaries need no more
+    keep = evenly_thinned(len(mu), max_draws)  # evenly thinned: the summaries need no more
     mu, u = mu[keep], u[keep]
     missing = np.setdiff1d(np.arange(cells.n_units), cells.unit)  # units without data have no ratio
     curves = draws.get("curves")

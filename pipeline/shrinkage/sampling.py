@@ -2,9 +2,10 @@
 
 :class:`Sampler` compiles the PyMC model of a :class:`~pipeline.shrinkage.model.ShrinkageSpec` once
 per cycle (nutpie) and samples every measure's data with it, or uses PyMC's own NUTS. Every fit is
-checked against ``LIMITS``; a failed fit is run once more with :func:`safer` settings and then stops
-the cycle. Prior sensitivity reweights the same draws to a narrower and a wider prior for the
-between-unit SD (Pareto-smoothed importance sampling), or refits when the weights are unreliable.
+checked against ``CONVERGENCE_LIMITS``; a failed fit is run once more with :func:`safer` settings
+and then stops the cycle. Prior sensitivity reweights the same draws to a narrower and a wider prior
+for the between-unit SD (Pareto-smoothed importance sampling), or refits when the weights are
+unreliable.
 """
 
 from __future__ import annotations
@@ -24,7 +25,7 @@ from pipeline.shrinkage.model import Cells, ShrinkageSpec, build_model, model_da
 # and tail effective sample sizes of at least 100 per chain; divergences must be absent; an
 # E-BFMI below 0.3 flags poor exploration of the energy distribution (Betancourt 2016,
 # arXiv:1604.00695; the 0.3 threshold is common practice, no source)).
-LIMITS = {
+CONVERGENCE_LIMITS = {
     "rhat_max": 1.01,
     "ess_bulk_per_chain_min": 100,
     "ess_tail_per_chain_min": 100,
@@ -50,22 +51,26 @@ class Diagnostics:
 
     def failures(self) -> list[str]:
         out = []
-        if not self.rhat_max <= LIMITS["rhat_max"]:
-            out.append(f"largest R-hat {self.rhat_max:.3f} is above {LIMITS['rhat_max']}")
-        if not self.ess_bulk_min >= LIMITS["ess_bulk_per_chain_min"] * self.chains:
+        if not self.rhat_max <= CONVERGENCE_LIMITS["rhat_max"]:
+            out.append(
+                f"largest R-hat {self.rhat_max:.3f} is above {CONVERGENCE_LIMITS['rhat_max']}"
+            )
+        if not self.ess_bulk_min >= CONVERGENCE_LIMITS["ess_bulk_per_chain_min"] * self.chains:
             out.append(
                 f"smallest bulk ESS {self.ess_bulk_min:.0f} is below "
-                f"{LIMITS['ess_bulk_per_chain_min'] * self.chains}"
+                f"{CONVERGENCE_LIMITS['ess_bulk_per_chain_min'] * self.chains}"
             )
-        if not self.ess_tail_min >= LIMITS["ess_tail_per_chain_min"] * self.chains:
+        if not self.ess_tail_min >= CONVERGENCE_LIMITS["ess_tail_per_chain_min"] * self.chains:
             out.append(
                 f"smallest tail ESS {self.ess_tail_min:.0f} is below "
-                f"{LIMITS['ess_tail_per_chain_min'] * self.chains}"
+                f"{CONVERGENCE_LIMITS['ess_tail_per_chain_min'] * self.chains}"
             )
-        if self.divergences > LIMITS["divergences_max"]:
+        if self.divergences > CONVERGENCE_LIMITS["divergences_max"]:
             out.append(f"{self.divergences} divergent transitions")
-        if not self.bfmi_min >= LIMITS["bfmi_min"]:
-            out.append(f"lowest E-BFMI {self.bfmi_min:.2f} is below {LIMITS['bfmi_min']}")
+        if not self.bfmi_min >= CONVERGENCE_LIMITS["bfmi_min"]:
+            out.append(
+                f"lowest E-BFMI {self.bfmi_min:.2f} is below {CONVERGENCE_LIMITS['bfmi_min']}"
+            )
         return out
 
 

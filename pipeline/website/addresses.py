@@ -6,7 +6,7 @@ import hashlib
 import re
 
 
-def slug(unit_id: str, taken: set[str]) -> str:
+def address_for(unit_id: str, taken: set[str]) -> str:
     """A file-name-safe, stable address for a unit (from its id), unique within ``taken``."""
     base = re.sub(r"[^a-z0-9]+", "-", unit_id.lower()).strip("-")[:60] or "unit"
     candidate, n = base, 2
@@ -16,11 +16,12 @@ def slug(unit_id: str, taken: set[str]) -> str:
     return candidate
 
 
-def unit_slugs(unit_ids, kept: dict[str, str] | None = None) -> dict[str, str]:
-    """Each unit's address: the one it had in an earlier cycle (``kept``), else the slug of its id.
+def unit_addresses(unit_ids, kept: dict[str, str] | None = None) -> dict[str, str]:
+    """Each unit's address: the one it had in an earlier cycle (``kept``), else the address of its
+    id.
 
     Addresses do not depend on the order of the units or on which other units exist, except when
-    two ids make the same slug: then the later-coming id gets a suffix from a hash of the id
+    two ids make the same address: then the later-coming id gets a suffix from a hash of the id
     itself (not a counter), and keeps it in later cycles through ``kept``.
     """
     ids = [str(u) for u in unit_ids]
@@ -31,8 +32,8 @@ def unit_slugs(unit_ids, kept: dict[str, str] | None = None) -> dict[str, str]:
         if old and old not in taken:
             out[uid] = old
             taken.add(old)
-    plain = {uid: slug(uid, set()) for uid in ids if uid not in out}
-    # an id that already is its slug wins it
+    plain = {uid: address_for(uid, set()) for uid in ids if uid not in out}
+    # an id that already is its address wins it
     for uid in sorted(plain, key=lambda u: (plain[u] != u, u)):
         candidate, n = plain[uid], 6
         while candidate in taken:

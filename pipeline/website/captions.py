@@ -1,9 +1,9 @@
 """Words and numbers beside every figure: alt text made from the figure's data, and its data table.
 
 Each function takes exactly the DataFrame a figure was drawn from (``figures.py``) and returns a
-``FigureView``: a short caption (shown), the alt text (for screen readers, generated from the
-data), and the table of the numbers drawn. Text from the data is made safe by the caller's ``md``
-(for markdown) and ``attr`` (for attribute values).
+``FigureView``: a short caption (shown), the alt text (for screen readers, generated from the data),
+and the table of the numbers drawn. Text from the data is made safe by the caller's
+``markdown_literal`` (for markdown) and ``attribute_literal`` (for attribute values).
 """
 
 from __future__ import annotations
@@ -14,7 +14,7 @@ import numpy as np
 import pandas as pd
 
 from pipeline.results import GROUPS, MeasureResult
-from pipeline.website.markup import attr, md
+from pipeline.website.markup import attribute_literal, markdown_literal
 
 NAMES_IN_ALT = 5  # list at most this many units by name in a sentence of alt text
 
@@ -47,7 +47,7 @@ def _group_counts(groups: pd.Series, names: pd.Series) -> str:
         if g == "typical":
             parts.append(f"{len(picked)} {'is' if len(picked) == 1 else 'are'} {GROUPS[g].lower()}")
         elif picked:
-            parts.append(f"{len(picked)} {GROUPS[g].lower()} ({_names(picked, attr)})")
+            parts.append(f"{len(picked)} {GROUPS[g].lower()} ({_names(picked, attribute_literal)})")
         else:
             parts.append(f"none {GROUPS[g].lower()}")
     return "; ".join(parts)
@@ -63,11 +63,12 @@ def intervals(
         "interval, lowest first, "
         f"against a dashed benchmark line at {benchmark}. Of these units, "
         f"{_group_counts(data['group'], data['unit_name'])}. "
-        f"Lowest: {attr(low['unit_name'])}, {fmt(low['rsr'])}; highest: "
-        f"{attr(high['unit_name'])}, {fmt(high['rsr'])}."
+        f"Lowest: {attribute_literal(low['unit_name'])}, {fmt(low['rsr'])}; highest: "
+        f"{attribute_literal(high['unit_name'])}, {fmt(high['rsr'])}."
     )
     rows = [
-        [md(r.unit_name), fmt(r.rsr), span(r.lo, r.hi), GROUPS[r.group]] for r in data.itertuples()
+        [markdown_literal(r.unit_name), fmt(r.rsr), span(r.lo, r.hi), GROUPS[r.group]]
+        for r in data.itertuples()
     ]
     return FigureView(
         src,
@@ -94,11 +95,17 @@ def movement(
         "value, placed by its number of cases (log scale, fewest at the bottom). "
         f"Small units move further: the typical move is {small:.1f} {points} for the {k} "
         f"smallest units and {large:.1f} for the {k} largest. "
-        f"The largest move is {attr(top['unit_name'])}, from {fmt(top['raw'])} to "
+        f"The largest move is {attribute_literal(top['unit_name'])}, from {fmt(top['raw'])} to "
         f"{fmt(top['adjusted'])}. The benchmark is {benchmark}."
     )
     rows = [
-        [md(r.unit_name), f"{r.cases:,}", fmt(r.raw), fmt(r.adjusted), f"{r.adjusted - r.raw:+.1f}"]
+        [
+            markdown_literal(r.unit_name),
+            f"{r.cases:,}",
+            fmt(r.raw),
+            fmt(r.adjusted),
+            f"{r.adjusted - r.raw:+.1f}",
+        ]
         for r in data.iloc[::-1].itertuples()
     ]
     return FigureView(
@@ -126,7 +133,7 @@ def funnel(
     alt = _funnel_alt(points, benchmark, counts, phi, widened)
     rows = [
         [
-            md(r.unit_name),
+            markdown_literal(r.unit_name),
             f"{r.cases:,.0f}",
             f"{r.expected:,.1f}",
             fmt(r.value),
@@ -170,6 +177,8 @@ def _funnel_alt(
     out998 = points[
         (points["value"] < points["lower_998"]) | (points["value"] > points["upper_998"])
     ]
+    names95 = f" ({_names(list(out95['unit_name']), attribute_literal)})" if len(out95) else ""
+    names998 = f" ({_names(list(out998['unit_name']), attribute_literal)})" if len(out998) else ""
     return (
         f"Funnel plot of {counts['units']} units: each unit's case-mix-adjusted value from its "
         "observed and expected counts, against the "
@@ -177,9 +186,9 @@ def _funnel_alt(
         f"with 95% and 99.8% control limits around the benchmark of {benchmark}"
         f"{', widened for the extra spread between units' if widened else ''}. "
         f"{len(out95)} {'unit lies' if len(out95) == 1 else 'units lie'} outside the 95% limits"
-        f"{' (' + _names(list(out95['unit_name']), attr) + ')' if len(out95) else ''} and "
+        f"{names95} and "
         f"{len(out998)} outside the 99.8% limits"
-        f"{' (' + _names(list(out998['unit_name']), attr) + ')' if len(out998) else ''}. "
+        f"{names998}. "
         f"The spread between units is {phi:.1f} times what chance alone would give."
     )
 
@@ -188,19 +197,20 @@ def position(src: str, data: pd.DataFrame, unit_name: str) -> FigureView:
     parts = []
     for r in data.itertuples():
         if pd.isna(r.ratio):
-            parts.append(f"{attr(r.measure)}: not reported")
+            parts.append(f"{attribute_literal(r.measure)}: not reported")
         else:
             parts.append(
-                f"{attr(r.measure)}: {r.ratio:.2f} ({r.lo:.2f} to {r.hi:.2f}), "
+                f"{attribute_literal(r.measure)}: {r.ratio:.2f} ({r.lo:.2f} to {r.hi:.2f}), "
                 f"{GROUPS[r.group].lower()}"
             )
     alt = (
-        f"Chart of {attr(unit_name)}'s adjusted ratio to the benchmark on each measure, with "
+        f"Chart of {attribute_literal(unit_name)}'s adjusted ratio to the benchmark on each "
+        "measure, with "
         "its interval, the benchmark and the range where most units sit. " + "; ".join(parts) + "."
     )
     rows = [
         [
-            md(r.measure),
+            markdown_literal(r.measure),
             "" if pd.isna(r.ratio) else f"{r.ratio:.2f}",
             "" if pd.isna(r.ratio) else f"{r.lo:.2f} to {r.hi:.2f}",
             "not reported" if pd.isna(r.ratio) else GROUPS[r.group],
@@ -223,17 +233,24 @@ def trend(src: str, data: pd.DataFrame, unit_name: str) -> FigureView:
     parts = []
     for measure, d in data.groupby("measure", sort=False):
         parts.append(
-            f"{attr(measure)}: "
+            f"{attribute_literal(measure)}: "
             + ", ".join(
-                f"{attr(r.period)} {r.value:.1f}" for r in d.sort_values("order").itertuples()
+                f"{attribute_literal(r.period)} {r.value:.1f}"
+                for r in d.sort_values("order").itertuples()
             )
         )
     alt = (
-        f"Chart of {attr(unit_name)}'s adjusted value in each cycle, one panel per measure "
+        f"Chart of {attribute_literal(unit_name)}'s adjusted value in each cycle, one panel "
+        "per measure "
         "(percent for rates). " + "; ".join(parts) + "."
     )
     rows = [
-        [md(r.measure), md(r.period), f"{r.value:.1f}", f"{r.lo:.1f} to {r.hi:.1f}"]
+        [
+            markdown_literal(r.measure),
+            markdown_literal(r.period),
+            f"{r.value:.1f}",
+            f"{r.lo:.1f} to {r.hi:.1f}",
+        ]
         for r in data.sort_values(["measure", "order"]).itertuples()
     ]
     return FigureView(
@@ -267,7 +284,7 @@ def roc(m: MeasureResult, path: str) -> FigureView:
         "",
         "ROC curve: the further above the dotted diagonal, the better the model tells patients "
         "apart.",
-        attr(_alt_roc(m)),
+        attribute_literal(_alt_roc(m)),
         [
             "False-positive rate",
             "True-positive rate, in sample",
@@ -298,7 +315,7 @@ def calibration(m: MeasureResult, path: str, unit: str) -> FigureView:
         "",
         "Calibration: observed against expected by risk group; points on the dotted diagonal "
         "are perfectly calibrated.",
-        attr(_alt_calibration(m, unit)),
+        attribute_literal(_alt_calibration(m, unit)),
         [
             "Risk group",
             f"Expected ({unit})",

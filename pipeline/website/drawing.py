@@ -17,7 +17,7 @@ from pathlib import Path
 
 import pandas as pd
 
-from pipeline.cache import Cache, key
+from pipeline.cache import Cache, cache_key
 from pipeline.results import MeasureResult
 from pipeline.website import figures
 from pipeline.website.figure_data import (
@@ -60,7 +60,9 @@ class Job:
         args = self.args_text or tuple(
             a.to_csv() if isinstance(a, pd.DataFrame) else a for a in self.args
         )
-        self.cache_name = key("figure", self.draw, self.data.to_csv(), args, self.png, DRAWING_CODE)
+        self.cache_name = cache_key(
+            "figure", self.draw, self.data.to_csv(), args, self.png, DRAWING_CODE
+        )
 
 
 def run_job(job_draw: str, data: pd.DataFrame, args: tuple, path: str, png: bool) -> None:
@@ -171,7 +173,7 @@ def _frame_of(strips: list[Job]) -> pd.DataFrame | None:
 def figure_jobs(
     results: list[MeasureResult],
     unit_ids,
-    slugs: dict[str, str],
+    addresses: dict[str, str],
     past,
     funnels: dict,
     period: str = "this cycle",
@@ -186,7 +188,7 @@ def figure_jobs(
         if data is not None:
             jobs.append(
                 Job(
-                    unit_figure_path(slugs[uid], "position"),
+                    unit_figure_path(addresses[uid], "position"),
                     "draw_position",
                     data,
                     (frame,),
@@ -196,7 +198,7 @@ def figure_jobs(
         if past:
             trend = trend_data(uid, results, past, period)
             if trend is not None:
-                jobs.append(Job(unit_figure_path(slugs[uid], "trend"), "draw_trend", trend))
+                jobs.append(Job(unit_figure_path(addresses[uid], "trend"), "draw_trend", trend))
     return jobs
 
 

@@ -18,9 +18,9 @@ def measure_figure_path(measure_key: str, kind: str = "intervals") -> str:
     return f"figures/{kind}-{measure_key}.svg"
 
 
-def unit_figure_path(unit_slug: str, kind: str = "position") -> str:
+def unit_figure_path(address: str, kind: str = "position") -> str:
     """kind: position | trend."""
-    return f"figures/{kind}-{unit_slug}.svg"
+    return f"figures/{kind}-{address}.svg"
 
 
 def png_of(relative: str) -> str:

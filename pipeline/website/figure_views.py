@@ -7,7 +7,7 @@ from pipeline.website import captions
 from pipeline.website.captions import FigureView
 from pipeline.website.figure_data import axis, measure_figure_path, png_of, unit_figure_path
 from pipeline.website.funnel import Funnel, outside
-from pipeline.website.markup import md
+from pipeline.website.markup import markdown_literal
 
 
 def if_drawn(path: str, drawn: dict) -> str:
@@ -20,7 +20,7 @@ def measure_figures(
     """The measure's pictures (intervals, funnel, movement) with their words and tables; and the
     funnel in a sentence."""
     k = axis(m)[0]
-    unit = md(m.measure.unit_label) if m.measure.type == "continuous" else "%"
+    unit = markdown_literal(m.measure.unit_label) if m.measure.type == "continuous" else "%"
     fmt = (
         (lambda x: f"{x:,.1f} {unit}")
         if m.measure.type == "continuous"
@@ -66,12 +66,12 @@ def measure_figures(
     return out, words
 
 
-def unit_figures(name: str, slug_: str, drawn: dict) -> list[FigureView]:
+def unit_figures(name: str, address: str, drawn: dict) -> list[FigureView]:
     out = []
-    path = unit_figure_path(slug_, "position")
+    path = unit_figure_path(address, "position")
     if path in drawn:
         out.append(captions.position(path, drawn[path], name))
-    path = unit_figure_path(slug_, "trend")
+    path = unit_figure_path(address, "trend")
     if path in drawn:
         out.append(captions.trend(path, drawn[path], name))
     return out

@@ -224,6 +224,6 @@ def null_of(result) -> str:
     return "binomial" if result.measure.type == "binary" else "gamma"
 
 
-def for_measure(result, widen: bool) -> Funnel | None:
+def measure_funnel(result, widen: bool) -> Funnel | None:
     """The funnel of one measure's results (``MeasureResult``)."""
     return funnel(result.table, null_of(result), result.benchmark, widen)

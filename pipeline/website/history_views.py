@@ -7,14 +7,17 @@ from __future__ import annotations
 from pipeline.config import CycleConfig
 from pipeline.history import PastCycle, changes
 from pipeline.results import MeasureResult
-from pipeline.website.markup import chance, md, value, value_span
+from pipeline.website.markup import chance, markdown_literal, value, value_span
 
 
 def trends(
-    config: CycleConfig, results: list[MeasureResult], past: list[PastCycle], slugs: dict[str, str]
+    config: CycleConfig,
+    results: list[MeasureResult],
+    past: list[PastCycle],
+    addresses: dict[str, str],
 ) -> dict[str, list[dict]]:
     """Per unit, its published adjusted rates in earlier cycles and now (reported cycles only)."""
-    out: dict[str, list[dict]] = {uid: [] for uid in slugs}
+    out: dict[str, list[dict]] = {uid: [] for uid in addresses}
     for r in results:
         cycles = [(p.period, p.table[p.table["measure"] == r.measure.key]) for p in past] + [
             (config.cycle.period, r.table)
@@ -24,8 +27,8 @@ def trends(
                 if row["unit_id"] in out:
                     out[row["unit_id"]].append(
                         {
-                            "measure": md(r.measure.name),
-                            "period": md(period),
+                            "measure": markdown_literal(r.measure.name),
+                            "period": markdown_literal(period),
                             "rate": value(r.measure, row["rsr_median"]),
                             "interval": value_span(r.measure, row["rsr_lower"], row["rsr_upper"]),
                         }
@@ -34,7 +37,7 @@ def trends(
 
 
 def change_views(
-    results: list[MeasureResult], previous: PastCycle | None, slugs: dict[str, str]
+    results: list[MeasureResult], previous: PastCycle | None, addresses: dict[str, str]
 ) -> list[dict]:
     """The changes page, one block per measure (empty when there is no earlier cycle)."""
     if previous is None:
@@ -45,11 +48,11 @@ def change_views(
         rows = table[table["measure"] == r.measure.key] if len(table) else table
         blocks.append(
             {
-                "name": md(r.measure.name),
+                "name": markdown_literal(r.measure.name),
                 "rows": [
                     {
-                        "name": md(x["unit_name"]),
-                        "href": f"units/{slugs[x['unit_id']]}.qmd",
+                        "name": markdown_literal(x["unit_name"]),
+                        "href": f"units/{addresses[x['unit_id']]}.qmd",
                         "before": f"{value(r.measure, x['before'])} "
                         f"({value_span(r.measure, x['before_lower'], x['before_upper'])})",
                         "now": f"{value(r.measure, x['now'])} "

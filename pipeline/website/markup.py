@@ -1,8 +1,8 @@
 """Every number and piece of data text the pages show, formatted in one place.
 
-Text from the data passes through :func:`md` (markdown and HTML show it literally), :func:`code`
-(an inline code span) or :func:`attr` (a quoted attribute value), which make it literal in both
-Quarto (pandoc) and the built-in renderer.
+Text from the data passes through :func:`markdown_literal` (markdown and HTML show it literally),
+:func:`code_span` (an inline code span) or :func:`attribute_literal` (a quoted attribute value),
+which make it literal in both Quarto (pandoc) and the built-in renderer.
 """
 
 from __future__ import annotations
@@ -17,7 +17,7 @@ _MD_SPECIAL = set("\\`*_{}[]()#+-.!|~^$@:\"'")
 _ENTITIES = {"&": "&amp;", "<": "&lt;", ">": "&gt;"}
 
 
-def md(text: object) -> str:
+def markdown_literal(text: object) -> str:
     """Escape data text so markdown and HTML show it literally (one line, no markup)."""
     out = []
     for ch in " ".join(str(text).split()):
@@ -30,7 +30,7 @@ def md(text: object) -> str:
     return "".join(out)
 
 
-def code(text: object) -> str:
+def code_span(text: object) -> str:
     """Data text as an inline code span: shown literally, with no escapes visible.
 
     The fence is longer than any run of backticks inside; '|' is escaped for pipe tables.
@@ -52,13 +52,15 @@ def value(measure, x: float) -> str:
     """An adjusted or raw value of ``measure``: a percentage for rates, the outcome's unit
     otherwise."""
     if measure.type == "continuous":
-        return "" if pd.isna(x) else f"{x:,.1f} {md(measure.unit_label)}"
+        return "" if pd.isna(x) else f"{x:,.1f} {markdown_literal(measure.unit_label)}"
     return pct(x)
 
 
 def value_span(measure, lo: float, hi: float) -> str:
     if measure.type == "continuous":
-        return "" if pd.isna(lo) else f"{lo:,.1f} to {hi:,.1f} {md(measure.unit_label)}"
+        return (
+            "" if pd.isna(lo) else f"{lo:,.1f} to {hi:,.1f} {markdown_literal(measure.unit_label)}"
+        )
     return span(lo, hi)
 
 
@@ -83,6 +85,6 @@ def natural_frequency(rate: float) -> str:
     return f"about {rate * base:.0f} in every {base:,} patients"
 
 
-def attr(text: object) -> str:
+def attribute_literal(text: object) -> str:
     """Text for a quoted attribute value in both Quarto (pandoc) and the built-in renderer."""
     return " ".join(str(text).split()).replace("\\", "/").replace('"', "”")

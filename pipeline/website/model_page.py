@@ -15,7 +15,7 @@ from pipeline.results import FIT_SETTINGS, POSITION, MeasureResult, Validation
 from pipeline.website import captions
 from pipeline.website.captions import FigureView
 from pipeline.website.figure_data import model_figure_path
-from pipeline.website.markup import code, md
+from pipeline.website.markup import code_span, markdown_literal
 
 BINARY_ROWS = [
     "c_statistic",
@@ -49,7 +49,7 @@ class ModelView:
     validation: list[dict[str, str]]
     folds: int
     groups: list[dict[str, str]]
-    summary: list[str]
+    quality: list[str]  # how good the case-mix model is, in plain sentences
     roc: FigureView | None
     calibration: FigureView | None
     equity: list[dict[str, str]]
@@ -77,7 +77,7 @@ def _in_ten(c: float) -> str:
     return f"about {c * 10:.0f} times in 10"
 
 
-def _summary(m: MeasureResult) -> list[str]:
+def _model_quality(m: MeasureResult) -> list[str]:
     """How good the case-mix model is, in plain sentences."""
     v = m.validation
     if v is None:
@@ -159,21 +159,21 @@ def _losses(m: MeasureResult) -> str:
     by_unit = sorted(
         (m.casemix.exclusions or {}).get("by_unit", {}).items(), key=lambda kv: (-kv[1], kv[0])
     )
-    return "; ".join(f"{md(names.get(u, u))} {n:,}" for u, n in by_unit)
+    return "; ".join(f"{markdown_literal(names.get(u, u))} {n:,}" for u, n in by_unit)
 
 
 def model_view(m: MeasureResult, drawn: dict) -> ModelView:
     """Everything the model report of one measure shows, formatted."""
     fit, v = m.casemix, m.validation
     continuous = m.measure.type == "continuous"
-    unit = md(m.measure.unit_label) if continuous else "%"
+    unit = markdown_literal(m.measure.unit_label) if continuous else "%"
     source = fit.family if fit.family in ("supplied", "unit summary") else "fitted"
     family, ratio_word = FIT_SETTINGS.families.get(
         fit.family, ("none: expected values were supplied", "ratio")
     )
     coefficients = [
         {
-            "term": md(t),
+            "term": markdown_literal(t),
             "ratio": f"{r['ratio']:.3f}",
             "interval": f"{r['lower']:.3f} to {r['upper']:.3f}",
         }
@@ -184,12 +184,12 @@ def model_view(m: MeasureResult, drawn: dict) -> ModelView:
     cal_path = model_figure_path(m.measure.key, "calibration")
     return ModelView(
         key=m.measure.key,
-        name=md(m.measure.name),
+        name=markdown_literal(m.measure.name),
         measure_href=f"measures/{m.measure.key}.qmd",
         source=source,
         family=family,
         ratio_word=ratio_word.capitalize(),
-        formula=code(fit.formula),
+        formula=code_span(fit.formula),
         patients=f"{fit.patients:,}",
         units_in_fit=fit.units_in_fit,
         solver=fit.solver,
@@ -199,12 +199,12 @@ def model_view(m: MeasureResult, drawn: dict) -> ModelView:
         validation=_validation_rows(v, unit) if v is not None else [],
         folds=v.folds if v is not None else 0,
         groups=_risk_group_rows(v) if v is not None else [],
-        summary=_summary(m),
+        quality=_model_quality(m),
         roc=captions.roc(m, roc_path) if roc_path in drawn else None,
         calibration=captions.calibration(m, cal_path, unit) if cal_path in drawn else None,
         equity=equity,
         equity_summary=equity_summary,
-        social_risk=", ".join(md(s) for s in m.measure.social_risk),
+        social_risk=", ".join(markdown_literal(s) for s in m.measure.social_risk),
     )
 
 
@@ -228,7 +228,7 @@ def _exclusion_notes(m: MeasureResult, source: str) -> list[str]:
     ex = m.casemix.exclusions or {}
     exclusions = []
     if ex.get("dropped_rows"):
-        per_var = ", ".join(f"{md(k)} {n:,}" for k, n in ex["dropped"].items())
+        per_var = ", ".join(f"{markdown_literal(k)} {n:,}" for k, n in ex["dropped"].items())
         exclusions.append(
             f"{ex['dropped_rows']:,} patients were left out of this measure because a risk "
             f"factor was missing (by risk factor: {per_var}). "
@@ -236,7 +236,7 @@ def _exclusion_notes(m: MeasureResult, source: str) -> list[str]:
             f"{_losses(m)}."
         )
     if ex.get("imputed_rows"):
-        per_var = ", ".join(f"{md(k)} {n:,}" for k, n in ex["imputed"].items())
+        per_var = ", ".join(f"{markdown_literal(k)} {n:,}" for k, n in ex["imputed"].items())
         exclusions.append(
             f"{ex['imputed_rows']:,} patients had a missing risk factor filled in with the "
             "most common value (categories) or the median (numbers) (by risk factor: "
@@ -314,7 +314,7 @@ def _equity_rows(m: MeasureResult) -> tuple[list[dict[str, str]], str]:
         return [], ""
     equity = [
         {
-            "name": md(e["unit_name"]),
+            "name": markdown_literal(e["unit_name"]),
             "with": POSITION.get(e["position_with"], ""),
             "without": POSITION.get(e["position_without"], ""),
             "changed": "changes" if e["changed"] else "same",

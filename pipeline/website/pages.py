@@ -1,8 +1,8 @@
 """Pages: Quarto markdown (.qmd) and ``_quarto.yml`` from Jinja2 templates.
 
-Every number is formatted here, in Python, and handed to a template in a typed context;
-templates only lay values out. Text that comes from data passes through the ``md`` filter,
-which makes it literal in both Quarto (pandoc) and the built-in renderer.
+Every number is formatted here, in Python, and handed to a template in a typed context; templates
+only lay values out. Text that comes from data passes through the ``markdown_literal`` filter, which
+makes it literal in both Quarto (pandoc) and the built-in renderer.
 """
 
 from __future__ import annotations
@@ -20,7 +20,7 @@ from pipeline.history import PastCycle
 from pipeline.results import FIT_SETTINGS, GROUPS, POSITION, MeasureResult
 from pipeline.website.funnel import Funnel
 from pipeline.website.history_views import change_views, trends
-from pipeline.website.markup import attr, code, md
+from pipeline.website.markup import attribute_literal, code_span, markdown_literal
 from pipeline.website.model_page import model_view
 from pipeline.website.sentences import GROUP_SYMBOLS, SYMBOLS
 from pipeline.website.views import MeasureView, UnitView, build_views
@@ -30,14 +30,15 @@ def environment() -> jinja2.Environment:
     env = jinja2.Environment(
         loader=jinja2.FileSystemLoader(templates_path()),
         undefined=jinja2.StrictUndefined,
-        autoescape=False,  # output is markdown; data text is escaped by the md filter instead
+        # output is markdown; data text is escaped by the markdown_literal filter instead
+        autoescape=False,
         trim_blocks=True,
         lstrip_blocks=True,
         keep_trailing_newline=True,
     )
-    env.filters["md"] = md
-    env.filters["code"] = code
-    env.filters["attr"] = attr
+    env.filters["markdown_literal"] = markdown_literal
+    env.filters["code_span"] = code_span
+    env.filters["attribute_literal"] = attribute_literal
     # a JSON string is a YAML scalar
     env.filters["yaml"] = lambda s: json.dumps(str(s), ensure_ascii=False)
     return env
@@ -80,7 +81,7 @@ def render_pages(
     config: CycleConfig,
     results: list[MeasureResult],
     units: pd.DataFrame,
-    slugs: dict[str, str],
+    addresses: dict[str, str],
     drawn: dict,
     past: list[PastCycle],
     site: dict,
@@ -88,8 +89,8 @@ def render_pages(
 ) -> list[Page]:
     """All pages of the site plus ``_quarto.yml``, as text."""
     env = environment()
-    measures, unit_views = build_views(config, results, units, slugs, drawn, funnels)
-    unit_trends = trends(config, results, past, slugs)
+    measures, unit_views = build_views(config, results, units, addresses, drawn, funnels)
+    unit_trends = trends(config, results, past, addresses)
     common = _common_context(config, site, measures, unit_views)
     pages: list[tuple[str, str, dict]] = [
         ("index.qmd", "index.qmd.j2", {}),
@@ -104,8 +105,8 @@ def render_pages(
             "changes.qmd",
             "changes.qmd.j2",
             {
-                "previous": md(past[-1].period) if past else "",
-                "blocks": change_views(results, past[-1] if past else None, slugs),
+                "previous": markdown_literal(past[-1].period) if past else "",
+                "blocks": change_views(results, past[-1] if past else None, addresses),
             },
         ),
         *[

@@ -12,7 +12,7 @@ from pipeline.results import GROUPS, POSITION, STATUS, MeasureResult
 from pipeline.website.captions import FigureView
 from pipeline.website.figure_views import measure_figures, unit_figures
 from pipeline.website.funnel import Funnel
-from pipeline.website.markup import chance, code, md, num, value, value_span
+from pipeline.website.markup import chance, code_span, markdown_literal, num, value, value_span
 from pipeline.website.sentences import (
     GROUP_SYMBOLS,
     SYMBOLS,
@@ -97,7 +97,7 @@ class UnitView:
     href: str
     figures: list[FigureView]  # position strip, then the trend when history exists
     cells: list[tuple[MeasureView, Cell]]
-    summary: str  # one plain sentence over all measures
+    overview: str  # one plain sentence over all measures
 
 
 def _cell(m: MeasureResult, row: pd.Series, level: str, min_cases: int) -> Cell:
@@ -127,7 +127,7 @@ def _cell(m: MeasureResult, row: pd.Series, level: str, min_cases: int) -> Cell:
         position=row["position"],
         position_words=POSITION.get(row["position"], STATUS[row["status"]]),
         symbol=SYMBOLS[row["position"]],
-        sentence=unit_sentence(md(row["unit_name"]), m, row, level, min_cases),
+        sentence=unit_sentence(markdown_literal(row["unit_name"]), m, row, level, min_cases),
         group=row["group"] if reported else "",
         group_words=GROUPS.get(row["group"], STATUS[row["status"]])
         if reported
@@ -141,7 +141,7 @@ def _cell(m: MeasureResult, row: pd.Series, level: str, min_cases: int) -> Cell:
     )
 
 
-def unit_summary(cells: list[tuple[MeasureView, Cell]]) -> str:
+def unit_overview(cells: list[tuple[MeasureView, Cell]]) -> str:
     """One sentence over all measures: how many reported and in which groups."""
     reported = [(m, c) for m, c in cells if c.status == "reported"]
     if not reported:
@@ -166,7 +166,7 @@ def build_views(
     config: CycleConfig,
     results: list[MeasureResult],
     units: pd.DataFrame,
-    slugs: dict[str, str],
+    addresses: dict[str, str],
     drawn: dict,
     funnels: dict[str, Funnel | None] | None = None,
 ) -> tuple[list[MeasureView], list[UnitView]]:
@@ -180,8 +180,8 @@ def build_views(
             cell = _cell(m, row, level, config.reporting.minimum_cases)
             view.rows.append(
                 {
-                    "name": md(row["unit_name"]),
-                    "href": f"units/{slugs[row['unit_id']]}.qmd",
+                    "name": markdown_literal(row["unit_name"]),
+                    "href": f"units/{addresses[row['unit_id']]}.qmd",
                     "cell": cell,
                 }
             )
@@ -189,13 +189,13 @@ def build_views(
         measures.append(view)
     unit_views = [
         UnitView(
-            id=md(uid),
-            name=md(u["name"]),
-            kind=md(u["kind"]),
-            href=f"units/{slugs[uid]}.qmd",
-            figures=unit_figures(u["name"], slugs[uid], drawn),
+            id=markdown_literal(uid),
+            name=markdown_literal(u["name"]),
+            kind=markdown_literal(u["kind"]),
+            href=f"units/{addresses[uid]}.qmd",
+            figures=unit_figures(u["name"], addresses[uid], drawn),
             cells=cells[uid],
-            summary=unit_summary(cells[uid]),
+            overview=unit_overview(cells[uid]),
         )
         for uid, u in units.iterrows()
     ]
@@ -223,7 +223,7 @@ def _measure_view(
     d = m.diagnostics
     coefs = [
         {
-            "term": md(term),
+            "term": markdown_literal(term),
             "ratio": num(r["ratio"]),
             "interval": f"{num(r['lower'])} to {num(r['upper'])}",
         }
@@ -233,8 +233,8 @@ def _measure_view(
     figures, funnel_words = measure_figures(m, drawn, funnel, level)
     return MeasureView(
         key=m.measure.key,
-        name=md(m.measure.name),
-        definition=md(m.measure.definition),
+        name=markdown_literal(m.measure.name),
+        definition=markdown_literal(m.measure.definition),
         better=m.measure.better,
         href=f"measures/{m.measure.key}.qmd",
         model_href=f"models/{m.measure.key}.qmd",
@@ -243,7 +243,8 @@ def _measure_view(
         figures=figures,
         funnel_words=funnel_words,
         patients=f"{m.casemix.patients:,}",
-        events=f"{m.casemix.events:,.0f}" + (f" {md(m.measure.unit_label)}" if continuous else ""),
+        events=f"{m.casemix.events:,.0f}"
+        + (f" {markdown_literal(m.measure.unit_label)}" if continuous else ""),
         network_rate=value(m.measure, m.network_rate),
         benchmark=value(m.measure, m.benchmark),
         benchmark_is_network=config.reporting.benchmark == "network" or continuous,
@@ -254,7 +255,7 @@ def _measure_view(
         if not continuous and m.casemix.patients and m.casemix.c_statistic == m.casemix.c_statistic
         else "not applicable",
         units_in_fit=m.casemix.units_in_fit,
-        formula=code(m.casemix.formula),
+        formula=code_span(m.casemix.formula),
         tau=f"{num(m.tau[0])} ({num(m.tau[1])} to {num(m.tau[2])})",
         rhat=num(d.rhat_max, 3),
         ess=f"{d.ess_bulk_min:,.0f}",
@@ -273,7 +274,7 @@ def _sensitivity_rows(m: MeasureResult) -> list[dict[str, str]]:
             "prior": f"HalfNormal({alt['scale']:g})",
             "method": f"{alt['method']} (k-hat {alt['k_hat']:.2f})",
             "changed": "; ".join(
-                f"{md(name)}: {GROUPS[a].lower()} → {GROUPS[b].lower()}"
+                f"{markdown_literal(name)}: {GROUPS[a].lower()} → {GROUPS[b].lower()}"
                 for name, a, b in alt["changed"]
             )
             or "none",
@@ -291,8 +292,8 @@ def targets_view(m: MeasureResult) -> dict | None:
         return None
     terms = [
         {
-            "term": md(target_words(x["term"])),
-            "code": code(x["term"]),
+            "term": markdown_literal(target_words(x["term"])),
+            "code": code_span(x["term"]),
             "sd": f"{x['sd']:.2f} (cases x {math.exp(x['sd']):.1f})"
             if x["term"] == "log_cases"
             else f"{x['sd']:.3g}",
@@ -303,7 +304,7 @@ def targets_view(m: MeasureResult) -> dict | None:
     ]
     changed = [
         {
-            "name": md(c.unit_name),
+            "name": markdown_literal(c.unit_name),
             "with": GROUPS[c.group_with].lower(),
             "without": GROUPS[c.group_without].lower(),
         }
@@ -311,7 +312,7 @@ def targets_view(m: MeasureResult) -> dict | None:
     ]
     groups = {g: f"{n['with']} / {n['without']}" for g, n in t["groups"].items()}
     return {
-        "words": md(like_words([x["term"] for x in t["terms"]])),
+        "words": markdown_literal(like_words([x["term"] for x in t["terms"]])),
         "terms": terms,
         "changed": changed,
         "groups": groups,
