@@ -24,9 +24,10 @@ from pipeline.errors import RenderError
 from pipeline.results import MeasureResult
 
 # Words for a change between cycles, by the posterior probability that the rate is higher now.
+CLEAR_RISE, CLEAR_FALL = 0.95, 0.05
 CHANGE_WORDS = (
-    (0.95, "Probably higher than last cycle"),
-    (0.05, "No clear change"),
+    (CLEAR_RISE, "Probably higher than last cycle"),
+    (CLEAR_FALL, "No clear change"),
     (-1.0, "Probably lower than last cycle"),
 )
 

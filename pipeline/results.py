@@ -20,7 +20,14 @@ from pipeline.grouping import group_units, rank_summary
 from pipeline.inputs.targets import TargetDesign
 from pipeline.shrinkage.draws import UnitDraws, evenly_thinned
 from pipeline.shrinkage.model import ShrinkageSpec
-from pipeline.shrinkage.sampling import CONVERGENCE_LIMITS, K_HAT_MAX, Diagnostics
+from pipeline.shrinkage.sampling import (
+    CONVERGENCE_LIMITS,
+    K_HAT_MAX,
+    RETRY_TARGET_ACCEPT,
+    RETRY_TUNE_FACTOR,
+    SENSITIVITY_SCALES,
+    Diagnostics,
+)
 
 # Unit states, in our own words (the key is stored; the words are shown).
 STATUS = {
@@ -56,10 +63,25 @@ class FitSettings:
     k_hat_max: float  # largest Pareto k-hat at which prior sensitivity reweights instead of refits
     families: dict  # case-mix family -> (the model in words, the word for its effect ratio)
     metric_labels: dict  # validation metric -> its label
+    retry_warmup: str  # how much more warm-up the one retry gets, in words ("twice")
+    retry_target_accept: float
+    prior_scales: str  # the other priors for tau, in words ("half and twice as wide")
+
+
+def times_words(factor: float) -> str:
+    """A factor in words: 0.5 -> 'half', 2 -> 'twice', 3 -> '3 times'."""
+    return {0.5: "half", 2.0: "twice"}.get(float(factor), f"{factor:g} times")
 
 
 FIT_SETTINGS = FitSettings(
-    CONVERGENCE_LIMITS, ShrinkageSpec().describe(), K_HAT_MAX, FAMILIES, LABELS
+    CONVERGENCE_LIMITS,
+    ShrinkageSpec().describe(),
+    K_HAT_MAX,
+    FAMILIES,
+    LABELS,
+    times_words(RETRY_TUNE_FACTOR),
+    RETRY_TARGET_ACCEPT,
+    " and ".join(times_words(s) for s in SENSITIVITY_SCALES) + " as wide",
 )
 
 

@@ -193,3 +193,15 @@ def test_templates_place_figures_by_their_kind_never_by_their_file_name():
     )
     trend = captions.trend("figures/trend-unit-position-x.svg", data, "Unit position-x")
     assert trend.kind == "trend"
+
+
+def test_templates_count_nothing_and_type_no_number_the_code_owns():
+    """Counts of units and measures' rows, thresholds and measured figures come from the code that
+    owns them (views, history, sampling, funnel), never typed into a template."""
+    from pipeline import templates_path
+
+    for template in sorted((templates_path() / "qmd").glob("*.j2")):
+        text = template.read_text(encoding="utf-8")
+        assert not re.search(r"(rows|cells|units)\s*\|[^}]*length", text), template.name
+        for typed in ("0.99", "95.1%", "twice the warm-up", "half and twice", "format(95)"):
+            assert typed not in text, (template.name, typed)

@@ -12,7 +12,7 @@ from __future__ import annotations
 
 import time
 import warnings
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from typing import Any
 
 import numpy as np
@@ -74,12 +74,18 @@ class Diagnostics:
         return out
 
 
-def safer(settings: SamplerSection) -> SamplerSection:
-    """Settings for the one retry after failed checks: twice the warm-up, smaller steps."""
-    from dataclasses import replace
+# The one retry after failed checks: this many times the warm-up, and at least this target
+# acceptance (smaller steps).
+RETRY_TUNE_FACTOR = 2
+RETRY_TARGET_ACCEPT = 0.99
 
+
+def safer(settings: SamplerSection) -> SamplerSection:
+    """Settings for the one retry after failed checks: more warm-up, smaller steps."""
     return replace(
-        settings, tune=settings.tune * 2, target_accept=max(settings.target_accept, 0.99)
+        settings,
+        tune=settings.tune * RETRY_TUNE_FACTOR,
+        target_accept=max(settings.target_accept, RETRY_TARGET_ACCEPT),
     )
 
 

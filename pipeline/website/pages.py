@@ -16,9 +16,9 @@ import pandas as pd
 
 from pipeline import templates_path
 from pipeline.config import CycleConfig
-from pipeline.history import PastCycle
+from pipeline.history import CLEAR_FALL, CLEAR_RISE, PastCycle
 from pipeline.results import FIT_SETTINGS, GROUPS, POSITION, MeasureResult
-from pipeline.website.funnel import Funnel
+from pipeline.website.funnel import MEASURED_COVERAGE, Funnel
 from pipeline.website.history_views import change_views, trends
 from pipeline.website.markup import attribute_literal, code_span, markdown_literal
 from pipeline.website.model_page import model_view
@@ -74,6 +74,9 @@ def _common_context(
         "groups": GROUPS,
         "group_symbols": GROUP_SYMBOLS,
         "k_hat_max": FIT_SETTINGS.k_hat_max,
+        "fit": FIT_SETTINGS,
+        "unit_count": len(unit_views),
+        "funnel_coverage": MEASURED_COVERAGE,
     }
 
 
@@ -106,6 +109,8 @@ def render_pages(
             "changes.qmd.j2",
             {
                 "previous": markdown_literal(past[-1].period) if past else "",
+                "rise": f"{CLEAR_RISE * 100:g}%",
+                "fall": f"{CLEAR_FALL * 100:g}%",
                 "blocks": change_views(results, past[-1] if past else None, addresses),
             },
         ),

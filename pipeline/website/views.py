@@ -87,6 +87,10 @@ class MeasureView:
     targets: dict | None = None
     # what the small-count rule hid on this measure, in plain words ("" when nothing)
     count_note: str = ""
+    units_listed: int = 0  # units in the unit table
+    units_shown: int = 0  # of them, reported
+    units_worse: int = 0
+    units_better: int = 0
 
 
 @dataclass(frozen=True)
@@ -98,6 +102,8 @@ class UnitView:
     figures: list[FigureView]  # position strip, then the trend when history exists
     cells: list[tuple[MeasureView, Cell]]
     overview: str  # one plain sentence over all measures
+    measures_reported: int = 0  # measures with enough cases at this unit to report
+    measures_listed: int = 0
 
 
 def _cell(m: MeasureResult, row: pd.Series, level: str, min_cases: int) -> Cell:
@@ -196,6 +202,8 @@ def build_views(
             figures=unit_figures(u["name"], addresses[uid], drawn),
             cells=cells[uid],
             overview=unit_overview(cells[uid]),
+            measures_reported=sum(c.status == "reported" for _, c in cells[uid]),
+            measures_listed=len(cells[uid]),
         )
         for uid, u in units.iterrows()
     ]
@@ -231,6 +239,7 @@ def _measure_view(
     ]
     continuous = m.measure.type == "continuous"
     figures, funnel_words = measure_figures(m, drawn, funnel, level)
+    reported = m.table["status"] == "reported"
     return MeasureView(
         key=m.measure.key,
         name=markdown_literal(m.measure.name),
@@ -264,6 +273,10 @@ def _measure_view(
         sensitivity=_sensitivity_rows(m),
         targets=targets_view(m),
         count_note=count_note(m.table, config.reporting.hide_counts_below),
+        units_listed=len(m.table),
+        units_shown=int(reported.sum()),
+        units_worse=int((reported & (m.table["group"] == "worse")).sum()),
+        units_better=int((reported & (m.table["group"] == "better")).sum()),
     )
 
 
