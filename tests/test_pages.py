@@ -205,3 +205,33 @@ def test_templates_count_nothing_and_type_no_number_the_code_owns():
         assert not re.search(r"(rows|cells|units)\s*\|[^}]*length", text), template.name
         for typed in ("0.99", "95.1%", "twice the warm-up", "half and twice", "format(95)"):
             assert typed not in text, (template.name, typed)
+
+
+def test_every_template_has_a_typed_context_holding_every_name_it_uses():
+    """Each page template is rendered with SiteContext plus its own page dataclass
+    (website/contexts.py); every name it reads must be a field of one of them (or a macro or
+    loop name it makes itself), so a template cannot depend on an untyped key."""
+    import dataclasses
+
+    import jinja2.meta
+
+    from pipeline import templates_path
+    from pipeline.website.contexts import TEMPLATE_CONTEXTS, SiteContext
+    from pipeline.website.pages import environment
+
+    env = environment()
+    folder = templates_path() / "qmd"
+    pages = {p.name for p in folder.glob("*.j2") if not p.name.endswith(".md.j2")}
+    assert pages == set(TEMPLATE_CONTEXTS)
+    common = {f.name for f in dataclasses.fields(SiteContext)} | {"up"}
+    for name, context in TEMPLATE_CONTEXTS.items():
+        source = (folder / name).read_text(encoding="utf-8")
+        used = jinja2.meta.find_undeclared_variables(env.parse(source))
+        allowed = common | {f.name for f in dataclasses.fields(context)}
+        assert used <= allowed, (name, sorted(used - allowed))
+    every_page = common | {
+        f.name for c in TEMPLATE_CONTEXTS.values() for f in dataclasses.fields(c)
+    }
+    for partial in sorted(folder.glob("*.md.j2")):  # included or imported by the pages
+        used = jinja2.meta.find_undeclared_variables(env.parse(partial.read_text(encoding="utf-8")))
+        assert used <= every_page, (partial.name, sorted(used - every_page))

@@ -18,6 +18,15 @@ from pipeline import templates_path
 from pipeline.config import CycleConfig
 from pipeline.history import CLEAR_FALL, CLEAR_RISE, PastCycle
 from pipeline.results import FIT_SETTINGS, GROUPS, POSITION, MeasureResult
+from pipeline.website.contexts import (
+    ChangesPage,
+    MeasurePage,
+    ModelPage,
+    PlainPage,
+    ProjectFile,
+    SiteContext,
+    UnitPage,
+)
 from pipeline.website.funnel import MEASURED_COVERAGE, Funnel
 from pipeline.website.history_views import change_views, trends
 from pipeline.website.markup import attribute_literal, code_span, markdown_literal
@@ -54,30 +63,30 @@ def _up(path: str) -> str:
     return "../" * (len(PurePosixPath(path).parts) - 1)
 
 
-def _common_context(
+def _site_context(
     config: CycleConfig, site: dict, measures: list[MeasureView], unit_views: list[UnitView]
-) -> dict:
+) -> SiteContext:
     """What every page template is given: the cycle, the site, every measure and unit."""
-    return {
-        "cycle": config.cycle,
-        "site": site,
-        "measures": measures,
-        "units": unit_views,
-        "limits": FIT_SETTINGS.sampler_checks,
-        "priors": FIT_SETTINGS.priors,
-        "reporting": config.reporting,
-        "sampler": config.sampler,
-        "validation": config.validation,
-        "level": f"{config.reporting.interval * 100:g}%",
-        "positions": POSITION,
-        "symbols": SYMBOLS,
-        "groups": GROUPS,
-        "group_symbols": GROUP_SYMBOLS,
-        "k_hat_max": FIT_SETTINGS.k_hat_max,
-        "fit": FIT_SETTINGS,
-        "unit_count": len(unit_views),
-        "funnel_coverage": MEASURED_COVERAGE,
-    }
+    return SiteContext(
+        cycle=config.cycle,
+        site=site,
+        measures=measures,
+        units=unit_views,
+        limits=FIT_SETTINGS.sampler_checks,
+        priors=FIT_SETTINGS.priors,
+        reporting=config.reporting,
+        sampler=config.sampler,
+        validation=config.validation,
+        level=f"{config.reporting.interval * 100:g}%",
+        positions=POSITION,
+        symbols=SYMBOLS,
+        groups=GROUPS,
+        group_symbols=GROUP_SYMBOLS,
+        k_hat_max=FIT_SETTINGS.k_hat_max,
+        fit=FIT_SETTINGS,
+        unit_count=len(unit_views),
+        funnel_coverage=MEASURED_COVERAGE,
+    )
 
 
 def render_pages(
@@ -94,43 +103,43 @@ def render_pages(
     env = environment()
     measures, unit_views = build_views(config, results, units, addresses, drawn, funnels)
     unit_trends = trends(config, results, past, addresses)
-    common = _common_context(config, site, measures, unit_views)
-    pages: list[tuple[str, str, dict]] = [
-        ("index.qmd", "index.qmd.j2", {}),
-        ("units.qmd", "units.qmd.j2", {}),
-        ("guide.qmd", "guide.qmd.j2", {}),
-        *[(m.href, "measure.qmd.j2", {"m": m}) for m in measures],
+    common = vars(_site_context(config, site, measures, unit_views))
+    pages: list[tuple[str, str, object]] = [
+        ("index.qmd", "index.qmd.j2", PlainPage()),
+        ("units.qmd", "units.qmd.j2", PlainPage()),
+        ("guide.qmd", "guide.qmd.j2", PlainPage()),
+        *[(m.href, "measure.qmd.j2", MeasurePage(m)) for m in measures],
         *[
-            (u.href, "unit.qmd.j2", {"u": u, "trend": unit_trends[uid] if past else []})
+            (u.href, "unit.qmd.j2", UnitPage(u, unit_trends[uid] if past else []))
             for uid, u in zip(units.index, unit_views, strict=True)
         ],
         (
             "changes.qmd",
             "changes.qmd.j2",
-            {
-                "previous": markdown_literal(past[-1].period) if past else "",
-                "rise": f"{CLEAR_RISE * 100:g}%",
-                "fall": f"{CLEAR_FALL * 100:g}%",
-                "blocks": change_views(results, past[-1] if past else None, addresses),
-            },
+            ChangesPage(
+                previous=markdown_literal(past[-1].period) if past else "",
+                rise=f"{CLEAR_RISE * 100:g}%",
+                fall=f"{CLEAR_FALL * 100:g}%",
+                blocks=change_views(results, past[-1] if past else None, addresses),
+            ),
         ),
         *[
-            (f"models/{m.measure.key}.qmd", "model.qmd.j2", {"mv": model_view(m, drawn)})
+            (f"models/{m.measure.key}.qmd", "model.qmd.j2", ModelPage(model_view(m, drawn)))
             for m in results
         ],
-        ("methods.qmd", "methods.qmd.j2", {}),
-        ("cautions.qmd", "cautions.qmd.j2", {}),
-        ("downloads.qmd", "downloads.qmd.j2", {}),
+        ("methods.qmd", "methods.qmd.j2", PlainPage()),
+        ("cautions.qmd", "cautions.qmd.j2", PlainPage()),
+        ("downloads.qmd", "downloads.qmd.j2", PlainPage()),
     ]
     out = [
-        Page(path, env.get_template(f"qmd/{tpl}").render(**common, **extra, up=_up(path)))
+        Page(path, env.get_template(f"qmd/{tpl}").render(**common, **vars(extra), up=_up(path)))
         for path, tpl, extra in pages
     ]
     out.append(
         Page(
             "_quarto.yml",
             env.get_template("qmd/_quarto.yml.j2").render(
-                **common, pages=[p for p, _, _ in pages], up=""
+                **common, **vars(ProjectFile([p for p, _, _ in pages])), up=""
             ),
         )
     )
