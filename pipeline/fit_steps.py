@@ -18,7 +18,7 @@ from pipeline.casemix.benchmark import (
 )
 from pipeline.casemix.model import CaseMixFit, fit_with_design, unit_summary_fit
 from pipeline.casemix.validation import Validation, validate
-from pipeline.config import CycleConfig, MeasureSection, family_of
+from pipeline.config import CycleConfig, MeasureSection, family_for
 from pipeline.inputs.data import Cohort
 from pipeline.inputs.targets import TargetDesign
 from pipeline.inputs.targets import design as target_design
@@ -111,7 +111,7 @@ def from_patients(
     validation = (
         validation_of(config, measure, casemix, x, y, used_codes, seed, reporter) if check else None
     )
-    likelihood = {"binary": "binomial", "continuous": family_of(measure)}[measure.type]
+    likelihood = family_for(measure).likelihood
     offset, expected, scale = benchmark_offset(
         config.reporting.benchmark, measure, casemix, y, used_codes
     )

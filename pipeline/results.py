@@ -14,7 +14,7 @@ import pandas as pd
 from pipeline.casemix.benchmark import reference_rate
 from pipeline.casemix.model import FAMILIES, CaseMixFit
 from pipeline.casemix.validation import LABELS, Validation
-from pipeline.config import CycleConfig, MeasureSection
+from pipeline.config import CycleConfig, MeasureSection, family_for
 from pipeline.disclosure import hide_small_counts, protect_units
 from pipeline.grouping import group_units, rank_summary
 from pipeline.inputs.targets import TargetDesign
@@ -276,7 +276,7 @@ def _summarise(
     )
     table["own_weight"] = _own_weight(table["unit_id"], unit_ids, fits)
     # continuous: minimum_cases covers it
-    threshold = config.reporting.hide_counts_below if measure.type == "binary" else 0
+    threshold = config.reporting.hide_counts_below if family_for(measure).counts_events else 0
     hide_small_counts(table, threshold, config.reporting.minimum_cases)
     names = table.loc[where, "unit_name"].to_numpy()
     changes = _prior_changes(fits, rsr, columns, benchmark, measure.better, rule, groups, names)

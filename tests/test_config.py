@@ -100,3 +100,18 @@ def test_developers_guide_lists_every_config_key():
     assert reference_table() in guide, (
         "regenerate the key reference in DEVELOPERS.md with pipeline.config.reference_table()"
     )
+
+
+def test_the_families_table_names_only_things_that_exist():
+    """Every family's likelihood and funnel null are implemented, and every outcome type's default
+    family serves that type (families.py is the one table)."""
+    from pipeline.families import FAMILIES, OUTCOME_TYPES, default_family
+    from pipeline.shrinkage.model import LIKELIHOODS
+    from pipeline.website.funnel import NULLS
+
+    for family in FAMILIES.values():
+        assert family.likelihood in LIKELIHOODS, family.name
+        assert family.funnel_null in NULLS, family.name
+    for kind, names in OUTCOME_TYPES.items():
+        assert default_family(kind).outcome_type == kind and names[0] == default_family(kind).name
+    assert set(OUTCOME_TYPES) == {"binary", "continuous"}

@@ -11,7 +11,7 @@ PIPELINE = Path(__file__).resolve().parents[1] / "pipeline"
 # Each group of modules and the groups it may import from (besides itself). The cycle reads
 # top-down: inputs -> case-mix -> shrinkage -> results -> site; the pages see results, never the
 # fitting code.
-BASE = {"pipeline", "errors", "progress", "formulas", "external", "cache"}
+BASE = {"pipeline", "errors", "progress", "formulas", "families", "external", "cache"}
 GROUPS = {
     "base": set(),
     "config": {"base"},

@@ -36,6 +36,7 @@ from scipy.stats import rankdata
 from pipeline.casemix.solver import estimate
 from pipeline.config import MeasureSection, family_of
 from pipeline.errors import FitError
+from pipeline.families import FAMILIES as FAMILY_TABLE
 from pipeline.formulas import formula_variables
 
 
@@ -76,15 +77,8 @@ class CaseMixFit:
         return self.family in FAMILIES
 
 
-# Built-in case-mix families: a data table (name -> what is fitted, what the ratio means).
-FAMILIES = {
-    "logistic": ("logistic regression (binomial, logit link)", "odds ratio"),
-    "gamma": ("Gamma GLM with log link", "ratio of means"),
-    "lognormal": (
-        "least squares on log(outcome), Duan's smearing back to the outcome's scale",
-        "ratio of geometric means",
-    ),
-}
+# Built-in case-mix families: name -> (what is fitted, what the ratio means), from families.py.
+FAMILIES = {f.name: (f.model_words, f.ratio_word) for f in FAMILY_TABLE.values()}
 
 
 def c_statistic(outcome: np.ndarray, score: np.ndarray) -> float:

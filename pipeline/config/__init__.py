@@ -15,6 +15,7 @@ from pipeline.config.schema import (
     ReportingSection,
     SamplerSection,
     ValidationSection,
+    family_for,
     family_of,
 )
 
@@ -27,6 +28,7 @@ __all__ = [
     "ReportingSection",
     "SamplerSection",
     "ValidationSection",
+    "family_for",
     "family_of",
     "has_password",
     "load_config",

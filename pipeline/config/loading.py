@@ -14,8 +14,9 @@ from pathlib import Path
 from typing import Any, Literal
 
 from pipeline.config.schema import SECTIONS, CycleConfig, InputsSection, MeasureSection
-from pipeline.config.values import OUTCOME_TYPES, close_match
+from pipeline.config.values import close_match
 from pipeline.errors import ConfigError, Problem
+from pipeline.families import OUTCOME_TYPES
 from pipeline.formulas import formula_variables
 
 

@@ -8,7 +8,6 @@ from pathlib import Path
 from typing import Literal
 
 from pipeline.config.values import (
-    OUTCOME_TYPES,
     benchmark_value,
     between,
     file_name,
@@ -19,6 +18,7 @@ from pipeline.config.values import (
     site_url,
     threshold_value,
 )
+from pipeline.families import FAMILIES, OUTCOME_TYPES, Family
 
 
 @dataclass(frozen=True)
@@ -302,6 +302,11 @@ class MeasureSection:
 def family_of(measure: MeasureSection) -> str:
     """The measure's case-mix family, after applying the type's default."""
     return measure.family or OUTCOME_TYPES[measure.type][0]
+
+
+def family_for(measure: MeasureSection) -> Family:
+    """The measure's entry in the families table (families.py): the one lookup."""
+    return FAMILIES[family_of(measure)]
 
 
 SECTIONS: dict[str, type] = {

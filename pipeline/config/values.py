@@ -8,13 +8,9 @@ from collections.abc import Callable, Iterable
 from dataclasses import MISSING, field
 from typing import Any
 
+from pipeline.families import OUTCOME_TYPES
+
 Check = Callable[[Any], "str | None"]
-
-
-OUTCOME_TYPES: dict[str, tuple[str, ...]] = {
-    "binary": ("logistic",),
-    "continuous": ("gamma", "lognormal"),
-}
 
 
 def close_match(name: str, allowed: Iterable[str]) -> str:

@@ -10,6 +10,7 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 
+from pipeline.config import family_for
 from pipeline.results import MeasureResult
 
 
@@ -34,7 +35,7 @@ def model_figure_path(measure_key: str, kind: str) -> str:
 def axis(result: MeasureResult) -> tuple[float, str]:
     """(multiplier, axis label) for a measure's adjusted values: percent for rates, the outcome's
     unit otherwise."""
-    if result.measure.type == "continuous":
+    if not family_for(result.measure).counts_events:
         return 1.0, f"Adjusted mean, {result.measure.unit_label}"
     return 100.0, "Risk-standardised rate, %"
 

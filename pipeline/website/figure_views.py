@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+from pipeline.config import family_for
 from pipeline.results import MeasureResult
 from pipeline.website import captions
 from pipeline.website.captions import FigureView
@@ -20,10 +21,12 @@ def measure_figures(
     """The measure's pictures (intervals, funnel, movement) with their words and tables; and the
     funnel in a sentence."""
     k = axis(m)[0]
-    unit = markdown_literal(m.measure.unit_label) if m.measure.type == "continuous" else "%"
+    unit = (
+        markdown_literal(m.measure.unit_label) if not family_for(m.measure).counts_events else "%"
+    )
     fmt = (
         (lambda x: f"{x:,.1f} {unit}")
-        if m.measure.type == "continuous"
+        if not family_for(m.measure).counts_events
         else (lambda x: f"{x:.1f}%")
     )
     bench = fmt(m.benchmark * k)
@@ -61,7 +64,7 @@ def measure_figures(
         words = _funnel_words(f, counts)
     path = measure_figure_path(m.measure.key, "movement")
     if path in drawn:
-        points_word = "percentage points" if m.measure.type == "binary" else unit
+        points_word = "percentage points" if family_for(m.measure).counts_events else unit
         out.append(captions.movement(path, "", drawn[path], fmt, bench, points_word))
     return out, words
 

@@ -40,6 +40,8 @@ import numpy as np
 import pandas as pd
 from scipy import stats
 
+from pipeline.config import family_for
+
 LEVELS = (0.95, 0.998)  # two-sided coverage of the inner and outer limits
 WINSOR = 0.10
 
@@ -224,7 +226,7 @@ def null_of(result) -> str:
     patients' events, gamma for continuous outcomes."""
     if result.measure.summary:
         return "poisson"
-    return "binomial" if result.measure.type == "binary" else "gamma"
+    return family_for(result.measure).funnel_null
 
 
 def measure_funnel(result, widen: bool) -> Funnel | None:

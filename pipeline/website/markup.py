@@ -11,6 +11,8 @@ import re
 
 import pandas as pd
 
+from pipeline.config import family_for
+
 _MD_SPECIAL = set("\\`*_{}[]()#+-.!|~^$@:\"'")
 
 
@@ -51,13 +53,13 @@ def span(lo: float, hi: float, digits: int = 1) -> str:
 def value(measure, x: float) -> str:
     """An adjusted or raw value of ``measure``: a percentage for rates, the outcome's unit
     otherwise."""
-    if measure.type == "continuous":
+    if not family_for(measure).counts_events:
         return "" if pd.isna(x) else f"{x:,.1f} {markdown_literal(measure.unit_label)}"
     return pct(x)
 
 
 def value_span(measure, lo: float, hi: float) -> str:
-    if measure.type == "continuous":
+    if not family_for(measure).counts_events:
         return (
             "" if pd.isna(lo) else f"{lo:,.1f} to {hi:,.1f} {markdown_literal(measure.unit_label)}"
         )

@@ -11,6 +11,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from pipeline.config import family_for
 from pipeline.results import FIT_SETTINGS, POSITION, MeasureResult, Validation
 from pipeline.website import captions
 from pipeline.website.captions import FigureView
@@ -165,7 +166,7 @@ def _losses(m: MeasureResult) -> str:
 def model_view(m: MeasureResult, drawn: dict) -> ModelView:
     """Everything the model report of one measure shows, formatted."""
     fit, v = m.casemix, m.validation
-    continuous = m.measure.type == "continuous"
+    continuous = not family_for(m.measure).counts_events
     unit = markdown_literal(m.measure.unit_label) if continuous else "%"
     source = fit.family if fit.family in ("supplied", "unit summary") else "fitted"
     family, ratio_word = FIT_SETTINGS.families.get(

@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import pandas as pd
 
+from pipeline.config import family_for
 from pipeline.results import GROUPS, MeasureResult
 from pipeline.website.markup import chance, natural_frequency, pct, value
 
@@ -143,7 +144,7 @@ def _group_sentence(m: MeasureResult, row: pd.Series) -> str:
 
 
 def _estimate_sentence(name: str, m: MeasureResult, row: pd.Series, level: str) -> str:
-    if m.measure.type == "continuous":
+    if not family_for(m.measure).counts_events:
         return (
             "Allowing for how ill its patients were, the average here is about "
             f"{value(m.measure, row['rsr_median'])}. "

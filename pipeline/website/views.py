@@ -7,7 +7,7 @@ from dataclasses import dataclass, field
 
 import pandas as pd
 
-from pipeline.config import CycleConfig
+from pipeline.config import CycleConfig, family_for
 from pipeline.results import GROUPS, POSITION, STATUS, MeasureResult
 from pipeline.website.captions import FigureView
 from pipeline.website.figure_views import measure_figures, unit_figures
@@ -119,7 +119,9 @@ def _cell(m: MeasureResult, row: pd.Series, level: str, min_cases: int) -> Cell:
         else {"too_few": f"fewer than {min_cases}", "withheld": "withheld"}.get(row["status"], "0"),
         observed=observed_words(row, count),
         expected=(
-            f"{row['expected']:,.1f}" if m.measure.type == "binary" else f"{row['expected']:,.0f}"
+            f"{row['expected']:,.1f}"
+            if family_for(m.measure).counts_events
+            else f"{row['expected']:,.0f}"
         )
         if reported
         else "",
@@ -237,7 +239,7 @@ def _measure_view(
         }
         for term, r in m.casemix.coefficients.iterrows()
     ]
-    continuous = m.measure.type == "continuous"
+    continuous = not family_for(m.measure).counts_events
     figures, funnel_words = measure_figures(m, drawn, funnel, level)
     reported = m.table["status"] == "reported"
     return MeasureView(
