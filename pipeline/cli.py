@@ -11,6 +11,7 @@ import time
 from pathlib import Path
 
 from pipeline import __version__
+from pipeline.config import family_for
 from pipeline.errors import FairgaugeError
 
 
@@ -106,7 +107,7 @@ def hidden_values(config, cohort) -> list[str]:
             cases,
             observed,
             cohort.units.index,
-            m.type == "binary",
+            family_for(m).counts_events,
             config.reporting.hide_counts_below,
             config.reporting.minimum_cases,
         )

@@ -160,7 +160,7 @@ def validation_of(
     reporter.stage(
         f"{measure.key}: validating the case-mix model ({v.folds}-fold cross-validation)"
     )
-    binary = measure.type == "binary"
+    binary = family_for(measure).counts_events
     return validate(casemix, binary, y, x, used_codes, v.folds, v.deciles, threshold, seed)
 
 

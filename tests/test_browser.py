@@ -60,6 +60,7 @@ def served(demo_cycle):
     threading.Thread(target=server.serve_forever, daemon=True).start()
     yield f"http://127.0.0.1:{server.server_address[1]}/", site
     server.shutdown()
+    server.server_close()
 
 
 @pytest.fixture(scope="module")
