@@ -133,9 +133,7 @@ def main(argv: list[str] | None = None) -> int:
             cohort = load_cohort(config)
             for w in cohort.warnings:
                 reporter.warn(w)
-            with_cases = set(cohort.rows[cohort.unit_column]) | {
-                u for t in (cohort.unit_tables or {}).values() if t is not None for u in t.index
-            }
+            with_cases = cohort.units_with_cases()
             print(
                 f"fairgauge: check passed: {len(cohort.rows):,} patient rows, "
                 f"{len(with_cases)} units with cases, "

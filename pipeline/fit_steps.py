@@ -36,13 +36,10 @@ class FittedUnits:
 
     @classmethod
     def of(cls, cohort: Cohort) -> FittedUnits:
-        rows = cohort.rows
-        present = set(rows[cohort.unit_column]) | {
-            u for t in (cohort.unit_tables or {}).values() if t is not None for u in t.index
-        }
+        present = cohort.units_with_cases()
         ids = [u for u in cohort.units.index if u in present]
-        codes = pd.Categorical(rows[cohort.unit_column], categories=ids).codes.astype(np.int64)
-        return cls(ids, codes)
+        codes = pd.Categorical(cohort.rows[cohort.unit_column], categories=ids).codes
+        return cls(ids, codes.astype(np.int64))
 
 
 @dataclass

@@ -63,14 +63,9 @@ class FitSettings:
     k_hat_max: float  # largest Pareto k-hat at which prior sensitivity reweights instead of refits
     families: dict  # case-mix family -> (the model in words, the word for its effect ratio)
     metric_labels: dict  # validation metric -> its label
-    retry_warmup: str  # how much more warm-up the one retry gets, in words ("twice")
+    retry_tune_factor: float  # the one retry's warm-up, as a multiple of the first fit's
     retry_target_accept: float
-    prior_scales: str  # the other priors for tau, in words ("half and twice as wide")
-
-
-def times_words(factor: float) -> str:
-    """A factor in words: 0.5 -> 'half', 2 -> 'twice', 3 -> '3 times'."""
-    return {0.5: "half", 2.0: "twice"}.get(float(factor), f"{factor:g} times")
+    prior_scales: tuple[float, ...]  # the other priors for tau, as multiples of its scale
 
 
 FIT_SETTINGS = FitSettings(
@@ -79,9 +74,9 @@ FIT_SETTINGS = FitSettings(
     K_HAT_MAX,
     FAMILIES,
     LABELS,
-    times_words(RETRY_TUNE_FACTOR),
+    RETRY_TUNE_FACTOR,
     RETRY_TARGET_ACCEPT,
-    " and ".join(times_words(s) for s in SENSITIVITY_SCALES) + " as wide",
+    SENSITIVITY_SCALES,
 )
 
 

@@ -45,12 +45,21 @@ class Cohort:
     # "cohort"/"units" -> where rows read from a database came from (warehouse.Provenance)
     provenance: dict | None = None
 
+    def units_with_cases(self) -> set[str]:
+        """Ids of the units with at least one patient row or a row of unit totals."""
+        return units_with_cases(self.rows[self.unit_column], self.unit_tables or {})
+
     def unit_totals(self, measure_key: str) -> pd.DataFrame:
         """The unit-level input of a measure, read from its ``summary`` file or query."""
         table = (self.unit_tables or {}).get(measure_key)
         if table is None:
             raise ValueError(f"{measure_key}: no unit-level input was read")
         return table
+
+
+def units_with_cases(row_units: pd.Series, unit_tables: dict[str, pd.DataFrame | None]) -> set[str]:
+    """Units named by a patient row or by a measure's unit totals."""
+    return set(row_units) | {u for t in unit_tables.values() if t is not None for u in t.index}
 
 
 def load_cohort(config: CycleConfig) -> Cohort:
@@ -280,10 +289,7 @@ def _idle_units(
     u_where: str,
 ) -> list[str]:
     """A warning naming the units with no cases on any measure (listed without results)."""
-    with_cases = set(row_units) | {
-        u for t in unit_tables.values() if t is not None for u in t.index
-    }
-    idle = unit_ids[~unit_ids.isin(with_cases)]
+    idle = unit_ids[~unit_ids.isin(units_with_cases(row_units, unit_tables))]
     if not len(idle):
         return []
     return [

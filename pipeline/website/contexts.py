@@ -33,6 +33,8 @@ class SiteContext:
     fit: FitSettings
     unit_count: int
     funnel_coverage: str  # the funnel limits' measured coverage, in words
+    retry_warmup: str  # the one retry's warm-up in words ("twice")
+    prior_scales: str  # the other priors for tau in words ("half and twice as wide")
 
 
 @dataclass(frozen=True)

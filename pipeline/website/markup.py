@@ -90,3 +90,8 @@ def natural_frequency(rate: float) -> str:
 def attribute_literal(text: object) -> str:
     """Text for a quoted attribute value in both Quarto (pandoc) and the built-in renderer."""
     return " ".join(str(text).split()).replace("\\", "/").replace('"', "”")
+
+
+def times_words(factor: float) -> str:
+    """A factor in words: 0.5 -> 'half', 2 -> 'twice', 3 -> '3 times'."""
+    return {0.5: "half", 2.0: "twice"}.get(float(factor), f"{factor:g} times")

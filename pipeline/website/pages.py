@@ -29,7 +29,7 @@ from pipeline.website.contexts import (
 )
 from pipeline.website.funnel import MEASURED_COVERAGE, Funnel
 from pipeline.website.history_views import change_views, trends
-from pipeline.website.markup import attribute_literal, code_span, markdown_literal
+from pipeline.website.markup import attribute_literal, code_span, markdown_literal, times_words
 from pipeline.website.model_page import model_view
 from pipeline.website.sentences import GROUP_SYMBOLS, SYMBOLS
 from pipeline.website.views import MeasureView, UnitView, build_views
@@ -86,6 +86,8 @@ def _site_context(
         fit=FIT_SETTINGS,
         unit_count=len(unit_views),
         funnel_coverage=MEASURED_COVERAGE,
+        retry_warmup=times_words(FIT_SETTINGS.retry_tune_factor),
+        prior_scales=" and ".join(times_words(s) for s in FIT_SETTINGS.prior_scales) + " as wide",
     )
 
 
