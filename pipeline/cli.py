@@ -51,9 +51,38 @@ def _parser() -> argparse.ArgumentParser:
         "build", parents=[common], help="run the reporting cycle described by a config file"
     )
     build.add_argument("config", type=Path, help="cycle config (TOML)")
+    stage = sub.add_parser(
+        "stage",
+        parents=[common],
+        help="run the cycle into [review].staging with a review summary and confidential unit "
+        "previews; publish nothing",
+    )
+    stage.add_argument("config", type=Path, help="cycle config (TOML)")
+    sign = sub.add_parser("sign-off", help="record sign-off of the staged build")
+    sign.add_argument("config", type=Path, help="cycle config (TOML)")
+    sign.add_argument(
+        "--signer",
+        nargs=2,
+        action="append",
+        metavar=("NAME", "ROLE"),
+        required=True,
+        help="who signs off and in what role (repeat for several people)",
+    )
+    sign.add_argument("--date", default=None, help="date of the sign-off, YYYY-MM-DD (today)")
+    sign.add_argument("--note", default="", help="optional note kept with the sign-off")
+    promote = sub.add_parser(
+        "promote", help="publish the signed-off staged build exactly as it was reviewed"
+    )
+    promote.add_argument("config", type=Path, help="cycle config (TOML)")
     check = sub.add_parser("check", help="check a config and its data without fitting anything")
     check.add_argument("config", type=Path, help="cycle config (TOML)")
-    demo = sub.add_parser("demo", parents=[common], help="invent a network, then build its site")
+    _demo_parser(
+        sub.add_parser("demo", parents=[common], help="invent a network, then build its site")
+    )
+    return parser
+
+
+def _demo_parser(demo: argparse.ArgumentParser) -> None:
     demo.add_argument(
         "--folder",
         type=Path,
@@ -75,7 +104,6 @@ def _parser() -> argparse.ArgumentParser:
         default=44,
         help="number of invented units, 30-60 recommended (default: 44)",
     )
-    return parser
 
 
 def _summary(summary, reporter: ConsoleReporter) -> None:
@@ -119,6 +147,46 @@ def hidden_values(config, cohort) -> list[str]:
     return lines
 
 
+def _review_command(args, config, reporter: ConsoleReporter) -> int:
+    """``stage``, ``sign-off`` and ``promote``: each prints what it did and where."""
+    from datetime import date
+
+    from pipeline.staging.promote import promote, sign_off
+    from pipeline.staging.stage import stage_cycle
+
+    staging = config.review.staging
+    if args.command == "stage":
+        staged = stage_cycle(
+            config, reporter, strict=args.strict, renderer=args.renderer, no_cache=args.refit
+        )
+        _summary(staged.run, reporter)
+        print(f"  staged:   {staging} (not published; the history is unchanged)")
+        print(f"  review:   {(staging / 'review' / 'index.html').resolve()}")
+        print(f"  previews: {staged.previews} in {(staging / 'previews').resolve()} (confidential)")
+        print(f"  sha256:   {staged.digest}")
+        return 0
+    if args.command == "sign-off":
+        entry = sign_off(
+            config,
+            [tuple(s) for s in args.signer],
+            args.date or date.today().isoformat(),
+            args.note,
+        )
+        who = "; ".join(f"{s['name']} ({s['role']})" for s in entry["signers"])
+        print(
+            f"fairgauge: sign-off recorded for the build staged in {staging}: {who}, "
+            f"{entry['date']}"
+        )
+        print(f"  sha256:   {entry['site_sha256']}")
+        return 0
+    done = promote(config)
+    print(f"fairgauge: published the signed-off build to {done.site.resolve()}")
+    print(f"  sha256:   {done.digest} (recorded in fairgauge-signoff.json)")
+    who = "; ".join(f"{s['name']} ({s['role']})" for s in done.signers)
+    print(f"  signed:   {who}")
+    return 0
+
+
 def main(argv: list[str] | None = None) -> int:
     args = _parser().parse_args(argv)
     reporter = ConsoleReporter()
@@ -143,6 +211,8 @@ def main(argv: list[str] | None = None) -> int:
             for line in hidden_values(config, cohort):
                 print(f"fairgauge: {line}")
             return 0
+        if args.command in ("stage", "sign-off", "promote"):
+            return _review_command(args, load_config(args.config), reporter)
         if args.command == "demo":
             from pipeline.demo import write_demo
 

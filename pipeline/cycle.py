@@ -24,7 +24,7 @@ from pipeline import __version__, templates_path
 from pipeline.cache import Cache, library_versions
 from pipeline.config import CycleConfig
 from pipeline.downloads import DICTIONARY, public_table, results_json
-from pipeline.errors import RenderError, StrictError
+from pipeline.errors import RenderError, ReviewError, StrictError
 from pipeline.fitting import fit_measures
 from pipeline.history import PastCycle, kept_addresses, past_cycles, record_cycle
 from pipeline.inputs.data import Cohort, load_cohort
@@ -35,7 +35,7 @@ from pipeline.website.drawing import draw_all, figure_jobs
 from pipeline.website.figures import MAX_FIGURE_UNITS
 from pipeline.website.funnel import measure_funnel
 from pipeline.website.pages import render_pages
-from pipeline.website.render import Renderer, choose_renderer, render_site
+from pipeline.website.render import SIGNOFF, Renderer, choose_renderer, render_site
 
 # every site's provenance; only folders holding it are ever replaced
 MARKER = "fairgauge-manifest.json"
@@ -53,6 +53,34 @@ class CycleRun:
     seconds: float = 0.0
 
 
+@dataclass
+class BuiltCycle:
+    """A cycle fitted and rendered into a new folder, not yet published anywhere."""
+
+    build: Path  # the rendered site, in a folder beside where it will go
+    config: CycleConfig
+    cohort: Cohort
+    results: list[MeasureResult]
+    table: pd.DataFrame  # the public results table
+    manifest: dict
+    addresses: dict[str, str]
+    renderer: Renderer
+    warnings: list[str]
+    past: list[PastCycle]
+
+    def run(self, site: Path, seconds: float) -> CycleRun:
+        return CycleRun(
+            site=site,
+            units=len(self.cohort.units),
+            measures=[m.key for m in self.config.measures],
+            patients=len(self.cohort.rows),
+            renderer=self.renderer,
+            results=self.results,
+            warnings=self.warnings,
+            seconds=seconds,
+        )
+
+
 def run_cycle(
     config: CycleConfig,
     reporter: Reporter = SILENT,
@@ -62,6 +90,36 @@ def run_cycle(
 ) -> CycleRun:
     """Run one reporting cycle described by ``config`` and publish its site."""
     start = time.perf_counter()
+    if config.review.required:
+        raise ReviewError(
+            "[review].required is true, so this cycle cannot be published directly. Run "
+            "`fairgauge stage`, then `fairgauge sign-off` and `fairgauge promote`."
+        )
+    built = build_cycle(config, config.cycle.output, reporter, strict, renderer, no_cache)
+    publish(built.build, config.cycle.output)
+    reporter.stage(f"recording this cycle in {config.cycle.history}")
+    record_cycle(
+        config.cycle.history,
+        config.cycle.period,
+        built.table,
+        built.results,
+        built.manifest,
+        built.addresses,
+    )
+    return built.run(config.cycle.output, time.perf_counter() - start)
+
+
+def build_cycle(
+    config: CycleConfig,
+    beside: Path,
+    reporter: Reporter = SILENT,
+    strict: bool = False,
+    renderer: str | None = None,
+    no_cache: bool = False,
+    staged: bool = False,
+) -> BuiltCycle:
+    """Read, check, fit and render the cycle into a new folder beside ``beside``; publish
+    nothing. ``staged``: the build is for review before publication (the manifest says so)."""
     chosen = choose_renderer(renderer or config.cycle.renderer)
     reporter.stage(f"renderer: {chosen.name} ({chosen.reason})")
     reporter.stage("reading and checking the cohort and the unit table")
@@ -84,23 +142,29 @@ def run_cycle(
     results = fit_measures(config, cohort, cache, reporter)
     past = past_cycles(config.cycle.history, config.cycle.period)
     manifest = build_manifest(config, cohort, chosen, results)
+    if staged:
+        manifest["review"] = {
+            "staged": manifest["built"],
+            "methods_note": config.review.methods_note,
+        }
     table = public_table(results)
     addresses = unit_addresses(cohort.units.index, kept_addresses(past))
     build = build_site(
-        config, cohort, results, table, manifest, past, chosen, cache, reporter, figures, addresses
+        config,
+        cohort,
+        results,
+        table,
+        manifest,
+        past,
+        chosen,
+        cache,
+        reporter,
+        figures,
+        addresses,
+        beside,
     )
-    publish(build, config.cycle.output)
-    reporter.stage(f"recording this cycle in {config.cycle.history}")
-    record_cycle(config.cycle.history, config.cycle.period, table, results, manifest, addresses)
-    return CycleRun(
-        site=config.cycle.output,
-        units=len(cohort.units),
-        measures=[m.key for m in config.measures],
-        patients=len(cohort.rows),
-        renderer=chosen,
-        results=results,
-        warnings=warnings,
-        seconds=time.perf_counter() - start,
+    return BuiltCycle(
+        build, config, cohort, results, table, manifest, addresses, chosen, warnings, past
     )
 
 
@@ -151,9 +215,11 @@ def build_site(
     reporter: Reporter,
     figures: bool = True,
     addresses: dict[str, str] | None = None,
+    beside: Path | None = None,
 ) -> Path:
-    """Write figures, downloads and pages into a new folder beside the output; render it there."""
-    build = _new_build_folder(config.cycle.output)
+    """Write figures, downloads and pages into a new folder beside ``beside`` (the output by
+    default); render it there."""
+    build = new_build_folder(beside or config.cycle.output)
     drawing = None
     try:
         project = build / "_source"
@@ -176,16 +242,14 @@ def build_site(
         _write_downloads(project, table, results, manifest)
         site = {**manifest, "dictionary": DICTIONARY}
         pages = render_pages(config, results, cohort.units, addresses, drawn, past, site, funnels)
-        for page in pages:
-            target = project / page.path
-            target.parent.mkdir(parents=True, exist_ok=True)
-            target.write_text(page.text, encoding="utf-8")
+        _write_pages(project, pages, staged="review" in manifest)
         if drawing is not None:
             waiting = drawing
             drawing = None
             waiting.wait()
         reporter.stage(f"rendering the site ({renderer.name})")
         render_site(project, build, renderer)
+        (project / SIGNOFF).unlink(missing_ok=True)  # the rendered site's copy is the one
         return build
     except OSError as exc:
         _stop(drawing)
@@ -200,7 +264,17 @@ def build_site(
         raise
 
 
-def _new_build_folder(output: Path) -> Path:
+def _write_pages(project: Path, pages, staged: bool) -> None:
+    if staged:  # `fairgauge promote` writes the sign-off record in place of this placeholder
+        placeholder = {"status": "staged for review, not signed off or published"}
+        (project / SIGNOFF).write_text(json.dumps(placeholder, indent=2), encoding="utf-8")
+    for page in pages:
+        target = project / page.path
+        target.parent.mkdir(parents=True, exist_ok=True)
+        target.write_text(page.text, encoding="utf-8")
+
+
+def new_build_folder(output: Path) -> Path:
     """A new, empty folder beside ``output`` for this build (stale ones of dead builds removed)."""
     try:
         output.parent.mkdir(parents=True, exist_ok=True)
@@ -258,15 +332,17 @@ def _alive(pid: int) -> bool:
     return True
 
 
-def publish(build: Path, output: Path) -> None:
+def publish(
+    build: Path, output: Path, marker: str = MARKER, setting: str = "[cycle].output"
+) -> None:
     """Swap the finished ``build`` in place of ``output``; refuse to replace a folder we did not
-    make."""
-    if output.exists() and any(output.iterdir()) and not (output / MARKER).exists():
+    make (one without ``marker``; ``setting`` names the config key that chose ``output``)."""
+    if output.exists() and any(output.iterdir()) and not (output / marker).exists():
         shutil.rmtree(build, ignore_errors=True)
         raise RenderError(
             f"{output} already exists, is not empty and was not made by fairgauge, so it was "
             "left alone. "
-            "Choose an empty or new folder for [cycle].output."
+            f"Choose an empty or new folder for {setting}."
         )
     retired = None
     try:

@@ -74,3 +74,9 @@ class StrictError(FairgaugeError):
     """Warnings were raised and --strict makes them fatal."""
 
     exit_code = 5
+
+
+class ReviewError(FairgaugeError):
+    """Staging, sign-off or promotion was refused (nothing was published or changed)."""
+
+    exit_code = 6

@@ -53,6 +53,8 @@ class Expected:
     scale: float  # continuous measures: multiplies ratios to the benchmark's scale
     validation: Validation | None
     mean_risk: np.ndarray | None  # per unit: its patients' mean offset (no patients: None)
+    # per patient row used (in cohort order): expected value at the benchmark (summed: counts)
+    row_expected: np.ndarray | None = None
 
 
 def from_unit_totals(
@@ -134,7 +136,7 @@ def from_patients(
     )
     # each unit's mean offset: its patients' average risk on the link scale (the case_mix target)
     mean_risk = pd.Series(offset).groupby(used_codes).mean().reindex(range(n_units)).to_numpy(float)
-    return Expected(casemix, cells, likelihood, counts, scale, validation, mean_risk)
+    return Expected(casemix, cells, likelihood, counts, scale, validation, mean_risk, expected)
 
 
 def validation_of(

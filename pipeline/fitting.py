@@ -133,6 +133,7 @@ def fit_measure(
         design=design,
         beta=draws.get("beta"),
         without_predictors=plain,
+        row_expected=expected.row_expected,
     )
 
 

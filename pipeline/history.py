@@ -111,30 +111,53 @@ def record_cycle(
     addresses: dict[str, str] | None = None,
 ) -> None:
     """Store a just-published cycle (replacing an earlier build of the same period)."""
-    key = cycle_key(period)
     folder.mkdir(parents=True, exist_ok=True)
-    staging = Path(tempfile.mkdtemp(prefix=f".{key}.tmp-", dir=folder))
+    written = Path(tempfile.mkdtemp(prefix=f".{cycle_key(period)}.tmp-", dir=folder))
     try:
-        table.to_csv(staging / "results.csv", index=False, float_format="%.6g")
-        (staging / "manifest.json").write_text(json.dumps(manifest, indent=2), encoding="utf-8")
-        (staging / "addresses.json").write_text(
-            json.dumps(addresses or {}, indent=2, sort_keys=True), encoding="utf-8"
-        )
-        arrays = {}
-        for r in results:
-            arrays[f"{r.measure.key}.draws"] = r.rsr_draws.to_numpy()
-            arrays[f"{r.measure.key}.units"] = np.array(r.rsr_draws.columns, dtype=str)
-        np.savez_compressed(staging / "draws.npz", **arrays)
-        target = folder / key
+        write_record(written, table, results, manifest, addresses)
+    except BaseException:
+        shutil.rmtree(written, ignore_errors=True)
+        raise
+    enter_record(folder, period, written, manifest["built"])
+
+
+def write_record(
+    where: Path,
+    table: pd.DataFrame,
+    results: list[MeasureResult],
+    manifest: dict,
+    addresses: dict[str, str] | None = None,
+) -> None:
+    """Write a cycle's history record (results, manifest, addresses, draws) into the folder
+    ``where``; a staged cycle keeps it until it is published (:func:`enter_record`)."""
+    where.mkdir(parents=True, exist_ok=True)
+    table.to_csv(where / "results.csv", index=False, float_format="%.6g")
+    (where / "manifest.json").write_text(json.dumps(manifest, indent=2), encoding="utf-8")
+    (where / "addresses.json").write_text(
+        json.dumps(addresses or {}, indent=2, sort_keys=True), encoding="utf-8"
+    )
+    arrays = {}
+    for r in results:
+        arrays[f"{r.measure.key}.draws"] = r.rsr_draws.to_numpy()
+        arrays[f"{r.measure.key}.units"] = np.array(r.rsr_draws.columns, dtype=str)
+    np.savez_compressed(where / "draws.npz", **arrays)
+
+
+def enter_record(folder: Path, period: str, written: Path, published: str) -> None:
+    """Move the record folder ``written`` (inside ``folder``) into the history as the cycle
+    ``period``, replacing an earlier build of it; a new period is added at the end."""
+    key = cycle_key(period)
+    target = folder / key
+    try:
         if target.exists():
             shutil.rmtree(target)
-        os.replace(staging, target)
+        os.replace(written, target)
     except BaseException:
-        shutil.rmtree(staging, ignore_errors=True)
+        shutil.rmtree(written, ignore_errors=True)
         raise
     entries = _index(folder)
     if key not in [e["key"] for e in entries]:
-        entries.append({"key": key, "period": period, "first_published": manifest["built"]})
+        entries.append({"key": key, "period": period, "first_published": published})
         index = folder / "cycles.json"
         index.with_suffix(".tmp").write_text(json.dumps(entries, indent=2), encoding="utf-8")
         os.replace(index.with_suffix(".tmp"), index)

@@ -99,6 +99,8 @@ class MeasureFits:
     beta: np.ndarray | None = None
     # the same fit with one common target (sensitivity)
     without_predictors: MeasureFits | None = None
+    # per patient row used: expected value at the benchmark (unit previews; None: unit totals)
+    row_expected: np.ndarray | None = None
 
 
 @dataclass(frozen=True)
@@ -137,6 +139,8 @@ class MeasureResult:
     typical: float = float("nan")
     # with unit-level predictors of the target: terms, groups with and without, units that change
     targets: dict | None = None
+    # per patient row used (casemix.used): expected value at the benchmark; None for unit totals
+    row_expected: np.ndarray | None = None
 
     @property
     def model_validation(self) -> Validation:
@@ -290,6 +294,7 @@ def _summarise(
         rsr_draws=pd.DataFrame(rsr[evenly_thinned(len(rsr), HISTORY_DRAWS)], columns=unit_ids),
         validation=fits.validation,
         sensitivity=tuple(changes),
+        row_expected=fits.row_expected,
     )
 
 

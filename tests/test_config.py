@@ -70,7 +70,7 @@ def test_wrong_types_unknown_sections_and_duplicate_measures(tmp_path):
     assert "sampler.draws: must be a whole number; got str 'many'" in found
     assert (
         "reportng: unknown section. Did you mean 'reporting'? Allowed: cycle, inputs, "
-        "measures, reporting, sampler, validation." in found
+        "measures, reporting, review, sampler, validation." in found
     )
     assert "measures[1].key: 'readmit' is already used by measures[0]; keys must be unique" in found
 

@@ -23,7 +23,7 @@ GROUPS = {
     "website": {"base", "config", "results"},
     "top": {"base", "config", "inputs", "casemix", "shrinkage", "results", "fitting", "website"},
 }
-TOP = {"cycle", "cli", "demo", "invented"}
+TOP = {"cycle", "cli", "demo", "invented", "staging"}
 FITTING = {"fitting", "fit_steps"}
 RESULTS = {"results", "disclosure", "history", "downloads", "grouping"}
 MODULE_LINES, FUNCTION_LINES = 400, 60

@@ -41,7 +41,7 @@ def _type_problem(value: Any, hint: Any) -> str | None:
         )
     if hint is tuple:
         ok = isinstance(value, list) and all(isinstance(v, str) and v.strip() for v in value)
-        return None if ok else f"must be a list of column names (text); got {value!r}"
+        return None if ok else f"must be a list of names (text); got {value!r}"
     if hint is Path:
         return (
             None
@@ -290,6 +290,24 @@ def _check_cohort_named(inputs: InputsSection, measures: list, problems: list[Pr
             )
 
 
+def _check_staging(cycle: Any, review: Any, problems: list[Problem]) -> None:
+    """The staging folder is apart from the public output and the history: nothing staged (the
+    confidential previews) may sit inside what is published."""
+    if cycle is None or review is None:
+        return
+    staging = review.staging
+    for name, folder in (("cycle.output", cycle.output), ("cycle.history", cycle.history)):
+        if staging == folder or staging.is_relative_to(folder) or folder.is_relative_to(staging):
+            problems.append(
+                Problem(
+                    "review.staging",
+                    f"is {staging}, which overlaps {name} ({folder}); staged previews are "
+                    "confidential and must never sit inside the published site or the history. "
+                    "Choose a folder of its own.",
+                )
+            )
+
+
 def load_config(path: str | Path) -> CycleConfig:
     """Read and validate a cycle config, reporting every problem at once."""
     path = Path(path).resolve()
@@ -323,6 +341,7 @@ def load_config(path: str | Path) -> CycleConfig:
     reporting = sections.get("reporting")
     if reporting is not None:
         _check_reporting(reporting, problems)
+    _check_staging(sections.get("cycle"), sections.get("review"), problems)
     inputs = sections.get("inputs")
     if inputs is not None:
         inputs = _check_inputs(inputs, base, problems)

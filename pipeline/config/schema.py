@@ -208,6 +208,34 @@ class ValidationSection:
 
 
 @dataclass(frozen=True)
+class ReviewSection:
+    """[review]: staging a cycle for confidential unit previews and sign-off before it is
+    published."""
+
+    staging: Path = option(
+        Path("staged"),
+        doc="Folder that receives a staged cycle: the site as it would be published, the review "
+        "summary and one confidential preview per unit (relative to the config file; never "
+        "inside the output folder).",
+    )
+    required: bool = option(
+        False,
+        doc="True: `fairgauge build` refuses to publish; every cycle goes through `fairgauge "
+        "stage`, `sign-off` and `promote`.",
+    )
+    sign_off_roles: tuple = option(
+        (),
+        doc="Roles that must all have signed off before `fairgauge promote` publishes, e.g. "
+        '["quality committee", "legal"] (compared without case); empty = any one sign-off.',
+    )
+    methods_note: bool = option(
+        True,
+        doc="True: the methods page of a staged cycle says that each unit previewed its results "
+        "before publication and that publication needed sign-off.",
+    )
+
+
+@dataclass(frozen=True)
 class MeasureSection:
     """[[measures]]: one outcome measure reported for every unit."""
 
@@ -315,6 +343,7 @@ SECTIONS: dict[str, type] = {
     "reporting": ReportingSection,
     "sampler": SamplerSection,
     "validation": ValidationSection,
+    "review": ReviewSection,
 }
 
 
@@ -329,6 +358,7 @@ class CycleConfig:
     reporting: ReportingSection
     sampler: SamplerSection
     validation: ValidationSection
+    review: ReviewSection
     measures: tuple[MeasureSection, ...]
 
     def measure(self, key: str) -> MeasureSection:

@@ -44,6 +44,9 @@ class Cohort:
     attributes: pd.DataFrame | None = None
     # "cohort"/"units" -> where rows read from a database came from (warehouse.Provenance)
     provenance: dict | None = None
+    # each patient row's record id as text ([inputs].record_column), or "row N" (N from 1, as in
+    # error messages) without one; for the confidential unit previews only, never published
+    record_ids: pd.Series | None = None
 
     def units_with_cases(self) -> set[str]:
         """Ids of the units with at least one patient row or a row of unit totals."""
@@ -97,6 +100,11 @@ def load_cohort(config: CycleConfig) -> Cohort:
     if problems:
         raise InputError(problems)
     warnings += _idle_units(rows[unit_col], units.index, unit_tables, u_where)
+    record_ids = (
+        rows[inputs.record_column].astype("string").str.strip()
+        if inputs.record_column
+        else pd.Series([f"row {i + 1}" for i in range(len(rows))], dtype="string")
+    ).reset_index(drop=True)
     return Cohort(
         rows=rows[keep].reset_index(drop=True),
         units=units[["name", "kind"]].astype("string"),
@@ -106,6 +114,7 @@ def load_cohort(config: CycleConfig) -> Cohort:
         warnings=tuple(warnings),
         unit_tables=unit_tables,
         provenance=provenance,
+        record_ids=record_ids,
     )
 
 

@@ -25,7 +25,9 @@ from pipeline.errors import RenderError
 from pipeline.external import find_tool, run_tool
 from pipeline.website.readability import prose
 
-ASSETS = ("figures", "downloads", "assets", "fairgauge-manifest.json")  # copied as they are
+# a staged build's sign-off record: a placeholder until `fairgauge promote` writes it
+SIGNOFF = "fairgauge-signoff.json"
+ASSETS = ("figures", "downloads", "assets", "fairgauge-manifest.json", SIGNOFF)  # copied as is
 
 
 @dataclass(frozen=True)
