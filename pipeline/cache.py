@@ -64,9 +64,19 @@ def code_version() -> str:
     for name in FITTING_MODULES:
         module = importlib.import_module(f"{__package__}.{name}")
         digest.update(inspect.getsource(module).encode())
-        constants = {k: v for k, v in vars(module).items() if k.isupper() and not callable(v)}
+        constants = {
+            k: v
+            for k, v in vars(module).items()
+            if k.isupper() and not callable(v) and _has_value(v)
+        }
         digest.update(json.dumps(constants, sort_keys=True, default=repr).encode())
     return digest.hexdigest()
+
+
+def _has_value(x: Any) -> bool:
+    """False for an object whose text is only its type and memory address (a reporter, a lock):
+    it would change the key in every process, so no cached fit could ever be reused."""
+    return type(x).__repr__ is not object.__repr__
 
 
 def library_versions() -> dict[str, str]:

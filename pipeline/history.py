@@ -72,6 +72,15 @@ def past_cycles(folder: Path, period: str) -> list[PastCycle]:
     ]
 
 
+def published_cycle(folder: Path, period: str) -> tuple[PastCycle, str] | None:
+    """The published build of ``period`` itself and when it was first published, if there is
+    one (a new build of the period replaces it)."""
+    for entry in _index(folder):
+        if entry["key"] == cycle_key(period):
+            return load_cycle(folder, entry), entry.get("first_published", "")
+    return None
+
+
 def load_cycle(folder: Path, entry: dict) -> PastCycle:
     where = folder / entry["key"]
     try:

@@ -10,6 +10,7 @@ its published O/E on the log scale. The invariants are the issue's; the networks
 
 from __future__ import annotations
 
+import os
 import textwrap
 
 import numpy as np
@@ -275,3 +276,24 @@ def test_a_changed_fitting_constant_changes_the_fit_key(monkeypatch):
     before = code_version()
     monkeypatch.setattr(shrinkage, "CENTRE_BELOW", shrinkage.CENTRE_BELOW * 2)
     assert code_version() != before
+
+
+def test_the_fit_key_is_the_same_in_every_process():
+    """A cached fit is reused by the next cycle, which runs in a new process: the key may hold no
+    memory address (a module-level reporter once made every key new, so nothing was reused) and
+    no order that changes with Python's string hashing."""
+    import subprocess
+    import sys
+
+    script = "from pipeline.cache import code_version; print(code_version())"
+    keys = {
+        subprocess.run(
+            [sys.executable, "-c", script],
+            env={**os.environ, "PYTHONHASHSEED": seed},
+            capture_output=True,
+            text=True,
+            check=True,
+        ).stdout.strip()
+        for seed in ("1", "2")
+    }
+    assert len(keys) == 1 and keys == {code_version()}

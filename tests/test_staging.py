@@ -265,6 +265,13 @@ def test_unsigned_altered_or_stale_builds_are_refused_and_nothing_changes(inputs
     stage_cycle(config)
     with pytest.raises(ReviewError, match="has not been signed off"):
         promote(config)
+    # the review says this period is public already and what promotion would change in it:
+    # nothing, for the same inputs and seed
+    review = tmp_path / "staged" / "review"
+    page = (review / "index.html").read_text(encoding="utf-8")
+    assert "This period is already public" in page and "replaces the results" in page
+    assert "No earlier period has been published" in page
+    assert pd.read_csv(review / "replaced.csv").empty
 
 
 def test_a_corrected_input_shows_what_changed_between_staged_builds(inputs, tmp_path):
@@ -303,7 +310,7 @@ def test_a_corrected_input_shows_what_changed_between_staged_builds(inputs, tmp_
 def test_the_review_summary_lists_changes_since_the_published_cycle(promoted):
     folder, _, _, _, _ = promoted
     page = (folder / "staged" / "review" / "index.html").read_text(encoding="utf-8")
-    assert "Compared with Invented year 1" in page
+    assert "Compared with Invented year 1" in page and "already public" not in page
     assert "none found" in page and "within the limits" in page and "FAILED" not in page
     changed = pd.read_csv(folder / "staged" / "review" / "since_published.csv")
     assert list(changed.columns) == ["measure", "unit_id", "unit_name", "what", "before", "now"]

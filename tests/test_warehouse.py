@@ -328,3 +328,30 @@ def test_a_server_that_never_answers_fails_within_the_connect_timeout(reader, tm
         text = _problems(_config(tmp_path, inputs))
         assert time.perf_counter() - start < 10
     assert "cannot connect to the database" in text and "timeout" in text.lower(), text
+
+
+def test_a_cycle_staged_from_the_database_lists_the_warehouse_records(
+    server, reader, tmp_path, monkeypatch
+):
+    """Staging works the same with database inputs: each unit's ledger holds exactly the stay ids
+    the warehouse has for that unit, and nothing is published or entered in the history."""
+    from pipeline.staging.ledger import read_ledger
+    from pipeline.staging.stage import stage_cycle
+
+    from .fake_sampler import fake_run
+
+    monkeypatch.setattr("pipeline.shrinkage.sampling.Sampler.run", fake_run)
+    port, connect = server
+    units, cohort = _network(seed=8)
+    _load(connect, "units", units)
+    _load(connect, "cohort", cohort)
+    path = _config(tmp_path, _db_inputs(port))
+    path.write_text(path.read_text(encoding="utf-8") + "\n[review]\nstaging = 'staged'\n")
+    stage_cycle(load_config(path))
+    assert not (tmp_path / "site").exists() and not (tmp_path / "history").exists()
+    ledger = read_ledger(tmp_path / "staged" / "ledger.csv")
+    assert (ledger["status"] == "counted").all() and len(ledger) == len(cohort)
+    for unit, stays in cohort.groupby("unit_id")["stay_id"]:
+        assert set(ledger.loc[ledger["unit_id"] == unit, "record_id"]) == set(stays), unit
+    table = pd.read_csv(tmp_path / "staged" / "site" / "downloads" / "results.csv")
+    assert set(table["unit_id"]) == set(units["id"])

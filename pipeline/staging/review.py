@@ -14,7 +14,7 @@ import numpy as np
 import pandas as pd
 
 from pipeline.cycle import BuiltCycle
-from pipeline.history import PastCycle, changes
+from pipeline.history import PastCycle, changes, published_cycle
 from pipeline.results import MeasureResult
 from pipeline.staging.previews import PREVIEW_MARK, environment
 from pipeline.website.markup import value, value_span
@@ -221,23 +221,12 @@ def write_review(
     previous = built.past[-1] if built.past else None
     moved = since_published(table, previous)
     tables = {"since_published": moved}
-    corrected = None
-    if earlier is not None:
-        found = corrections(earlier["table"], table, earlier["ledger"], ledger)
-        if found is not None:
-            tables |= {"corrected_values": found[0], "corrected_records": found[1]}
-            now = built.manifest["input_sha256"]
-            inputs = sorted(
-                n
-                for n in now.keys() | earlier["input_sha256"].keys()
-                if now.get(n) != earlier["input_sha256"].get(n)
-            )
-            corrected = {
-                "staged": earlier["staged"],
-                "inputs": ", ".join(inputs),
-                "changed_values": _rows(found[0]),
-                "changed_records": _rows(found[1]),
-            }
+    public = published_cycle(built.config.cycle.history, built.config.cycle.period)
+    replaces = None
+    if public is not None:  # promotion would replace what the public sees for this period now
+        tables["replaced"] = since_published(table, public[0])
+        replaces = {"published": public[1], "moved": _rows(tables["replaced"])}
+    corrected = _corrected(built, table, ledger, earlier, tables)
     for name, frame in tables.items():
         frame.to_csv(folder / f"{name}.csv", index=False, float_format="%.6g")
     units = built.cohort.units
@@ -253,6 +242,7 @@ def write_review(
             warnings=list(built.warnings),
             previous=previous.period if previous else "",
             moved=_rows(moved),
+            replaces=replaces,
             largest=largest_moves(built.results, previous),
             corrected=corrected,
             limit=REVIEW_ROWS,
@@ -263,6 +253,30 @@ def write_review(
         )
     )
     (folder / "index.html").write_text(text, encoding="utf-8")
+
+
+def _corrected(
+    built: BuiltCycle,
+    table: pd.DataFrame,
+    ledger: pd.DataFrame,
+    earlier: dict | None,
+    tables: dict[str, pd.DataFrame],
+) -> dict | None:
+    """What changed since the previous staged build (its tables added to ``tables``)."""
+    if earlier is None:
+        return None
+    found = corrections(earlier["table"], table, earlier["ledger"], ledger)
+    if found is None:
+        return None
+    tables |= {"corrected_values": found[0], "corrected_records": found[1]}
+    now, before = built.manifest["input_sha256"], earlier["input_sha256"]
+    inputs = sorted(n for n in now.keys() | before.keys() if now.get(n) != before.get(n))
+    return {
+        "staged": earlier["staged"],
+        "inputs": ", ".join(inputs),
+        "changed_values": _rows(found[0]),
+        "changed_records": _rows(found[1]),
+    }
 
 
 def _rows(frame: pd.DataFrame) -> list[dict]:
