@@ -278,22 +278,39 @@ def test_a_changed_fitting_constant_changes_the_fit_key(monkeypatch):
     assert code_version() != before
 
 
+_CONSTANTS = """
+import hashlib, importlib, json
+from pipeline.cache import FITTING_MODULES, _has_value
+found = {}
+for name in FITTING_MODULES:
+    module = importlib.import_module("pipeline." + name)
+    for k, v in vars(module).items():
+        if k.isupper() and not callable(v) and _has_value(v):
+            text = json.dumps(v, sort_keys=True, default=repr)
+            found[name + "." + k] = hashlib.sha256(text.encode()).hexdigest()
+print(json.dumps(found))
+"""
+
+
 def test_the_fit_key_is_the_same_in_every_process():
     """A cached fit is reused by the next cycle, which runs in a new process: the key may hold no
-    memory address (a module-level reporter once made every key new, so nothing was reused) and
-    no order that changes with Python's string hashing."""
+    memory address (a module-level reporter once made every key new, so nothing was reused), no
+    order that changes with Python's string hashing, and no constant that running a cycle
+    changes."""
+    import json
     import subprocess
     import sys
 
-    script = "from pipeline.cache import code_version; print(code_version())"
-    keys = {
-        subprocess.run(
-            [sys.executable, "-c", script],
-            env={**os.environ, "PYTHONHASHSEED": seed},
-            capture_output=True,
-            text=True,
-            check=True,
-        ).stdout.strip()
-        for seed in ("1", "2")
-    }
-    assert len(keys) == 1 and keys == {code_version()}
+    def constants(seed: str) -> dict:
+        env = {**os.environ, "PYTHONHASHSEED": seed}
+        out = subprocess.run(
+            [sys.executable, "-c", _CONSTANTS], env=env, capture_output=True, text=True, check=True
+        )
+        return json.loads(out.stdout)
+
+    here: dict = {}
+    exec(_CONSTANTS.replace("print(json.dumps(found))", "here.update(found)"), {"here": here})
+    first, second = constants("1"), constants("2")
+    assert first == second, [k for k in first if first[k] != second.get(k)]
+    # this process has run other tests' cycles by now
+    assert here == first, [k for k in first if first[k] != here.get(k)]

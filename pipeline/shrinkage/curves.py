@@ -224,13 +224,13 @@ def _op_classes():
     return CurveLogLik
 
 
-_OP = None
+_op_class = None  # built on first use; lower case: not a constant, so not part of the fit key
 
 
 def curve_loglik(a, data: dict):
     """The symbolic per-unit log-likelihood for a PyMC model (``data``: pm.Data of
     :meth:`Curves.data`)."""
-    global _OP
-    if _OP is None:
-        _OP = _op_classes()
-    return _OP()(a, data["coef"], data["centre"], data["width"], data["edges"])
+    global _op_class
+    if _op_class is None:
+        _op_class = _op_classes()
+    return _op_class()(a, data["coef"], data["centre"], data["width"], data["edges"])
