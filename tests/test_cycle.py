@@ -294,7 +294,10 @@ def _config_with_output(files, output: Path):
 def test_quarto_is_used_when_found_and_its_site_is_published(demo_cycle, tmp_path, monkeypatch):
     files, summary, _ = demo_cycle
     _fake_quarto(
-        tmp_path / "bin", 'cd "$2" && mkdir -p _site && grep -c qmd _quarto.yml > _site/index.html'
+        tmp_path / "bin",
+        # like Quarto, it leaves its working files in the project
+        'cd "$2" && mkdir -p _site .quarto/idx && echo /.quarto/ > .gitignore && '
+        "grep -c qmd _quarto.yml > _site/index.html",
     )
     monkeypatch.setenv("PATH", f"{tmp_path / 'bin'}:{__import__('os').environ['PATH']}")
     monkeypatch.setattr("pipeline.cycle.fit_measures", lambda *a: summary.results)
@@ -303,6 +306,9 @@ def test_quarto_is_used_when_found_and_its_site_is_published(demo_cycle, tmp_pat
     # Quarto's output, moved into place
     assert int((tmp_path / "out" / "index.html").read_text()) > summary.units
     assert (tmp_path / "out" / "_source" / "_quarto.yml").is_file()
+    # ... and its working files are not published as sources
+    assert not (tmp_path / "out" / "_source" / ".quarto").exists()
+    assert not (tmp_path / "out" / "_source" / ".gitignore").exists()
 
 
 def test_a_quarto_failure_shows_its_output_and_keeps_the_last_site(

@@ -82,7 +82,7 @@ def test_builtin_renderer_turns_callouts_links_and_tables_into_html(tmp_path):
         '  navbar:\n    left:\n      - href: index.qmd\n        text: "Home \\\\(A&amp;E\\\\)"\n'
     )
     (tmp_path / "index.qmd").write_text(
-        '---\ntitle: "Home"\n---\n\n::: {.callout-warning title="Heed"}\nInner '
+        '---\ntitle: "Home"\n---\n\n::: {.callout-warning}\n## Heed\n\nInner '
         "**text**.\n:::\n\n[next](sub/page.qmd#top)\n"
     )
     (tmp_path / "sub").mkdir()
@@ -117,10 +117,11 @@ def test_builtin_renderer_makes_figures_details_and_divs_like_quarto(tmp_path):
         'text: "Home"\n'
     )
     (tmp_path / "index.qmd").write_text(
-        '---\ntitle: "Home"\ndescription: "About <this>"\n---\n\n'
+        '---\ntitle: "Home"\ndescription-meta: "About <this>"\n---\n\n'
         "::: {#box .fg-sortable}\n| a |\n|:--|\n| 1 |\n:::\n\n"
         '![Short *caption*.](figures/a.svg){fig-alt="Long alt with <tags> & 3 numbers"}\n\n'
-        '::: {.callout-note collapse="true" title="The numbers"}\nHidden **table**.\n:::\n'
+        '<details class="callout fg-numbers">\n<summary class="callout-title">The numbers</summary>'
+        "\n\nHidden **table**.\n\n</details>\n"
     )
     out = tmp_path / "out"
     out.mkdir()
@@ -133,8 +134,8 @@ def test_builtin_renderer_makes_figures_details_and_divs_like_quarto(tmp_path):
         "<figcaption>Short <em>caption</em>.</figcaption></figure>"
     ) in index
     assert (
-        '<details class="callout callout-note"><summary class="callout-title">The '
-        "numbers</summary><p>Hidden <strong>table</strong>.</p>" in index
+        '<details class="callout fg-numbers">\n<summary class="callout-title">The '
+        "numbers</summary>\n<p>Hidden <strong>table</strong>.</p>\n</details>" in index
     )
     assert '<meta name="description" content="About &lt;this&gt;">' in index
     assert '<link rel="canonical" href="https://example.org/x/index.html">' in index

@@ -8,6 +8,7 @@ from pathlib import Path
 from typing import Literal
 
 from pipeline.config.values import (
+    SHORT_TITLE,
     benchmark_value,
     between,
     file_name,
@@ -15,6 +16,7 @@ from pipeline.config.values import (
     nonempty,
     option,
     outcome_type,
+    short_title,
     site_url,
     threshold_value,
 )
@@ -31,6 +33,12 @@ class CycleSection:
     )
     period: str = option(
         doc='Label of the reporting period, e.g. "April 2025 to March 2026".', check=nonempty
+    )
+    short_title: str = option(
+        "",
+        doc="Short site name for the navigation bar (at most 32 characters); empty = the title "
+        'when it is that short, else "Results by unit".',
+        check=short_title,
     )
     output: Path = option(
         Path("site"), doc="Folder that receives the finished site (relative to the config file)."
@@ -58,6 +66,13 @@ class CycleSection:
         doc="Folder where each published cycle's results are kept, for trends and the changes "
         "page (relative to the config file).",
     )
+
+    @property
+    def navbar_title(self) -> str:
+        """The name in the navigation bar."""
+        if self.short_title:
+            return self.short_title
+        return self.title if len(self.title) <= SHORT_TITLE else "Results by unit"
 
 
 @dataclass(frozen=True)

@@ -51,6 +51,18 @@ def nonempty(value: str) -> str | None:
     return None if value.strip() else "must not be empty"
 
 
+SHORT_TITLE = 32  # characters beside six navigation items in a 1280 px bar (a judgement)
+
+
+def short_title(value: str) -> str | None:
+    if len(value) <= SHORT_TITLE:
+        return None
+    return (
+        f"must be at most {SHORT_TITLE} characters (it goes in the navigation bar); "
+        f"got {len(value)}"
+    )
+
+
 def site_url(value: str) -> str | None:
     if value == "" or (re.fullmatch(r"https?://[^\s\"'<>]+/", value)):
         return None

@@ -30,6 +30,11 @@ SIGNOFF = "fairgauge-signoff.json"
 ASSETS = ("figures", "downloads", "assets", "fairgauge-manifest.json", SIGNOFF)  # copied as is
 
 
+# what `quarto render` leaves in a project folder besides its output (Quarto writes a .gitignore
+# for its .quarto/ folder)
+QUARTO_WORKING = (".quarto", ".gitignore", "_freeze")
+
+
 @dataclass(frozen=True)
 class Renderer:
     name: str  # "quarto" or "builtin"
@@ -60,6 +65,13 @@ def render_site(project: Path, out: Path, renderer: Renderer) -> None:
         for item in built.iterdir():
             shutil.move(str(item), out / item.name)
         built.rmdir()
+        # Quarto's working files are not sources: keep them out of the published _source/
+        for working in QUARTO_WORKING:
+            target = project / working
+            if target.is_dir():
+                shutil.rmtree(target)
+            else:
+                target.unlink(missing_ok=True)
     else:
         BuiltinRenderer(project).render(out)
 
@@ -69,6 +81,10 @@ _DIV_OPEN = re.compile(r"^:::+\s*\{([^}]*)\}\s*$")
 _DIV_ATTR = re.compile(r'#([\w-]+)|\.([\w-]+)|([\w-]+)="([^"]*)"')
 _FIGURE = re.compile(r'^!\[(?P<caption>.*)\]\((?P<src>[^)\s]+)\)\{fig-alt="(?P<alt>[^"]*)"\}\s*$')
 _DIV_CLOSE = re.compile(r"^:::+\s*$")
+# raw HTML lines passed through as they are (Quarto passes them too): a ``details`` block
+_RAW = re.compile(
+    r'^(<details class="[\w -]+">|<summary class="[\w -]+">[^<>&]*</summary>|</details>)$'
+)
 _ALIGN = re.compile(r'<(th|td) style="text-align:(left|right|center)">')
 _QMD_LINK = re.compile(r'(href="[^"#:]*?)\.qmd(#[^"]*)?"')
 
@@ -93,7 +109,8 @@ class BuiltinRenderer:
     def blocks(self, lines: list[str]) -> str:
         """Markdown with fenced divs (``::: {#id .class key="value"}``) and figures to HTML.
 
-        Callout divs become notes (``collapse="true"``: a ``<details>`` the reader opens); other
+        Callout divs become notes (titled by a first ``## `` line; ``collapse="true"``: a
+        ``<details>`` the reader opens); ``details`` lines of :data:`_RAW` pass through; other
         divs keep their id and classes; an image with ``{fig-alt="..."}`` becomes a figure whose
         caption is the image text and whose alt text is ``fig-alt``, as in Quarto.
         """
@@ -108,6 +125,11 @@ class BuiltinRenderer:
         while i < len(lines):
             figure = _FIGURE.match(lines[i])
             opened = _DIV_OPEN.match(lines[i])
+            if _RAW.match(lines[i]):  # the few HTML lines the pages write (a table that opens)
+                flush()
+                out.append(lines[i] + "\n")
+                i += 1
+                continue
             if figure:
                 flush()
                 out.append(
@@ -126,13 +148,14 @@ class BuiltinRenderer:
             while j < len(lines) and depth:
                 depth += 1 if _DIV_OPEN.match(lines[j]) else -1 if _DIV_CLOSE.match(lines[j]) else 0
                 j += 1
-            inner = self.blocks(lines[i + 1 : j - 1])
-            out.append(self.div(opened.group(1), inner))
+            out.append(self.div(opened.group(1), lines[i + 1 : j - 1]))
             i = j
         flush()
         return "".join(out)
 
-    def div(self, attributes: str, inner: str) -> str:
+    def div(self, attributes: str, lines: list[str]) -> str:
+        """A fenced div; a callout's title is its first line when that is a level-2 heading
+        (Quarto's form, which leaves no ``title`` attribute, and so no tooltip, in its HTML)."""
         ident, classes, attrs = "", [], {}
         for m in _DIV_ATTR.finditer(attributes):
             if m.group(1):
@@ -144,7 +167,12 @@ class BuiltinRenderer:
         id_attr = f' id="{html.escape(ident)}"' if ident else ""
         callout = next((c for c in classes if c.startswith("callout")), None)
         if callout:
-            title = self.inline(attrs["title"]) if attrs.get("title") else ""
+            first = next((k for k, line in enumerate(lines) if line.strip()), None)
+            title = ""
+            if first is not None and lines[first].startswith("## "):
+                title = self.inline(lines[first][3:].strip())
+                lines = lines[first + 1 :]
+            inner = self.blocks(lines)
             if attrs.get("collapse") == "true":
                 return (
                     f'<details{id_attr} class="callout {callout}"><summary '
@@ -154,7 +182,7 @@ class BuiltinRenderer:
             head = f'<p class="callout-title">{title}</p>' if title else ""
             return f'<aside{id_attr} class="callout {callout}" role="note">{head}{inner}</aside>\n'
         cls = f' class="{html.escape(" ".join(classes))}"' if classes else ""
-        return f"<div{id_attr}{cls}>{inner}</div>\n"
+        return f"<div{id_attr}{cls}>{self.blocks(lines)}</div>\n"
 
     def nav(self, up: str) -> list[dict]:
         def link(item: dict) -> dict:
@@ -191,7 +219,7 @@ class BuiltinRenderer:
             title=Markup(self.inline(str(meta.get("title", "")))),
             subtitle=Markup(self.inline(str(meta.get("subtitle", "")))),
             plain_title=_plain(meta.get("title", "")),
-            description=str(meta.get("description", website.get("description", ""))),
+            description=str(meta.get("description-meta", website.get("description", ""))),
             canonical=(site_url + rel_html) if site_url else "",
             body=body,
             nav=self.nav(up),
